@@ -1,0 +1,71 @@
+"""The ``advisory`` command tree: parse, call, print.  No logic lives here.
+
+Each topic registers its sub-commands from a module in :mod:`advisory.commands`.
+User errors print one line and exit 2; internal faults exit 1 (set
+``ADVISORY_DEBUG=1`` for the traceback).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import importlib.util
+import os
+import sys
+import traceback
+
+from advisory import __version__
+from advisory.errors import AdvisoryError, InputError, SchemaVersionError
+
+#: Topic modules in the order their commands appear in --help.
+TOPICS = ("db", "farm", "blocks", "obs", "outlook", "night", "heat", "verify", "notices", "hindcast",
+          "calc", "serve", "demo")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="advisory",
+        description="Frost and heat risk notices for orchard and vineyard blocks.")
+    parser.add_argument("--db", metavar="URL", default=None,
+                        help="database URL (default: $ADVISORY_DB, else an SQLite file in the data folder)")
+    parser.add_argument("--version", action="version", version=f"advisory {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+    for topic in TOPICS:
+        name = f"advisory.commands.{topic}"
+        if importlib.util.find_spec(name) is None:
+            continue
+        importlib.import_module(name).register(sub)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    from advisory import settings
+
+    try:
+        args.db_explicit = bool(args.db or os.environ.get("ADVISORY_DB"))
+        args.db = settings.load(args.db).db_url
+        return int(args.func(args) or 0)
+    except (InputError, SchemaVersionError) as exc:
+        print(f"advisory: error: {exc}", file=sys.stderr)
+        return 2
+    except AdvisoryError as exc:
+        print(f"advisory: error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("advisory: interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        return 0
+    except Exception as exc:  # an internal fault: say so plainly
+        if os.environ.get("ADVISORY_DEBUG"):
+            traceback.print_exc()
+        print(f"advisory: internal error: {type(exc).__name__}: {exc}\n"
+              "(set ADVISORY_DEBUG=1 for the traceback and please report it)", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

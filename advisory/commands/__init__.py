@@ -1,0 +1,1 @@
+"""Command-line topics: each module registers its sub-commands."""

@@ -1,0 +1,1 @@
+"""Pure, vectorised physics: sun, moisture, radiation, heat. No I/O."""

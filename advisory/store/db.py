@@ -1,0 +1,141 @@
+"""Engine, sessions, migrations and the schema-version check.
+
+SQLite (the default) runs with foreign keys on, the WAL journal and a busy
+timeout, so that the scheduler and a person at the command line can share the
+file.  Any SQLAlchemy URL works; PostgreSQL is the usual larger choice.
+"""
+
+from __future__ import annotations
+
+import contextlib
+from collections.abc import Iterator
+from pathlib import Path
+
+from sqlalchemy import Engine, create_engine, event, inspect
+from sqlalchemy.engine import make_url
+from sqlalchemy.orm import Session, sessionmaker
+
+from advisory.errors import InputError, SchemaVersionError
+
+#: Top-level Alembic folder (the package is installed in editable mode from the checkout).
+MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
+
+
+def _sqlite_pragmas(dbapi_conn, _record):
+    cur = dbapi_conn.cursor()
+    cur.execute("PRAGMA foreign_keys=ON")
+    cur.execute("PRAGMA journal_mode=WAL")
+    cur.execute("PRAGMA synchronous=NORMAL")
+    cur.execute("PRAGMA busy_timeout=30000")
+    cur.close()
+
+
+def make_engine(url: str) -> Engine:
+    """Create an engine; for a SQLite file, create its folder and set the pragmas."""
+    try:
+        u = make_url(url)
+    except Exception:
+        raise InputError(f"not a database URL: {url!r}", field="--db") from None
+    if u.get_backend_name() == "sqlite":
+        if u.database and u.database != ":memory:":
+            Path(u.database).expanduser().parent.mkdir(parents=True, exist_ok=True)
+        engine = create_engine(u, connect_args={"timeout": 30})
+        event.listen(engine, "connect", _sqlite_pragmas)
+        return engine
+    return create_engine(u, pool_pre_ping=True)
+
+
+def alembic_config(url: str, engine: Engine | None = None):
+    from alembic.config import Config
+
+    cfg = Config()
+    cfg.set_main_option("script_location", str(MIGRATIONS_DIR))
+    cfg.set_main_option("sqlalchemy.url", url.replace("%", "%%"))
+    if engine is not None:
+        cfg.attributes["engine"] = engine
+    return cfg
+
+
+def head_revision() -> str:
+    from alembic.script import ScriptDirectory
+
+    return ScriptDirectory.from_config(alembic_config("sqlite://")).get_current_head()
+
+
+def current_revision(engine: Engine) -> str | None:
+    from alembic.runtime.migration import MigrationContext
+
+    with engine.connect() as conn:
+        return MigrationContext.configure(conn).get_current_revision()
+
+
+def upgrade(url: str, revision: str = "head", engine: Engine | None = None) -> tuple[str | None, str]:
+    """Apply migrations up to ``revision``; returns (before, after) revisions."""
+    from alembic import command
+
+    engine = engine or make_engine(url)
+    before = current_revision(engine)
+    command.upgrade(alembic_config(url, engine), revision)
+    return before, current_revision(engine)
+
+
+def downgrade(url: str, revision: str, engine: Engine | None = None) -> None:
+    from alembic import command
+
+    engine = engine or make_engine(url)
+    command.downgrade(alembic_config(url, engine), revision)
+
+
+def check_schema(engine: Engine) -> None:
+    """Refuse a database whose schema is not the one this code expects.
+
+    Raises
+    ------
+    SchemaVersionError
+        With a message that says what to do.
+    """
+    head = head_revision()
+    current = current_revision(engine)
+    where = engine.url.render_as_string(hide_password=True)
+    if current == head:
+        return
+    if current is None:
+        tables = inspect(engine).get_table_names()
+        state = "has no advisory schema" if not tables else "was not made by advisory's migrations"
+        raise SchemaVersionError(
+            f"the database {where} {state}. Run `advisory db upgrade` first "
+            f"(add --db {where} if you pass it elsewhere).")
+    from alembic.script import ScriptDirectory
+
+    script = ScriptDirectory.from_config(alembic_config(str(engine.url)))
+    known = {rev.revision for rev in script.walk_revisions()}
+    if current in known:
+        raise SchemaVersionError(
+            f"the database {where} has an older schema ({current}; this advisory expects {head}). "
+            "Back it up, then run `advisory db upgrade`.")
+    raise SchemaVersionError(
+        f"the database {where} has a newer schema ({current}) than this advisory knows ({head}). "
+        "Install the newer advisory that wrote it; do not downgrade the data with this one.")
+
+
+class Database:
+    """An engine and its session factory, with the schema checked once."""
+
+    def __init__(self, url: str, *, check: bool = True):
+        self.url = url
+        self.engine = make_engine(url)
+        if check:
+            check_schema(self.engine)
+        self._sessions = sessionmaker(self.engine, expire_on_commit=False)
+
+    @contextlib.contextmanager
+    def transaction(self) -> Iterator[Session]:
+        """One session, one transaction: committed on success, rolled back on any error."""
+        with self._sessions() as session, session.begin():
+            yield session
+
+    def session(self) -> Session:
+        return self._sessions()
+
+    def dispose(self) -> None:
+        self.engine.dispose()
