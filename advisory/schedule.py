@@ -1,0 +1,309 @@
+"""The daily planner and the serve loop.
+
+The planner is pure: given the active blocks and an instant ``now`` it lists
+the runs due in a window around ``now``, each at a time set by its block's own
+sun:
+
+* ``evening`` -- the reference time, sunset + the block's offset (default 2 h);
+* ``update`` -- every ``update_interval_min`` after the evening run, until sunrise;
+* ``morning`` -- sunrise + 1 h: verification of the night's forecast;
+* ``heat`` -- sunrise + 2 h on days of the farm's heat season.
+
+Blocks due at the same minute for the same kind of run are grouped into one
+run, so that the pipeline handles them in one array pass.  Every run has a
+deterministic key; :mod:`advisory.pipeline` records each key it completes in
+the ``runs`` table, and its forecasts and notices carry their own idempotency
+keys, so that planning the same run twice, restarting mid-run or rerunning a
+night never sends a notice twice.
+
+:func:`serve` runs the planner every few minutes inside an APScheduler 3.x
+scheduler whose run jobs live in the project's database (SQLAlchemy job
+store), so that a restart finds them again.  A run found more than the grace
+time late is not run; for an evening run the block's recipients get a notice
+that it was missed instead.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import logging
+import signal
+from collections import defaultdict
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from advisory.physics import sun
+
+log = logging.getLogger("advisory.schedule")
+
+EVENING, UPDATE, MORNING, HEAT = "evening", "update", "morning", "heat"
+KINDS = (EVENING, UPDATE, MORNING, HEAT)
+
+
+@dataclass(frozen=True)
+class BlockClock:
+    """What the planner needs to know about one block."""
+
+    block_id: int
+    latitude: float
+    longitude: float
+    tz: str
+    reference_offset_min: int = 120
+    #: Heat season as ("MM-DD", "MM-DD"), inclusive; None: no heat runs.
+    heat_season: tuple[str, str] | None = None
+
+
+@dataclass(frozen=True)
+class PlannedRun:
+    kind: str
+    run_at: dt.datetime          # UTC, whole minute
+    night: dt.date               # local date of the evening (heat: of the day)
+    block_ids: tuple[int, ...]
+
+    @property
+    def key(self) -> str:
+        h = hashlib.sha1(",".join(map(str, self.block_ids)).encode()).hexdigest()[:10]
+        return f"{self.kind}:{self.night.isoformat()}:{self.run_at:%Y%m%dT%H%MZ}:{h}"
+
+
+@dataclass
+class PlannerSettings:
+    update_interval_min: int = 60
+    morning_offset_min: int = 60
+    heat_offset_min: int = 120
+    #: A run may start this late and still run (restart within the grace time).
+    grace_min: int = 45
+    #: How far ahead to place jobs.
+    horizon_h: int = 36
+    kinds: tuple[str, ...] = KINDS
+    skipped: list[str] = field(default_factory=list)
+
+
+def _minute(ts: pd.Series) -> pd.Series:
+    return ts.dt.floor("min")
+
+
+def _in_season(night: dt.date, season: tuple[str, str] | None) -> bool:
+    if not season:
+        return False
+    md = night.strftime("%m-%d")
+    start, end = season
+    return start <= md <= end if start <= end else (md >= start or md <= end)
+
+
+def plan(blocks: list[BlockClock], start: dt.datetime, end: dt.datetime,
+         settings: PlannerSettings | None = None) -> list[PlannedRun]:
+    """All runs with ``start <= run_at < end``, grouped by kind and minute.
+
+    Parameters
+    ----------
+    blocks : list of BlockClock
+        Active blocks.
+    start, end : datetime (aware)
+        The window [UTC].
+    settings : PlannerSettings, optional
+
+    Returns
+    -------
+    list of PlannedRun
+        Sorted by time then kind.  Blocks where the sun does not set or rise
+        that night get no evening/update/morning run (and the reason is logged
+        and appended to ``settings.skipped``).
+    """
+    s = settings or PlannerSettings()
+    if not blocks:
+        return []
+    start = start.astimezone(dt.UTC)
+    end = end.astimezone(dt.UTC)
+    ids = np.array([b.block_id for b in blocks])
+    lat = np.array([b.latitude for b in blocks], dtype=float)
+    lon = np.array([b.longitude for b in blocks], dtype=float)
+    tzs = np.array([b.tz for b in blocks], dtype=object)
+    offsets = np.array([b.reference_offset_min for b in blocks], dtype=float)
+    # Every night whose runs can fall in the window: from two days before start to the end date.
+    first = (start - dt.timedelta(days=2)).date()
+    n_nights = (end.date() - first).days + 2
+    groups: dict[tuple[str, dt.datetime, dt.date], list[int]] = defaultdict(list)
+    for k in range(n_nights):
+        night = first + dt.timedelta(days=k)
+        table = sun.sun_times_batch(lat, lon, night, tzs)
+        normal = (table["status"] == sun.NORMAL).to_numpy()
+        for i in np.flatnonzero(~normal):
+            msg = (f"block {ids[i]}: night {night}: no nocturnal forecast, the sun does not "
+                   f"{'set' if table['status'].iat[i] == sun.POLAR_DAY else 'rise'}")
+            if start.date() <= night <= end.date():
+                s.skipped.append(msg)
+        sunset = table["sunset"]
+        sunrise = table["sunrise"]
+        evening = _minute(sunset + pd.to_timedelta(offsets, unit="min"))
+        morning = _minute(sunrise + pd.Timedelta(minutes=s.morning_offset_min))
+        for i in np.flatnonzero(normal):
+            bid = int(ids[i])
+            ev = evening.iat[i].to_pydatetime()
+            rise = sunrise.iat[i].to_pydatetime()
+            if EVENING in s.kinds:
+                groups[(EVENING, ev, night)].append(bid)
+            if UPDATE in s.kinds:
+                t = ev + dt.timedelta(minutes=s.update_interval_min)
+                while t < rise:
+                    groups[(UPDATE, t, night)].append(bid)
+                    t += dt.timedelta(minutes=s.update_interval_min)
+            if MORNING in s.kinds:
+                groups[(MORNING, morning.iat[i].to_pydatetime(), night)].append(bid)
+        if HEAT in s.kinds:
+            # The heat note of day D+1 follows the sunrise that ends night D.
+            day = night + dt.timedelta(days=1)
+            heat_at = _minute(sunrise + pd.Timedelta(minutes=s.heat_offset_min))
+            for i in np.flatnonzero(normal):
+                if _in_season(day, blocks[i].heat_season):
+                    groups[(HEAT, heat_at.iat[i].to_pydatetime(), day)].append(int(ids[i]))
+    runs = [PlannedRun(kind, at, night, tuple(sorted(bids)))
+            for (kind, at, night), bids in groups.items() if start <= at < end]
+    runs.sort(key=lambda r: (r.run_at, KINDS.index(r.kind), r.night))
+    return runs
+
+
+def split_due(runs: Iterable[PlannedRun], now: dt.datetime, grace_min: int
+              ) -> tuple[list[PlannedRun], list[PlannedRun], list[PlannedRun]]:
+    """Split runs into (missed beyond grace, due now within grace, future)."""
+    missed, due, future = [], [], []
+    late_limit = now - dt.timedelta(minutes=grace_min)
+    for r in runs:
+        if r.run_at > now:
+            future.append(r)
+        elif r.run_at >= late_limit:
+            due.append(r)
+        else:
+            missed.append(r)
+    return missed, due, future
+
+
+# --------------------------------------------------------------------------- execution
+
+def load_block_clocks(db) -> list[BlockClock]:
+    """Active blocks with their farm's zone and heat season."""
+    from sqlalchemy import select
+
+    from advisory.store.schema import Block, Farm
+
+    out = []
+    with db.transaction() as s:
+        rows = s.execute(select(Block.id, Block.latitude, Block.longitude, Farm.timezone,
+                                Block.reference_offset_min, Farm.settings)
+                         .join(Farm).where(Block.active.is_(True)).order_by(Block.id)).all()
+        for bid, lat, lon, tz, off, fs in rows:
+            season = (fs or {}).get("heat_season")
+            out.append(BlockClock(bid, lat, lon, tz, off, tuple(season) if season else None))
+    return out
+
+
+def execute_run(db_url: str, kind: str, night_iso: str, block_ids: list[int], run_at_iso: str,
+                key: str) -> None:
+    """Run one planned run (the function the job store keeps a reference to).
+
+    Safe to call twice: the pipeline skips work already recorded under ``key``
+    and never sends a notice twice.
+    """
+    from advisory import pipeline
+    from advisory.store.db import Database
+
+    db = Database(db_url)
+    try:
+        night = dt.date.fromisoformat(night_iso)
+        run_at = dt.datetime.fromisoformat(run_at_iso)
+        pipeline.run_planned(db, kind, night, list(block_ids), run_at=run_at, key=key)
+    finally:
+        db.dispose()
+
+
+def reconcile(db, scheduler, now: dt.datetime, settings: PlannerSettings) -> dict[str, int]:
+    """Place the runs of the coming hours as jobs; deal with runs missed while stopped.
+
+    Returns counts of what was done.
+    """
+    from advisory import pipeline
+
+    clocks = load_block_clocks(db)
+    lookback = dt.timedelta(hours=18)
+    runs = plan(clocks, now - lookback, now + dt.timedelta(hours=settings.horizon_h), settings)
+    done = pipeline.finished_run_keys(db, [r.key for r in runs])
+    missed, due, future = split_due([r for r in runs if r.key not in done], now, settings.grace_min)
+    counts = {"placed": 0, "due": 0, "missed": 0}
+    for r in missed:
+        if r.kind == EVENING:
+            pipeline.record_missed(db, r.night, list(r.block_ids), key=r.key, run_at=r.run_at, now=now)
+            counts["missed"] += 1
+    for r in due + future:
+        job_id = r.key
+        if scheduler.get_job(job_id) is not None:
+            continue
+        scheduler.add_job(execute_run, "date", run_date=max(r.run_at, now), id=job_id,
+                          args=[db.url, r.kind, r.night.isoformat(), list(r.block_ids), r.run_at.isoformat(),
+                                r.key],
+                          misfire_grace_time=settings.grace_min * 60, coalesce=True,
+                          replace_existing=False, jobstore="runs")
+        counts["due" if r in due else "placed"] += 1
+    return counts
+
+
+def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None = None,
+          stop_after_s: float | None = None, clock=None, echo=print) -> None:
+    """The long-running scheduler; stops cleanly on SIGTERM or SIGINT.
+
+    Parameters
+    ----------
+    db : advisory.store.db.Database
+    planner_every_min : int
+        How often the planner looks ahead and places jobs.
+    stop_after_s : float, optional
+        Stop by itself after this many seconds (tests, demos).
+    clock : callable, optional
+        Returns the current aware datetime (tests).
+    """
+    import threading
+
+    from apscheduler.jobstores.memory import MemoryJobStore
+    from apscheduler.jobstores.sqlalchemy import SQLAlchemyJobStore
+    from apscheduler.schedulers.background import BackgroundScheduler
+
+    s = settings or PlannerSettings()
+    now_fn = clock or (lambda: dt.datetime.now(dt.UTC))
+    stop = threading.Event()
+    scheduler = BackgroundScheduler(
+        jobstores={"runs": SQLAlchemyJobStore(engine=db.engine, tablename="apscheduler_jobs"),
+                   "default": MemoryJobStore()},
+        job_defaults={"max_instances": 1}, timezone=dt.UTC)
+
+    def planner_tick():
+        try:
+            counts = reconcile(db, scheduler, now_fn(), s)
+            echo(f"{now_fn():%Y-%m-%d %H:%M:%S}Z planner: {counts['placed']} placed, {counts['due']} due now, "
+                 f"{counts['missed']} missed beyond grace")
+        except Exception:  # keep serving; the next tick tries again
+            log.exception("planner failed")
+
+    previous = {sig: signal.getsignal(sig) for sig in (signal.SIGTERM, signal.SIGINT)}
+
+    def _stop(signum, _frame):
+        echo(f"received signal {signum}: stopping after the running job")
+        stop.set()
+
+    if threading.current_thread() is threading.main_thread():
+        for sig in previous:
+            signal.signal(sig, _stop)
+    scheduler.start()
+    scheduler.add_job(planner_tick, "interval", minutes=planner_every_min, id="planner",
+                      next_run_time=dt.datetime.now(dt.UTC), jobstore="default")
+    echo(f"serving {db.url.split('///')[-1]}: planner every {planner_every_min} min; Ctrl-C to stop")
+    try:
+        stop.wait(timeout=stop_after_s)
+    finally:
+        scheduler.shutdown(wait=True)
+        if threading.current_thread() is threading.main_thread():
+            for sig, handler in previous.items():
+                signal.signal(sig, handler)
+        echo("scheduler stopped")
