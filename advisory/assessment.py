@@ -56,6 +56,12 @@ class ProtectionStep:
     notes: list[str] = field(default_factory=list)
     #: True where an input was estimated (e.g. an inversion without an upper sensor).
     estimated: bool = False
+    #: Start in the cold (10th-percentile) case when the central forecast never reaches the start rule.
+    ready_by_utc: dt.datetime | None = None
+    #: The stop rule is not met before the curve ends: stop time and run figures are lower bounds.
+    stop_open: bool = False
+    #: Keys into advisory.risk.cautions for this method.
+    caution_keys: list[str] = field(default_factory=list)
 
 
 @dataclass
@@ -111,6 +117,7 @@ class Assessment:
     verification: list[dict[str, Any]] = field(default_factory=list)
     #: Kind-specific details (heat: sunburn hours, crew work windows...).
     details: dict[str, Any] = field(default_factory=dict)
+    #: Keys into advisory.risk.cautions (the notice renders their texts).
     cautions: list[str] = field(default_factory=list)
 
 
@@ -138,7 +145,7 @@ def to_dict(a: Assessment) -> dict[str, Any]:
 
 
 _TIME_FIELDS = {"reference_time_utc", "sunset_utc", "sunrise_utc", "critical_time_utc", "time_utc",
-                "start_utc", "stop_utc"}
+                "start_utc", "stop_utc", "ready_by_utc"}
 
 
 def _dt(v):

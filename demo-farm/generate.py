@@ -70,6 +70,7 @@ def _sun(day: dt.date) -> dict:
 def _series(days: list[tuple], rng: np.random.Generator, offset_c: float) -> pd.DataFrame:
     """Synthetic readings every STEP_MIN minutes over the given days."""
     rows = []
+    t = None
     parsed = [(dt.date.fromisoformat(d), tmin + offset_c, tmax + offset_c, cloud, wind, td + offset_c * 0.5)
               for d, tmin, tmax, cloud, wind, td in days]
     for k in range(len(parsed) - 1):
@@ -78,9 +79,9 @@ def _series(days: list[tuple], rng: np.random.Generator, offset_c: float) -> pd.
         s0, s1 = _sun(day), _sun(nxt_day)
         rise, noon, set_ = s0["sunrise"], s0["noon"], s0["sunset"]
         t_max_time = noon + dt.timedelta(hours=3)
-        t = dt.datetime.combine(day, dt.time(0), TZ) if k == 0 else rise
+        if t is None:  # the series starts at local midnight; later days continue where the last ended
+            t = dt.datetime.combine(day, dt.time(0), TZ)
         end = s1["sunrise"]
-        t = t.replace(minute=(t.minute // STEP_MIN) * STEP_MIN, second=0, microsecond=0)
         # temperature at sunset from the afternoon sine
         set_frac = (set_ - t_max_time) / (set_ + dt.timedelta(hours=9) - t_max_time)
         t_set = tmax - (tmax - tmin) * 0.35 * np.sin(np.pi / 2 * set_frac)

@@ -211,15 +211,25 @@ def humidity_ratio_from_vapour_pressure(vapour_pressure_kpa, pressure_kpa=STANDA
     return _out(_EPSILON * e / (_asfloat(pressure_kpa) - e))
 
 
-def _wet_bulb_humidity_ratio(wet_bulb_c, air_temp_c, pressure_kpa):
-    """Humidity ratio implied by a trial wet bulb, ASHRAE (2017) eqs. 33 and 35."""
+def _wet_bulb_humidity_ratio(wet_bulb_c, air_temp_c, pressure_kpa, ice):
+    """Humidity ratio implied by a trial wet bulb, ASHRAE (2017) eq. 33 (water) or 35 (ice)."""
     tw = wet_bulb_c
     t = air_temp_c
-    ice = tw < 0.0
-    ws = _EPSILON * (es := np.asarray(saturation_vapour_pressure_kpa(tw, over_ice=ice))) / (pressure_kpa - es)
+    es = np.asarray(saturation_vapour_pressure_kpa(tw, over_ice=ice))
+    ws = _EPSILON * es / (pressure_kpa - es)
     water_w = ((2501.0 - 2.326 * tw) * ws - 1.006 * (t - tw)) / (2501.0 + 1.86 * t - 4.186 * tw)
     ice_w = ((2830.0 - 0.24 * tw) * ws - 1.006 * (t - tw)) / (2830.0 + 1.86 * t - 2.1 * tw)
     return np.where(ice, ice_w, water_w)
+
+
+def _bisect_wet_bulb(lo, hi, t, p, w, ice, iterations=48):
+    """Bisection for the wet bulb on one branch (implied humidity ratio rises with the trial)."""
+    for _ in range(iterations):
+        mid = 0.5 * (lo + hi)
+        too_wet = _wet_bulb_humidity_ratio(mid, t, p, ice) > w
+        hi = np.where(too_wet, mid, hi)
+        lo = np.where(too_wet, lo, mid)
+    return 0.5 * (lo + hi)
 
 
 def wet_bulb_c(air_temp_c, dew_point_c, pressure_kpa=STANDARD_PRESSURE_KPA):
@@ -227,9 +237,15 @@ def wet_bulb_c(air_temp_c, dew_point_c, pressure_kpa=STANDARD_PRESSURE_KPA):
 
     Solves the ASHRAE psychrometric balance (Handbook - Fundamentals 2017, ch. 1,
     eq. 33 for a wet bulb at or above 0 °C, eq. 35 for an ice bulb below) for
-    the wet bulb by bisection between the dew point and the air temperature.
-    Saturation pressures use the Magnus form of Alduchov & Eskridge (1996) over
-    water or ice as the bulb's surface requires.
+    the wet bulb by bisection.  Saturation pressures use the Magnus form of
+    Alduchov & Eskridge (1996) over water or ice as the bulb's surface requires.
+
+    The two equations do not meet at 0 °C: in dry air a little above freezing
+    both an ice bulb just below 0 °C and a water bulb just above it balance the
+    same humidity ratio.  There the ice-bulb solution is returned (each branch
+    is solved on its own, the ice branch first), so the result never depends on
+    the search path; it is also the colder, safer value for frost work, where
+    wetted buds ice over.
 
     Parameters
     ----------
@@ -253,15 +269,18 @@ def wet_bulb_c(air_temp_c, dew_point_c, pressure_kpa=STANDARD_PRESSURE_KPA):
     t, td, p = np.broadcast_arrays(_asfloat(air_temp_c), _asfloat(dew_point_c), _asfloat(pressure_kpa))
     td = np.minimum(td, t)
     w = _EPSILON * (e := np.asarray(saturation_vapour_pressure_kpa(td))) / (p - e)
-    lo = td.astype(float).copy()
-    hi = t.astype(float).copy()
-    # The implied humidity ratio rises with the trial wet bulb; bisect for equality.
-    for _ in range(48):
-        mid = 0.5 * (lo + hi)
-        too_wet = _wet_bulb_humidity_ratio(mid, t, p) > w
-        hi = np.where(too_wet, mid, hi)
-        lo = np.where(too_wet, lo, mid)
-    return _out(0.5 * (lo + hi))
+    # Ice branch on [dew point, min(air, 0)]: it has a root when the implied ratio
+    # at the top of that interval reaches the air's humidity ratio.
+    ice_hi = np.minimum(t, 0.0)
+    ice_lo = np.minimum(td, ice_hi)
+    ice_has_root = _wet_bulb_humidity_ratio(ice_hi, t, p, True) >= w
+    tw_ice = _bisect_wet_bulb(ice_lo.astype(float), ice_hi.astype(float), t, p, w, True)
+    # Water branch on [max(dew point, 0), air].
+    water_lo = np.minimum(np.maximum(td, 0.0), t)
+    tw_water = _bisect_wet_bulb(water_lo.astype(float), t.astype(float), t, p, w, False)
+    # Below 0 °C air with no ice root is supersaturated over ice: the bulb stays at the air temperature.
+    out = np.where(ice_has_root, tw_ice, np.where(t >= 0.0, tw_water, t))
+    return _out(out)
 
 
 def wet_bulb_stull_c(air_temp_c, rel_humidity_pct):

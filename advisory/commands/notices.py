@@ -1,0 +1,130 @@
+"""`advisory notices list|show|resend`: the office view of notices sent."""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlalchemy import select
+from sqlalchemy.orm import aliased
+
+from advisory import settings as settings_mod
+from advisory.errors import InputError, NotFoundError
+from advisory.notices import deliver
+from advisory.notices.render import FORMATS, as_notice, render
+from advisory.store.db import Database
+from advisory.store.schema import Block, Delivery, Farm, Notice, Recipient
+
+
+def register(sub) -> None:
+    p = sub.add_parser("notices", help="notices: list, show, resend")
+    nsub = p.add_subparsers(dest="notices_command", metavar="ACTION")
+    nsub.required = True
+    ls = nsub.add_parser("list", help="list notices with their delivery status")
+    ls.add_argument("--farm", help="only this farm")
+    ls.add_argument("--night", metavar="D", help="only this night or day (YYYY-MM-DD)")
+    ls.add_argument("--block", metavar="B", help="only this block")
+    ls.add_argument("--limit", type=int, default=200, help="at most this many (newest first; default 200)")
+    ls.set_defaults(func=do_list)
+    sh = nsub.add_parser("show", help="print one notice")
+    sh.add_argument("id", type=int, metavar="ID")
+    sh.add_argument("--format", choices=FORMATS, default="text",
+                    help="text (default), markdown, html (chart embedded), json or sms")
+    sh.set_defaults(func=do_show)
+    rs = nsub.add_parser("resend", help="deliver a notice again, even where it was already delivered")
+    rs.add_argument("id", type=int, metavar="ID")
+    rs.add_argument("--channel", choices=deliver.CHANNELS, help="only this channel")
+    rs.set_defaults(func=do_resend)
+
+
+def _night(text: str | None) -> dt.date | None:
+    if not text:
+        return None
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError:
+        raise InputError(f"'{text}' is not a date like 2026-04-06", field="--night") from None
+
+
+def do_list(args) -> int:
+    night = _night(args.night)
+    db = Database(args.db)
+    with db.transaction() as s:
+        blk = aliased(Block)
+        q = (select(Notice, Farm.name, blk.name).join(Farm, Notice.farm_id == Farm.id)
+             .outerjoin(blk, Notice.block_id == blk.id))
+        if args.farm:
+            q = q.where(Farm.name == args.farm)
+        if night:
+            q = q.where(Notice.night == night)
+        if args.block:
+            q = q.where(blk.name == args.block)
+        q = q.order_by(Notice.night.desc(), Farm.name, blk.name, Notice.revision).limit(max(1, args.limit))
+        rows = s.execute(q).all()
+        ids = [n.id for n, _, _ in rows]
+        dels: dict[int, list[Delivery]] = {}
+        if ids:
+            for d in s.scalars(select(Delivery).where(Delivery.notice_id.in_(ids))):
+                dels.setdefault(d.notice_id, []).append(d)
+        table = []
+        for n, farm, block in rows:
+            level = (n.content or {}).get("level_name") or n.level or "-"
+            summ = deliver.delivery_summary(dels.get(n.id, []))
+            table.append((str(n.id), n.night.isoformat(), n.kind, farm, block or "(farm summary)",
+                          f"r{n.revision}" + ("*" if n.is_update else ""), level,
+                          ", ".join(f"{ch} {st}" for ch, st in sorted(summ.items())) or "not delivered"))
+    if not table:
+        print("no notices" + (" match" if (args.farm or night or args.block) else " yet (run `advisory night run`)"))
+        return 0
+    header = ("id", "night", "kind", "farm", "block", "rev", "level", "deliveries")
+    widths = [max(len(str(x)) for x in col) for col in zip(header, *table, strict=False)]
+    for line in (header, *table):
+        print("  ".join(str(x).ljust(wd) for x, wd in zip(line, widths, strict=True)).rstrip())
+    print("(* = update to the evening notice)")
+    return 0
+
+
+def _get(s, notice_id: int) -> Notice:
+    n = s.get(Notice, notice_id)
+    if n is None:
+        raise NotFoundError(f"no notice with id {notice_id} (see `advisory notices list`)", field="ID")
+    return n
+
+
+def do_show(args) -> int:
+    db = Database(args.db)
+    with db.transaction() as s:
+        content = dict(_get(s, args.id).content or {})
+    chart_src = None
+    if args.format == "html":
+        from advisory.notices.charts import chart_png, data_uri
+
+        png = chart_png(as_notice(content))
+        chart_src = data_uri(png) if png else None
+    out = render(content, args.format, chart_src=chart_src)
+    print(out, end="" if out.endswith("\n") else "\n")
+    return 0
+
+
+def do_resend(args) -> int:
+    cfg = settings_mod.load(args.db)
+    db = Database(args.db)
+    with db.transaction() as s:
+        n = _get(s, args.id)
+        if n.block_id is not None:
+            recips = list(s.get(Block, n.block_id).recipients)
+        else:
+            recips = list(s.scalars(select(Recipient).where(Recipient.farm_id == n.farm_id)))
+        print(f"resending notice {n.id} ({n.key}) by {args.channel or 'every channel'}: the rule that skips "
+              "recipients who already have it is bypassed on purpose")
+        made = deliver.deliver_notice(s, n, recips, cfg, channels=[args.channel] if args.channel else None,
+                                      force=True)
+        names = {r.id: r.name for r in recips}
+        last: dict[tuple, Delivery] = {}
+        for d in made:
+            who = "outbox" if d.recipient_id is None else names.get(d.recipient_id, str(d.recipient_id))
+            print(f"  {d.channel:<8} {who:<28} attempt {d.attempt}: {d.status}"
+                  + (f" ({d.error})" if d.error else ""))
+            last[(d.recipient_id, d.channel)] = d
+    if not made:
+        print("  nothing to send: no recipient has that channel")
+    return 1 if any(d.status == "failed" for d in last.values()) else 0

@@ -1,0 +1,1258 @@
+"""Compose notices: turn an :class:`advisory.assessment.Assessment` into the words a grower reads.
+
+A :class:`BlockNotice` is a plain, JSON-able data object (every field is a
+string, number, list or dict; times are ISO 8601 UTC text) holding the words
+already written in the farm's units and local time, plus the numbers behind
+them (``data``: the assessment itself, °C and UTC) and what the chart should
+draw (``chart``).  :mod:`advisory.notices.render` lays it out as a text
+message, plain text, Markdown, HTML or JSON; :mod:`advisory.notices.charts`
+draws its curve.
+
+Shape of every notice, top to bottom:
+
+1. ``subject`` / ``headline``: the level name, the block and the one number.
+2. ``lead``: two to four short lines a grower can read on a phone at night:
+   the forecast low and its range, when it gets critical, what to do and when,
+   the expected damage.
+3. ``sections``: what it means for the buds (T10/T90, damage), the protection
+   plan with local start and stop times and quantities, the data behind the
+   forecast (age of the latest observation, quality flags), how recent nights
+   verified.  Heat notes carry fruit, crew and hour-by-hour sections instead.
+4. ``cautions`` and the ``footer`` that defers to local codes, workplace-safety
+   rules and extension or licensed advice.
+
+Updates (``Assessment.is_update``) are marked as updates to the evening notice
+and list what changed against the previous assessment.
+
+Heat details
+------------
+A heat assessment's ``details`` may hold any of the following (all optional;
+times as datetimes or ISO text, temperatures °C); what is missing is derived
+from the hourly ``curve`` where possible, or left out:
+
+``max_time_utc``
+    Time of the day's maximum.
+``max_estimated`` (bool), ``max_source`` (text)
+    The maximum was estimated from the morning's readings (no outlook).
+``hottest_hours``
+    ``{"start_utc", "stop_utc"}``.
+``sunburn``
+    ``{"threshold_c", "hours", "start_utc", "stop_utc", "note"}``: air
+    temperature at which fruit sunburn becomes likely in full sun and the hours
+    at or above it.  Flat keys ``sunburn_threshold_c`` and ``sunburn_hours``
+    are read too.
+``crew_windows``
+    List of ``{"start_utc", "stop_utc", "label", "heat_index_max_c",
+    "wbgt_max_c", "advice"}``: periods with their crew heat stress.
+``safer_hours``
+    List of ``{"start_utc", "stop_utc"}`` (or pairs): hours better suited to
+    heavy work.
+``guidance``
+    List of text: rest, water and shade guidance.
+``thresholds``
+    ``{label: value_c}`` or a list of ``{"label", "value_c"}`` to draw on the chart.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import hashlib
+import logging
+import math
+import re
+from dataclasses import dataclass, field
+from typing import Any
+
+from advisory import assessment as asm
+from advisory.assessment import Assessment
+from advisory.notices import words as w
+from advisory.risk import cautions as caution_texts
+
+log = logging.getLogger(__name__)
+
+#: Version of the notice content layout (stored in ``Notice.content``).
+SCHEMA = 1
+_KEY_LIKE = re.compile(r"^[a-z0-9_]+$")
+
+#: Cautions for heat notes (frost cautions live in :mod:`advisory.risk.cautions`).
+HEAT_CAUTIONS: dict[str, tuple[str, str]] = {
+    "heat_illness": (
+        "Know the signs of heat illness",
+        "Heavy sweating, cramps, headache, dizziness, nausea or unusual tiredness mean: stop, move "
+        "to shade, drink water and cool down. Confusion, fainting, hot dry skin or a collapse is an "
+        "emergency: call for help at once and cool the person while you wait.",
+    ),
+    "never_alone": (
+        "Never work alone in the heat",
+        "Work in pairs or within sight of others, agree check-ins, and give new or returning "
+        "workers lighter loads for the first days while they get used to the heat.",
+    ),
+    "heat_plan": (
+        "This note is not a heat plan",
+        "It helps plan the day; it does not replace your workplace heat-illness plan, the water, "
+        "shade and rest rules where you work, or the judgement of the people in the field.",
+    ),
+}
+HEAT_ALWAYS = ("heat_illness", "never_alone", "heat_plan")
+
+FOOTER_FROST = (
+    "Decision support only. This notice is built from a forecast and can be wrong: check "
+    "thermometers in the block through the night. Local codes, workplace-safety rules, equipment "
+    "makers' instructions and advice from your extension service or a licensed adviser come first.")
+FOOTER_HEAT = (
+    "Decision support only. This note is built from a forecast and can be wrong. Local codes, "
+    "workplace-safety and heat-illness rules, your workplace heat plan and advice from your "
+    "extension service or a licensed adviser come first.")
+
+SMS_MAX = 160
+
+
+# --------------------------------------------------------------------------------------------------
+# Data objects
+# --------------------------------------------------------------------------------------------------
+
+@dataclass
+class Group:
+    """A titled group of lines inside a section (e.g. one protection method)."""
+
+    title: str
+    tag: str = ""
+    lines: list[str] = field(default_factory=list)
+
+
+@dataclass
+class Section:
+    """One part of the notice body.
+
+    ``key`` names the part (``changes``, ``buds``, ``plan``, ``data``,
+    ``verification``, ``fruit``, ``crew``, ``hours``, ``status``); renderers
+    show paragraphs, then bullet ``items``, then ``groups``, then ``table``
+    (``{"header": [...], "rows": [[...], ...]}``).
+    """
+
+    key: str
+    title: str
+    paragraphs: list[str] = field(default_factory=list)
+    items: list[str] = field(default_factory=list)
+    groups: list[Group] = field(default_factory=list)
+    table: dict[str, list] | None = None
+
+
+@dataclass
+class CautionText:
+    key: str
+    title: str
+    text: str
+
+
+@dataclass
+class ChartSpec:
+    """What to draw over the curve (the curve itself is ``BlockNotice.data["curve"]``).
+
+    ``lines``: ``{"label", "value_c", "role"}`` (role ``t10``, ``t90`` or ``threshold``);
+    ``windows``: ``{"label", "start_utc", "stop_utc", "role"}`` (``protect``, ``sunburn``, ``work``);
+    ``marks``: ``{"label", "time_utc", "role"}`` (``sunset``, ``sunrise``, ``critical``, ``peak``).
+    """
+
+    kind: str
+    title: str = ""
+    lines: list[dict[str, Any]] = field(default_factory=list)
+    windows: list[dict[str, Any]] = field(default_factory=list)
+    marks: list[dict[str, Any]] = field(default_factory=list)
+
+
+@dataclass
+class BlockNotice:
+    """One block's notice for one night (frost) or day (heat); see the module docstring."""
+
+    key: str
+    kind: str
+    status: str
+    farm: str
+    farm_tz: str
+    units: str
+    block_id: int | None
+    block: str
+    station: str
+    crop: str
+    variety: str | None
+    stage: str
+    night: str
+    revision: int
+    is_update: bool
+    level: str
+    level_rank: int
+    level_name: str
+    level_meaning: str
+    colour: str
+    subject: str
+    headline: str
+    lead: list[str]
+    sms: str
+    sections: list[Section] = field(default_factory=list)
+    cautions: list[CautionText] = field(default_factory=list)
+    footer: str = ""
+    changes: list[str] = field(default_factory=list)
+    chart: ChartSpec | None = None
+    issued_utc: str | None = None
+    #: The assessment as plain data (°C, ISO 8601 UTC): the numbers for other systems and the chart.
+    data: dict[str, Any] = field(default_factory=dict)
+    type: str = "block"
+    schema: int = SCHEMA
+
+    def to_dict(self) -> dict[str, Any]:
+        return _to_plain_dict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> BlockNotice:
+        d = dict(d)
+        d["sections"] = [_section_from(s) for s in d.get("sections", [])]
+        d["cautions"] = [CautionText(**c) for c in d.get("cautions", [])]
+        d["chart"] = ChartSpec(**d["chart"]) if d.get("chart") else None
+        known = {f.name for f in dataclasses.fields(cls)}
+        return cls(**{k: v for k, v in d.items() if k in known})
+
+
+def _section_from(s: dict) -> Section:
+    s = dict(s)
+    s["groups"] = [Group(**g) for g in s.get("groups", [])]
+    return Section(**s)
+
+
+@dataclass
+class FarmRow:
+    """One block in the farm summary."""
+
+    block: str
+    block_id: int | None
+    status: str
+    level: str
+    level_rank: int
+    level_name: str
+    colour: str
+    low: str
+    critical: str
+    action: str
+    kind: str = "frost"
+
+
+@dataclass
+class FarmSummary:
+    """All of a farm's blocks for one night or day, worst first, with the crew run sheet.
+
+    ``runsheet`` holds ``rows`` (list of dicts: order, block, method, ready_by,
+    start, stop, run, amounts, low) and the run sheet's own renderings
+    ``text``, ``markdown`` and ``csv`` (from :mod:`advisory.risk.runsheet`),
+    or is empty when nothing needs a crew.
+    """
+
+    key: str
+    kind: str
+    farm: str
+    farm_tz: str
+    units: str
+    night: str
+    level: str
+    level_rank: int
+    level_name: str
+    colour: str
+    subject: str
+    headline: str
+    lead: list[str]
+    sms: str
+    rows: list[FarmRow] = field(default_factory=list)
+    runsheet: dict[str, Any] = field(default_factory=dict)
+    cautions: list[CautionText] = field(default_factory=list)
+    footer: str = ""
+    data: dict[str, Any] = field(default_factory=dict)
+    is_update: bool = False
+    revision: int = 0
+    type: str = "farm"
+    schema: int = SCHEMA
+
+    def to_dict(self) -> dict[str, Any]:
+        return _to_plain_dict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> FarmSummary:
+        d = dict(d)
+        d["rows"] = [FarmRow(**r) for r in d.get("rows", [])]
+        d["cautions"] = [CautionText(**c) for c in d.get("cautions", [])]
+        known = {f.name for f in dataclasses.fields(cls)}
+        return cls(**{k: v for k, v in d.items() if k in known})
+
+
+def notice_from_dict(d: dict[str, Any]) -> BlockNotice | FarmSummary:
+    """Rebuild a notice from ``Notice.content`` (either kind)."""
+    return FarmSummary.from_dict(d) if d.get("type") == "farm" else BlockNotice.from_dict(d)
+
+
+_NAMES: dict[type, tuple[str, ...]] = {}
+
+
+def _plain(v):
+    """JSON-able form of assessment values; same result as :func:`advisory.assessment.to_dict`, faster."""
+    t = type(v)
+    if t is float:
+        return None if v != v else v
+    if v is None or t is int or t is str or t is bool:
+        return v
+    if t is dt.datetime:
+        return v.astimezone(dt.UTC).isoformat()
+    if t is list or t is tuple:
+        return [_plain(x) for x in v]
+    if t is dict:
+        return {k: _plain(x) for k, x in v.items()}
+    if dataclasses.is_dataclass(v) and not isinstance(v, type):
+        names = _NAMES.get(t)
+        if names is None:
+            names = _NAMES[t] = tuple(f.name for f in dataclasses.fields(v))
+        return {n: _plain(getattr(v, n)) for n in names}
+    return asm._encode(v)
+
+
+def _to_plain_dict(obj) -> dict[str, Any]:
+    """A notice dataclass as a dict; ``data`` (already plain) is shared, not copied."""
+    out = {}
+    for f in dataclasses.fields(obj):
+        v = getattr(obj, f.name)
+        out[f.name] = v if f.name == "data" else _plain(v)
+    return out
+
+
+# --------------------------------------------------------------------------------------------------
+# Keys
+# --------------------------------------------------------------------------------------------------
+
+def notice_key(kind: str, farm: str, block_id: int | None, night, revision: int) -> str:
+    """The idempotency key of a notice: the same inputs always give the same key.
+
+    Parameters
+    ----------
+    kind : str
+        "frost" or "heat" (a farm summary uses the same kind with ``block_id`` None).
+    farm : str
+        Farm name (any text; a short hash keeps similar names apart).
+    block_id : int or None
+        Block id; None for the farm summary.
+    night : datetime.date or str
+        Local date of the evening (frost) or of the day (heat).
+    revision : int
+        0 for the evening (morning) notice, then 1, 2 ... for updates.
+
+    Returns
+    -------
+    str
+        e.g. ``frost:quillback-ridge-orchards-3f2a9c1d:b12:2026-04-06:r0`` (at most 100 characters).
+    """
+    night_s = night.isoformat() if isinstance(night, dt.date) else str(night)
+    digest = hashlib.sha256(farm.encode("utf-8")).hexdigest()[:8]
+    who = "farm" if block_id is None else f"b{int(block_id)}"
+    return f"{w.slug(kind, 10)}:{w.slug(farm, 40, 'farm')}-{digest}:{who}:{night_s}:r{int(revision)}"
+
+
+# --------------------------------------------------------------------------------------------------
+# Helpers
+# --------------------------------------------------------------------------------------------------
+
+class _Fmt:
+    """Formatting bound to one farm's zone and units."""
+
+    def __init__(self, tz: str, units: str):
+        self.tz, self.units = tz, units
+
+    def t(self, c):
+        return w.temp(c, self.units)
+
+    def rng(self, lo, hi):
+        return w.temp_range(lo, hi, self.units)
+
+    def d(self, c, signed=False):
+        return w.temp_delta(c, self.units, signed=signed)
+
+    def clock(self, t):
+        return w.clock(t, self.tz)
+
+    def when(self, t):
+        return w.when(t, self.tz)
+
+
+def _finite(x) -> bool:
+    return isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x)
+
+
+def _curve_extreme(a: Assessment, lowest: bool):
+    pts = [p for p in a.curve if _finite(p.p50_c)]
+    if not pts:
+        return None, None
+    p = min(pts, key=lambda q: q.p50_c) if lowest else max(pts, key=lambda q: q.p50_c)
+    return p.time_utc, p.p50_c
+
+
+def _steps(a: Assessment):
+    advised = [s for s in a.plan if s.advised and s.method != "none"]
+    none_advised = any(s.advised and s.method == "none" for s in a.plan)
+    return advised, none_advised
+
+
+def _sms(parts: list[tuple[str, bool]]) -> str:
+    """Join parts (text, required) into one text message of at most 160 GSM characters.
+
+    Optional parts are dropped from the end until it fits; then the text is cut.
+    """
+    parts = [(w.gsm_safe(t), req) for t, req in parts if t]
+    while True:
+        text = " ".join(t for t, _ in parts)
+        if len(text) <= SMS_MAX:
+            return text
+        opt = [i for i, (_, req) in enumerate(parts) if not req]
+        if not opt:
+            return text[: SMS_MAX - 3].rstrip() + "..."
+        parts.pop(opt[-1])
+
+
+def _short_name(name: str, n: int = 28) -> str:
+    return name if len(name) <= n else name[: n - 1].rstrip() + "~"
+
+
+def _caution_list(keys: list[str]) -> list[CautionText]:
+    """Caution keys (or literal texts) to caution texts, known keys first in their fixed order.
+
+    Keys come from :mod:`advisory.risk.cautions` or :data:`HEAT_CAUTIONS`; an
+    unknown key is logged and left out; any other text is shown as written.
+    """
+    out: list[CautionText] = []
+    seen = set()
+    known = [c for c in caution_texts.ordered(keys)]
+    for c in known:
+        out.append(CautionText(c.key, c.title, c.text))
+        seen.add(c.key)
+    for k in keys:
+        if k in seen:
+            continue
+        seen.add(k)
+        if k in HEAT_CAUTIONS:
+            title, text = HEAT_CAUTIONS[k]
+            out.append(CautionText(k, title, text))
+        elif k not in caution_texts.CAUTIONS:
+            if _KEY_LIKE.match(str(k)):
+                log.warning("unknown caution key %r left out of the notice", k)
+            else:
+                out.append(CautionText("note", "", str(k)))
+    return out
+
+
+def _time_pair(x):
+    """(start, stop) from a dict with start_utc/stop_utc or a 2-sequence."""
+    if isinstance(x, dict):
+        return w.parse_time(x.get("start_utc") or x.get("start")), w.parse_time(x.get("stop_utc") or x.get("stop")
+                                                                                or x.get("end_utc"))
+    if isinstance(x, list | tuple) and len(x) == 2:
+        return w.parse_time(x[0]), w.parse_time(x[1])
+    return None, None
+
+
+def _hours_window(points, cond):
+    """First..last time (UTC) of the hours where ``cond(point)`` holds, and how many hours."""
+    hit = [p for p in points if cond(p)]
+    if not hit:
+        return None, None, 0.0
+    step_h = 1.0
+    if len(points) > 1:
+        step_h = max((points[1].time_utc - points[0].time_utc).total_seconds() / 3600.0, 1e-6)
+    return hit[0].time_utc, hit[-1].time_utc, len(hit) * step_h
+
+
+# --------------------------------------------------------------------------------------------------
+# Sections shared by frost and heat
+# --------------------------------------------------------------------------------------------------
+
+def _rules(a: Assessment, s, f: _Fmt) -> tuple[str, str]:
+    """Start and stop rules; rewritten from the numbers for a farm in °F (the plan's texts are in °C)."""
+    start, stop = s.start_rule, s.stop_rule
+    if not w.imperial(f.units) or a.kind == "heat":
+        return start, stop
+    q = s.quantities or {}
+    wb, air = q.get("start_wet_bulb_c"), q.get("start_air_temp_c")
+    crit = (a.details or {}).get("critical_c", a.t10_c)
+    if _finite(wb):
+        start = f"when the wet bulb falls to {f.t(wb)}" + (
+            f" (air about {f.t(air)} at the forecast dew point)" if _finite(air) else "")
+    elif _finite(air):
+        start = f"when the air falls to {f.t(air)}"
+    if s.method == "overtree_sprinkler" and _finite(crit):
+        stop = f"after sunrise, once the wet bulb is above {f.t(crit)} and the ice is melting; never earlier"
+    elif _finite(air):
+        stop = f"after sunrise, once the air is back above {f.t(air)}"
+    return start, stop
+
+
+def _plan_section(a: Assessment, f: _Fmt) -> Section:
+    sec = Section("plan", "Protection plan" if a.kind != "heat" else "Cooling plan")
+    if not a.plan:
+        sec.paragraphs.append("No protection equipment is recorded for this block.")
+        return sec
+    order = sorted(a.plan, key=lambda s: (not s.advised, s.method == "none"))
+    for s in order:
+        if s.method == "none":
+            g = Group(w.method_name("none").capitalize(), "AT RISK" if s.advised else "")
+            g.lines.extend(s.notes)
+            sec.groups.append(g)
+            continue
+        ready = w.parse_time(getattr(s, "ready_by_utc", None))
+        if s.advised and s.start_utc is not None:
+            tag = "RUN"
+        elif s.advised:
+            tag = "BE READY"
+        else:
+            tag = "not advised"
+        g = Group(w.method_name(s.method).capitalize(), tag)
+        start_rule, stop_rule = _rules(a, s, f)
+        if s.start_utc is not None:
+            g.lines.append(f"Start {f.clock(s.start_utc)}" + (f", {start_rule}" if start_rule else ""))
+        elif ready is not None:
+            g.lines.append(f"Only if colder than forecast: start about {f.clock(ready)}"
+                           + (f", {start_rule}" if start_rule else ""))
+        elif start_rule:
+            g.lines.append(f"Start {start_rule}")
+        if s.stop_utc is not None:
+            open_ = bool(getattr(s, "stop_open", False))
+            g.lines.append(f"Stop {'not before' if open_ else 'about'} {f.clock(s.stop_utc)}"
+                           + (f", {stop_rule}" if stop_rule else ""))
+        elif stop_rule:
+            g.lines.append(f"Stop {stop_rule}")
+        q = {k: v for k, v in (s.quantities or {}).items()
+             if k not in ("start_air_temp_c", "start_wet_bulb_c") and v is not None}
+        if q:
+            g.lines.append("; ".join(f"{w.quantity_label(k)} {w.quantity(k, v, f.units)}" for k, v in q.items()))
+        if s.estimated:
+            g.lines.append("Some inputs are estimates (no direct measurement); check in the block.")
+        g.lines.extend(s.notes)
+        sec.groups.append(g)
+    return sec
+
+
+def _data_section(a: Assessment, f: _Fmt) -> Section:
+    sec = Section("data", "Data behind this notice")
+    dq = a.data_quality or {}
+    run = "evening run" if a.kind != "heat" else "morning run"
+    if a.reference_time_utc:
+        sec.items.append(f"Issued {f.when(a.reference_time_utc)} ({'update ' + str(a.revision) if a.is_update else run})")
+    latest = dq.get("latest_obs_utc")
+    age_min = dq.get("obs_age_min")
+    if latest or _finite(age_min):
+        s = "Latest observation: " + (f.when(latest) if latest else "time unknown")
+        if _finite(age_min):
+            s += f", {w.age(age_min)} old at the run"
+        sec.items.append(s)
+    sec.items.append(f"Station: {a.station}")
+    flags = dq.get("flags")
+    if isinstance(flags, dict):
+        flags = [f"{k}: {v}" for k, v in flags.items()]
+    if flags:
+        sec.items.append("Quality flags: " + "; ".join(str(x) for x in flags))
+    elif dq:
+        sec.items.append("Quality flags: none")
+    state = {k: v for k, v in dq.items()
+             if k not in ("latest_obs_utc", "obs_age_min", "flags") and _finite(v)}
+    if state:
+        sec.items.append(("Evening readings: " if a.kind != "heat" else "Morning readings: ")
+                         + ", ".join(f"{w.quantity_label(k)} {w.quantity(k, v, f.units)}" for k, v in state.items()))
+    if a.model:
+        s = f"Model: {a.model}"
+        if a.training_nights:
+            s += f", fitted on {a.training_nights} {'nights' if a.kind != 'heat' else 'days'} at this station"
+        sec.items.append(s)
+    if a.sunset_utc or a.sunrise_utc:
+        parts = []
+        if a.sunset_utc:
+            parts.append(f"sunset {f.clock(a.sunset_utc)}")
+        if a.sunrise_utc:
+            parts.append(f"sunrise {f.clock(a.sunrise_utc)}")
+        sec.items.append("Sun: " + ", ".join(parts))
+    return sec
+
+
+def _verification_section(a: Assessment, f: _Fmt) -> Section | None:
+    rows = [r for r in (a.verification or []) if isinstance(r, dict)]
+    if not rows:
+        return None
+    rows = sorted(rows, key=lambda r: str(r.get("night", "")))[-5:]
+    what = "low" if a.kind != "heat" else "high"
+    sec = Section("verification", "How recent forecasts verified here")
+    errs = []
+    table_rows = []
+    for r in rows:
+        fc, ob, er = r.get("forecast_c"), r.get("observed_c"), r.get("error_c")
+        if not _finite(er) and _finite(fc) and _finite(ob):
+            er = fc - ob
+        if _finite(er):
+            errs.append(er)
+        table_rows.append([w.short_day(str(r.get("night", ""))), f.t(fc) if _finite(fc) else "n/a",
+                           f.t(ob) if _finite(ob) else "n/a", f.d(er, signed=True) if _finite(er) else "n/a"])
+    sec.table = {"header": ["Night" if a.kind != "heat" else "Day", f"Forecast {what}", "Observed",
+                            "Forecast minus observed"], "rows": table_rows}
+    if errs:
+        mae = sum(abs(e) for e in errs) / len(errs)
+        bias = sum(errs) / len(errs)
+        lean = "about right on average"
+        if bias >= 0.3:
+            lean = f"too warm by {f.d(bias)} on average"
+        elif bias <= -0.3:
+            lean = f"too cold by {f.d(-bias)} on average"
+        sec.paragraphs.append(f"Last {len(errs)} {'nights' if a.kind != 'heat' else 'days'}: typical miss "
+                              f"{f.d(mae)}; forecasts ran {lean}.")
+    return sec
+
+
+# --------------------------------------------------------------------------------------------------
+# Frost
+# --------------------------------------------------------------------------------------------------
+
+def _frost(a: Assessment, f: _Fmt, name: str):
+    d = a.details or {}
+    t_min, _ = _curve_extreme(a, lowest=True)
+    t_min = w.parse_time(d.get("time_of_min_utc")) or t_min
+    advised, none_advised = _steps(a)
+    lead: list[str] = []
+    if _finite(a.p50_c):
+        s = f"Low {f.t(a.p50_c)}" + (f" around {f.clock(t_min)}" if t_min else "")
+        if _finite(a.p10_c) and _finite(a.p90_c):
+            s += f" (8 in 10 chance: {f.rng(a.p10_c, a.p90_c)})"
+        lead.append(s + ".")
+    stage = a.stage
+    if _finite(a.t10_c):
+        if a.critical_time_utc:
+            s = f"Critical for {stage} buds ({f.t(a.t10_c)}) from {f.clock(a.critical_time_utc)}"
+            if _finite(a.hours_below_t10) and a.hours_below_t10 > 0:
+                s += f", about {w.hours(a.hours_below_t10)} at or below it"
+            lead.append(s + ".")
+        elif _finite(a.p10_c) and a.p10_c <= a.t10_c:
+            lead.append(f"Stays above the critical {f.t(a.t10_c)} for {stage} on the middle forecast; "
+                        "the cold end of the range goes below it.")
+        else:
+            lead.append(f"Stays above the critical {f.t(a.t10_c)} for {stage}.")
+    actions = []
+    for s in advised:
+        m = w.method_name(s.method)
+        ready = w.parse_time(getattr(s, "ready_by_utc", None))
+        if s.start_utc is not None:
+            txt = f"Start {m} at {f.clock(s.start_utc)}"
+            if s.stop_utc is not None:
+                open_ = bool(getattr(s, "stop_open", False))
+                txt += f", stop {'not before' if open_ else 'about'} {f.clock(s.stop_utc)}"
+            actions.append(txt)
+        elif ready is not None:
+            actions.append(f"Have {m} ready by {f.clock(ready)}; start only if it gets colder than forecast")
+        else:
+            actions.append(f"Have {m} ready" + (f"; start {s.start_rule}" if s.start_rule else ""))
+    if actions:
+        lead.append(". ".join(actions) + ".")
+    elif none_advised:
+        lead.append("No usable protection on this block tonight.")
+    elif a.level_rank >= 2:
+        lead.append("No protection run advised on the middle forecast; have it ready and check thermometers.")
+    elif a.level_rank == 1:
+        lead.append("No protection needed on this forecast; check a thermometer late in the night.")
+    else:
+        lead.append("No protection needed tonight.")
+    if _finite(a.expected_kill_pct) and (a.level_rank >= 1 or a.expected_kill_pct >= 0.5):
+        s = f"Expected bud loss {w.pct(a.expected_kill_pct / 100.0)}"
+        if _finite(a.p_kill_ge_10pct):
+            s += f"; chance of losing 10 % or more: {w.pct(a.p_kill_ge_10pct)}"
+        lead.append(s + ".")
+
+    # headline, subject, text message
+    core = f"{a.block}: low {f.t(a.p50_c)}" if _finite(a.p50_c) else a.block
+    if a.critical_time_utc:
+        core += f", critical from {f.clock(a.critical_time_utc)}"
+    sms_parts = [(f"{name.upper()} {_short_name(a.block)} night {w.short_day(a.night)}:", True)]
+    if _finite(a.p50_c):
+        rng = (f" ({w.temp_range(a.p10_c, a.p90_c, f.units, ascii_only=True)})"
+               if _finite(a.p10_c) and _finite(a.p90_c) else "")
+        sms_parts.append((f"low {w.temp(a.p50_c, f.units, ascii_only=True)}{rng}.", True))
+    if a.critical_time_utc:
+        sms_parts.append((f"Critical from {f.clock(a.critical_time_utc)}.", False))
+    for s in advised:
+        if s.start_utc is not None:
+            stop = f"-{w.clock(s.stop_utc, f.tz)[:5]}" if s.stop_utc else ""
+            sms_parts.append((f"{w.method_name(s.method).capitalize()} {f.clock(s.start_utc)[:5]}{stop}.", False))
+    if none_advised:
+        sms_parts.append(("No usable protection.", False))
+
+    # body
+    sections = []
+    buds = Section("buds", "What it means for the buds")
+    if _finite(a.t10_c) and _finite(a.t90_c):
+        crop = w.crop_name(a.crop) + (f" ({a.variety})" if a.variety else "")
+        buds.paragraphs.append(
+            f"{crop[:1].upper() + crop[1:]} at {stage}: about 10 % of buds die after half an hour at {f.t(a.t10_c)} "
+            f"(T10) and 90 % at {f.t(a.t90_c)} (T90).")
+    if _finite(a.expected_kill_pct):
+        buds.items.append(f"Expected bud loss: {w.pct(a.expected_kill_pct / 100.0)}")
+    if _finite(a.p_kill_ge_10pct):
+        buds.items.append(f"Chance of losing 10 % of buds or more: {w.pct(a.p_kill_ge_10pct)}")
+    if _finite(d.get("p_kill_ge_90pct")):
+        buds.items.append(f"Chance of losing 90 % or more: {w.pct(d['p_kill_ge_90pct'])}")
+    if _finite(a.p_below_t10):
+        s = f"Chance the low reaches T10: {w.pct(a.p_below_t10)}"
+        if _finite(a.p_below_t90):
+            s += f"; reaches T90: {w.pct(a.p_below_t90)}"
+        buds.items.append(s)
+    if _finite(a.hours_below_t10):
+        s = f"Time at or below T10: {w.hours(a.hours_below_t10)} on the middle forecast"
+        if _finite(d.get("hours_below_t10_cold")):
+            s += f", {w.hours(d['hours_below_t10_cold'])} if colder"
+        buds.items.append(s)
+    if a.critical_source:
+        buds.items.append(f"Critical temperatures: {a.critical_source}")
+    sections.append(buds)
+    sections.append(_plan_section(a, f))
+    sections.append(_data_section(a, f))
+    ver = _verification_section(a, f)
+    if ver:
+        sections.append(ver)
+
+    chart = ChartSpec("frost", f"{a.block}: night of {w.day(a.night)}")
+    if _finite(a.t10_c):
+        chart.lines.append({"label": f"T10 {f.t(a.t10_c)}", "value_c": a.t10_c, "role": "t10"})
+    if _finite(a.t90_c):
+        chart.lines.append({"label": f"T90 {f.t(a.t90_c)}", "value_c": a.t90_c, "role": "t90"})
+    for s in advised:
+        if s.start_utc is not None:
+            chart.windows.append({"label": w.method_name(s.method), "start_utc": w.iso(s.start_utc),
+                                  "stop_utc": w.iso(s.stop_utc or a.sunrise_utc or s.start_utc), "role": "protect"})
+    if a.sunset_utc:
+        chart.marks.append({"label": f"sunset {f.clock(a.sunset_utc)}", "time_utc": w.iso(a.sunset_utc),
+                            "role": "sunset"})
+    if a.sunrise_utc:
+        chart.marks.append({"label": f"sunrise {f.clock(a.sunrise_utc)}", "time_utc": w.iso(a.sunrise_utc),
+                            "role": "sunrise"})
+
+    keys = list(a.cautions or [])
+    if not keys and (advised or none_advised):
+        for s in a.plan:
+            if s.advised:
+                keys.extend(caution_texts.cautions_for_method(s.method))
+    if keys and (advised or none_advised or a.level_rank >= 2):
+        keys.extend(caution_texts.ALWAYS)
+    return core, lead, sms_parts, sections, chart, keys
+
+
+# --------------------------------------------------------------------------------------------------
+# Heat
+# --------------------------------------------------------------------------------------------------
+
+def _heat(a: Assessment, f: _Fmt, name: str):
+    d = a.details or {}
+    pts = [p for p in a.curve if _finite(p.p50_c)]
+    t_max, v_max = _curve_extreme(a, lowest=False)
+    t_max = w.parse_time(d.get("max_time_utc")) or t_max
+    lead: list[str] = []
+    if _finite(a.p50_c):
+        s = f"High {f.t(a.p50_c)}" + (f" around {f.clock(t_max)}" if t_max else "")
+        if _finite(a.p10_c) and _finite(a.p90_c):
+            s += f" (8 in 10 chance: {f.rng(a.p10_c, a.p90_c)})"
+        s += "."
+        if d.get("max_estimated"):
+            s += " Estimated from this morning's readings (no outlook entered)."
+        lead.append(s)
+
+    # fruit
+    fruit = Section("fruit", "Fruit")
+    sb = d.get("sunburn") if isinstance(d.get("sunburn"), dict) else {}
+    thr = sb.get("threshold_c", d.get("sunburn_threshold_c"))
+    sb_hours = sb.get("hours", d.get("sunburn_hours"))
+    sb_start, sb_stop = _time_pair(sb)
+    if _finite(thr) and pts and (sb_start is None or not _finite(sb_hours)):
+        s0, s1, h = _hours_window(pts, lambda p: p.p50_c >= thr)
+        sb_start, sb_stop = sb_start or s0, sb_stop or s1
+        sb_hours = sb_hours if _finite(sb_hours) else h
+    hot_start, hot_stop = _time_pair(d.get("hottest_hours") or {})
+    if hot_start is None and pts and _finite(v_max):
+        hot_start, hot_stop, _ = _hours_window(pts, lambda p: p.p50_c >= v_max - 1.0)
+    if _finite(sb_hours) and sb_hours > 0:
+        s = f"Fruit sunburn risk for about {w.hours(sb_hours)}"
+        if sb_start and sb_stop:
+            s += f" ({f.clock(sb_start)} to {f.clock(sb_stop)})"
+        if _finite(thr):
+            s += f", air at or above {f.t(thr)}"
+        lead.append(s + ".")
+        fruit.paragraphs.append(s + " in full sun on exposed fruit.")
+    elif _finite(thr):
+        lead.append(f"Air stays below the fruit sunburn threshold of {f.t(thr)}.")
+        fruit.paragraphs.append(f"The air is not forecast to reach {f.t(thr)}, where sunburn on exposed fruit "
+                                "becomes likely in full sun.")
+    if hot_start and hot_stop:
+        fruit.items.append(f"Hottest hours: {f.clock(hot_start)} to {f.clock(hot_stop)}")
+    if sb.get("note"):
+        fruit.items.append(str(sb["note"]))
+
+    # crew
+    crew = Section("crew", "Crews")
+    safer = [_time_pair(x) for x in (d.get("safer_hours") or [])]
+    safer = [(s0, s1) for s0, s1 in safer if s0 and s1]
+    windows = [x for x in (d.get("crew_windows") or []) if isinstance(x, dict)]
+    if safer:
+        spans = ", ".join(f"{f.clock(s0)} to {f.clock(s1)}" for s0, s1 in safer)
+        lead.append(f"Heavy work: best {spans}.")
+        crew.paragraphs.append(f"Hours better suited to heavy work: {spans}.")
+    rows = []
+    for x in windows:
+        s0, s1 = _time_pair(x)
+        rows.append([f"{f.clock(s0)} to {f.clock(s1)}" if s0 and s1 else "n/a",
+                     str(x.get("label", "")),
+                     f.t(x["heat_index_max_c"]) if _finite(x.get("heat_index_max_c")) else "n/a",
+                     f.t(x["wbgt_max_c"]) if _finite(x.get("wbgt_max_c")) else "n/a",
+                     str(x.get("advice", ""))])
+    if rows:
+        crew.table = {"header": ["Hours", "Heat stress", "Heat index up to", "WBGT up to", "What to do"],
+                      "rows": rows}
+    hi_pts = [p for p in pts if _finite(p.heat_index_c)]
+    wb_pts = [p for p in pts if _finite(p.wbgt_c)]
+    if hi_pts:
+        p = max(hi_pts, key=lambda q: q.heat_index_c)
+        crew.items.append(f"Heat index peaks at {f.t(p.heat_index_c)} around {f.clock(p.time_utc)}")
+        if not safer and not windows:
+            lead.append(f"Crew heat index peaks at {f.t(p.heat_index_c)} around {f.clock(p.time_utc)}.")
+    if wb_pts:
+        p = max(wb_pts, key=lambda q: q.wbgt_c)
+        crew.items.append(f"Wet-bulb globe temperature (estimate) peaks at {f.t(p.wbgt_c)} around "
+                          f"{f.clock(p.time_utc)}")
+    for g in d.get("guidance") or []:
+        crew.items.append(str(g))
+
+    advised, _ = _steps(a)
+    for s in advised:
+        if s.start_utc is not None:
+            stop = f", stop about {f.clock(s.stop_utc)}" if s.stop_utc else ""
+            lead.append(f"Start {w.method_name(s.method)} at {f.clock(s.start_utc)}{stop}.")
+
+    # hour by hour
+    hours_sec = None
+    if pts:
+        day_pts = [p for p in pts if (not a.sunrise_utc or p.time_utc >= a.sunrise_utc)
+                   and (not a.sunset_utc or p.time_utc <= a.sunset_utc)] or pts
+        header = ["Time", "Air"]
+        has_hi, has_wb = any(_finite(p.heat_index_c) for p in day_pts), any(_finite(p.wbgt_c) for p in day_pts)
+        if has_hi:
+            header.append("Heat index")
+        if has_wb:
+            header.append("WBGT")
+        trows = []
+        for p in day_pts[:24]:
+            r = [f.clock(p.time_utc), f.t(p.p50_c)]
+            if has_hi:
+                r.append(f.t(p.heat_index_c) if _finite(p.heat_index_c) else "n/a")
+            if has_wb:
+                r.append(f.t(p.wbgt_c) if _finite(p.wbgt_c) else "n/a")
+            trows.append(r)
+        hours_sec = Section("hours", "Hour by hour", table={"header": header, "rows": trows})
+
+    core = f"{a.block}: high {f.t(a.p50_c)}" if _finite(a.p50_c) else a.block
+    if hot_start and hot_stop:
+        core += f", hottest {f.clock(hot_start)[:5]}-{f.clock(hot_stop)}"
+    sms_parts = [(f"{name.upper()} {_short_name(a.block)} {w.short_day(a.night)}:", True)]
+    if _finite(a.p50_c):
+        sms_parts.append((f"high {w.temp(a.p50_c, f.units, ascii_only=True)}"
+                          + (f" at {f.clock(t_max)}" if t_max else "") + ".", True))
+    if _finite(sb_hours) and sb_hours > 0:
+        sms_parts.append((f"Sunburn risk {sb_hours:.0f} h.", False))
+    if safer:
+        sms_parts.append((f"Heavy work best {f.clock(safer[0][0])[:5]}-{f.clock(safer[0][1])}.", False))
+    sms_parts.append(("Water, shade, rest; never work alone.", False))
+
+    sections = []
+    if fruit.paragraphs or fruit.items:
+        sections.append(fruit)
+    if crew.paragraphs or crew.items or crew.table:
+        sections.append(crew)
+    if hours_sec:
+        sections.append(hours_sec)
+    if a.plan:
+        sections.append(_plan_section(a, f))
+    sections.append(_data_section(a, f))
+    ver = _verification_section(a, f)
+    if ver:
+        sections.append(ver)
+
+    chart = ChartSpec("heat", f"{a.block}: {w.day(a.night)}")
+    if _finite(thr):
+        chart.lines.append({"label": f"sunburn {f.t(thr)}", "value_c": thr, "role": "threshold"})
+    th = d.get("thresholds")
+    if isinstance(th, dict):
+        th = [{"label": k, "value_c": v} for k, v in th.items()]
+    for x in th or []:
+        if isinstance(x, dict) and _finite(x.get("value_c")):
+            chart.lines.append({"label": f"{x.get('label', '')} {f.t(x['value_c'])}".strip(),
+                                "value_c": x["value_c"], "role": "threshold"})
+    if sb_start and sb_stop and _finite(sb_hours) and sb_hours > 0:
+        chart.windows.append({"label": "sunburn risk", "start_utc": w.iso(sb_start), "stop_utc": w.iso(sb_stop),
+                              "role": "sunburn"})
+    for s0, s1 in safer:
+        chart.windows.append({"label": "heavy work", "start_utc": w.iso(s0), "stop_utc": w.iso(s1), "role": "work"})
+    if a.sunrise_utc:
+        chart.marks.append({"label": f"sunrise {f.clock(a.sunrise_utc)}", "time_utc": w.iso(a.sunrise_utc),
+                            "role": "sunrise"})
+    if a.sunset_utc:
+        chart.marks.append({"label": f"sunset {f.clock(a.sunset_utc)}", "time_utc": w.iso(a.sunset_utc),
+                            "role": "sunset"})
+
+    # The heat model's own caution texts when it gives them (they cover illness signs, working in pairs
+    # and the workplace heat plan); otherwise ours.
+    keys = list(a.cautions) if a.cautions else list(HEAT_ALWAYS)
+    for s in advised:
+        keys.extend(caution_texts.METHOD_CAUTIONS.get(s.method, ()))
+    return core, lead, sms_parts, sections, chart, keys
+
+
+# --------------------------------------------------------------------------------------------------
+# No result: station silent, no night, missed run
+# --------------------------------------------------------------------------------------------------
+
+def _status(a: Assessment, f: _Fmt, name: str):
+    dq = a.data_quality or {}
+    heat = a.kind == "heat"
+    when_txt = "today" if heat else "tonight"
+    lead: list[str] = []
+    if a.status == asm.STATUS_NO_FORECAST:
+        latest = dq.get("latest_obs_utc")
+        if latest:
+            first = f"No forecast {when_txt}: station {a.station} silent since {f.when(latest)}."
+        else:
+            first = f"No forecast {when_txt}: " + (a.reason.rstrip(".") + "." if a.reason
+                                                  else f"no usable data from station {a.station}.")
+        core = f"{a.block}: no forecast {when_txt}"
+        lead.append(first)
+        if latest and a.reason:
+            lead.append(f"Reason: {a.reason.rstrip('.')}.")
+        next_step = ("Check the station, its power and its data feed; the next run uses new readings "
+                     "as soon as they arrive.")
+    elif a.status == asm.STATUS_MISSED:
+        what = "morning heat run" if heat else "evening run"
+        first = f"The {what} for {'' if heat else 'the night of '}{w.day(a.night)} was missed"
+        first += f": {a.reason.rstrip('.')}." if a.reason else "."
+        core = f"{a.block}: {what} missed"
+        lead.append(first)
+        next_step = "No forecast went out in time. The next scheduled run will try again."
+    elif a.status == asm.STATUS_NO_NIGHT:
+        if heat:
+            first = f"No heat note for {w.day(a.night)}: the sun does not rise here."
+        else:
+            first = f"No frost forecast for the night of {w.day(a.night)}: the sun does not set here."
+        core = f"{a.block}: no {'day' if heat else 'night'} to forecast"
+        lead.append(first)
+        if a.reason:
+            lead.append(a.reason.rstrip(".") + ".")
+        next_step = ""
+    else:
+        first = f"No forecast: {a.reason or a.status}."
+        core = f"{a.block}: no forecast"
+        lead.append(first)
+        next_step = ""
+    if not heat and a.status != asm.STATUS_NO_NIGHT and _finite(a.t10_c):
+        lead.append(f"{a.stage.capitalize()} buds are damaged from about {f.t(a.t10_c)} (T10): check "
+                    "thermometers in the block tonight.")
+    if next_step:
+        lead.append(next_step)
+    sms_parts = [(f"{name.upper()} {_short_name(a.block)} {w.short_day(a.night)}:", True),
+                 (first.split(": ", 1)[-1], True)]
+    if not heat and a.status != asm.STATUS_NO_NIGHT and _finite(a.t10_c):
+        sms_parts.append((f"Buds hurt from {w.temp(a.t10_c, f.units, ascii_only=True)}; check thermometers.",
+                          False))
+    sections = [_data_section(a, f)]
+    ver = _verification_section(a, f)
+    if ver:
+        sections.append(ver)
+    keys = list(a.cautions or [])
+    return core, lead, sms_parts, sections, None, keys
+
+
+# --------------------------------------------------------------------------------------------------
+# Updates
+# --------------------------------------------------------------------------------------------------
+
+def _status_name(a: Assessment) -> str:
+    return w.level_style(a.kind, a.level, a.level_rank, a.status).name
+
+
+def changes(a: Assessment, previous: Assessment | None) -> list[str]:
+    """What changed between the previous notice's assessment and this one, in plain words."""
+    if previous is None:
+        return []
+    f = _Fmt(a.farm_tz, a.units)
+    out = []
+    if previous.status != a.status or previous.level != a.level:
+        out.append(f"level {_status_name(previous)} → {_status_name(a)}")
+    if _finite(a.p50_c) and _finite(previous.p50_c) and abs(a.p50_c - previous.p50_c) >= 0.3:
+        out.append(f"{'low' if a.kind != 'heat' else 'high'} {f.t(previous.p50_c)} → {f.t(a.p50_c)}")
+    pc, ac = previous.critical_time_utc, a.critical_time_utc
+    if (pc is None) != (ac is None):
+        out.append(f"critical from {f.clock(ac)}" if ac else "no longer reaches the critical temperature")
+    elif pc and ac and abs((ac - pc).total_seconds()) >= 600:
+        out.append(f"critical from {f.clock(pc)} → {f.clock(ac)}")
+    before = {s.method: s for s in previous.plan}
+    for s in a.plan:
+        m = w.method_name(s.method)
+        p = before.get(s.method)
+        if p is None or p.advised != s.advised:
+            if s.method == "none":
+                continue
+            out.append(f"{m} now advised" if s.advised else f"{m} no longer advised")
+            continue
+        if not s.advised:
+            continue
+        if (p.start_utc is None) != (s.start_utc is None) or (
+                p.start_utc and s.start_utc and abs((s.start_utc - p.start_utc).total_seconds()) >= 600):
+            out.append(f"{m} start {f.clock(p.start_utc) if p.start_utc else 'not set'} → "
+                       f"{f.clock(s.start_utc) if s.start_utc else 'not set'}")
+        if p.stop_utc and s.stop_utc and abs((s.stop_utc - p.stop_utc).total_seconds()) >= 1800:
+            out.append(f"{m} stop {f.clock(p.stop_utc)} → {f.clock(s.stop_utc)}")
+    return out
+
+
+# --------------------------------------------------------------------------------------------------
+# Public
+# --------------------------------------------------------------------------------------------------
+
+def compose_block(a: Assessment | dict, previous: Assessment | dict | None = None) -> BlockNotice:
+    """Compose one block's notice.
+
+    Parameters
+    ----------
+    a : Assessment or dict
+        The block's assessment (a dict from :func:`advisory.assessment.to_dict` is accepted).
+    previous : Assessment or dict, optional
+        For an update: the assessment of the last notice sent for this block
+        and night, to say what changed.
+
+    Returns
+    -------
+    BlockNotice
+    """
+    if isinstance(a, dict):
+        a = asm.from_dict(a)
+    if isinstance(previous, dict):
+        previous = asm.from_dict(previous)
+    key = notice_key(a.kind, a.farm, a.block_id, a.night, a.revision)
+    a = _clean_names(a)
+    f = _Fmt(a.farm_tz, a.units)
+    style = w.level_style(a.kind, a.level, a.level_rank, a.status)
+    name = style.name
+    if a.status != asm.STATUS_OK:
+        core, lead, sms_parts, sections, chart, keys = _status(a, f, name)
+    elif a.kind == "heat":
+        core, lead, sms_parts, sections, chart, keys = _heat(a, f, name)
+    else:
+        core, lead, sms_parts, sections, chart, keys = _frost(a, f, name)
+
+    changed = changes(a, previous) if a.is_update else []
+    when_txt = f"night of {w.short_day(a.night)}" if a.kind != "heat" else w.short_day(a.night)
+    first = "morning note" if a.kind == "heat" else "evening notice"
+    prefix = f"[{name}] "
+    if a.is_update:
+        prefix += f"Update {a.revision} to the {first}: "
+        upd = f"Update {a.revision} to the {first}"
+        upd += (": " + "; ".join(changed) + ".") if changed else (
+            "." if previous is None else ": small changes only; the plan stands.")
+        lead = [upd] + lead
+        sms_parts.insert(0, (f"UPDATE {a.revision}", True))
+        sections.insert(0, Section("changes", "What changed", items=changed or ["Small changes only."]))
+    subject = (prefix + core + f" ({when_txt})")[:250]
+    headline = f"{name}: {core}"
+    notice = BlockNotice(
+        key=key, kind=a.kind, status=a.status,
+        farm=a.farm, farm_tz=a.farm_tz, units=a.units, block_id=a.block_id, block=a.block, station=a.station,
+        crop=a.crop, variety=a.variety, stage=a.stage, night=a.night.isoformat(), revision=a.revision,
+        is_update=a.is_update, level=a.level, level_rank=int(a.level_rank or 0), level_name=name,
+        level_meaning=style.meaning, colour=style.colour, subject=subject, headline=headline, lead=lead,
+        sms=_sms(sms_parts), sections=sections, cautions=_caution_list(keys),
+        footer=FOOTER_HEAT if a.kind == "heat" else FOOTER_FROST, changes=changed, chart=chart,
+        issued_utc=w.iso(a.reference_time_utc), data=_plain(a))
+    return notice
+
+
+def _one_line(text):
+    """Names on one line: control characters and runs of white space become one space."""
+    if text is None:
+        return None
+    return " ".join("".join(ch if ch.isprintable() else " " for ch in str(text)).split())
+
+
+def _clean_names(a: Assessment) -> Assessment:
+    return dataclasses.replace(a, farm=_one_line(a.farm), block=_one_line(a.block), station=_one_line(a.station),
+                               variety=_one_line(a.variety), stage=_one_line(a.stage), crop=_one_line(a.crop))
+
+
+def _severity(a: Assessment) -> float:
+    """Sort weight: ok blocks by level rank; a block without a forecast ranks just below "protect"."""
+    if a.status == asm.STATUS_OK:
+        return float(a.level_rank or 0)
+    if a.status in (asm.STATUS_NO_FORECAST, asm.STATUS_MISSED):
+        return 2.5
+    return -1.0
+
+
+def _first_start(a: Assessment):
+    starts = [s.start_utc for s in a.plan if s.advised and s.start_utc is not None]
+    return min(starts) if starts else None
+
+
+def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSummary:
+    """Compose the farm summary: every block worst first, and the crew run sheet.
+
+    Parameters
+    ----------
+    assessments : list of Assessment (or dicts)
+        One per block, all of the same farm and night (or day).
+    revision : int
+        0 for the evening summary; higher when re-issued after updates.
+
+    Returns
+    -------
+    FarmSummary
+
+    Order: blocks by level rank (highest first), a block without a forecast
+    (station silent, run missed) just below the blocks to protect, blocks with
+    no night last; ties by earliest protection start, then name.
+    """
+    items = [asm.from_dict(x) if isinstance(x, dict) else x for x in assessments]
+    if not items:
+        raise ValueError("compose_farm needs at least one assessment")
+    summary_key = notice_key(items[0].kind, items[0].farm, None, items[0].night, revision)
+    items = [_clean_names(x) for x in items]
+    farms = {x.farm for x in items}
+    if len(farms) > 1:
+        raise ValueError(f"assessments of several farms: {sorted(farms)}")
+    a0 = items[0]
+    f = _Fmt(a0.farm_tz, a0.units)
+    kind = a0.kind
+    far = dt.datetime.max.replace(tzinfo=dt.UTC)
+    items.sort(key=lambda x: (-_severity(x), _first_start(x) or far, x.block))
+
+    rows: list[FarmRow] = []
+    for x in items:
+        style = w.level_style(x.kind, x.level, x.level_rank, x.status)
+        if x.status != asm.STATUS_OK:
+            low = ""
+            action = {"no_forecast": "no forecast: check the station and thermometers",
+                      "missed": "run missed: check thermometers",
+                      "no_night": "no night to forecast" if x.kind != "heat" else "no day to forecast",
+                      }.get(x.status, x.status)
+        else:
+            word = "high" if x.kind == "heat" else "low"
+            low = (f"{word} {f.t(x.p50_c)} ({f.rng(x.p10_c, x.p90_c)})"
+                   if _finite(x.p50_c) and _finite(x.p10_c) and _finite(x.p90_c) else
+                   (f"{word} {f.t(x.p50_c)}" if _finite(x.p50_c) else "n/a"))
+            advised, none_advised = _steps(x)
+            acts = []
+            for s in advised:
+                if s.start_utc is not None:
+                    acts.append(f"{w.method_name(s.method)} {f.clock(s.start_utc)}"
+                                + (f" to {f.clock(s.stop_utc)}" if s.stop_utc else ""))
+                else:
+                    acts.append(f"{w.method_name(s.method)}: be ready")
+            if none_advised:
+                acts.append("no usable protection")
+            action = "; ".join(acts) or "none needed"
+        crit = f.clock(x.critical_time_utc) if x.critical_time_utc and x.status == asm.STATUS_OK else "-"
+        rows.append(FarmRow(x.block, x.block_id, x.status, x.level, int(x.level_rank or 0), style.name,
+                            style.colour, low, crit, action, x.kind))
+
+    worst = items[0]
+    wstyle = w.level_style(worst.kind, worst.level, worst.level_rank, worst.status)
+    # the summary shows the worst *level* among blocks with a forecast
+    ok = [x for x in items if x.status == asm.STATUS_OK]
+    top = max(ok, key=lambda x: x.level_rank or 0) if ok else worst
+    tstyle = w.level_style(top.kind, top.level, top.level_rank, top.status)
+    if not ok:
+        tstyle = wstyle
+
+    counts: dict[str, int] = {}
+    for r in rows:
+        counts[r.level_name] = counts.get(r.level_name, 0) + 1
+    order_names = []
+    for r in rows:
+        if r.level_name not in order_names:
+            order_names.append(r.level_name)
+    count_txt = ", ".join(f"{counts[n]} {n}" for n in order_names)
+
+    runsheet: dict[str, Any] = {}
+    cautions_keys: list[str] = []
+    starts = [(_first_start(x), x) for x in ok]
+    starts = [(t, x) for t, x in starts if t is not None]
+    first_start = min(starts, key=lambda p: p[0]) if starts else None
+    if kind != "heat" and ok:
+        runsheet, cautions_keys = _runsheet(a0, ok, f)
+    elif kind == "heat":
+        cautions_keys = list(HEAT_ALWAYS)
+
+    when_txt = f"night of {w.short_day(a0.night)}" if kind != "heat" else w.short_day(a0.night)
+    lead = [f"{len(rows)} block{'s' if len(rows) != 1 else ''}: {count_txt}."]
+    if first_start:
+        lead.append(f"First protection start {f.clock(first_start[0])} ({first_start[1].block}).")
+    silent = [x.block for x in items if x.status in (asm.STATUS_NO_FORECAST, asm.STATUS_MISSED)]
+    if silent:
+        lead.append("No forecast for: " + ", ".join(silent) + ".")
+    core = f"{a0.farm}, {when_txt}: {count_txt}"
+    subject = f"[{tstyle.name}] {core}"[:250]
+    sms_parts = [(f"{_short_name(a0.farm, 24)} {w.short_day(a0.night)}:", True)]
+    bits = []
+    for x, r in zip(items, rows, strict=True):
+        if r.status == asm.STATUS_OK and r.level_rank < 2:
+            continue
+        bit = f"{r.level_name.upper()} {_short_name(r.block, 20)}"
+        st = _first_start(x) if r.status == asm.STATUS_OK else None
+        if st:
+            bit += f" from {f.clock(st)[:5]}"
+        bits.append(bit)
+    for i, bit in enumerate(bits):
+        sms_parts.append((bit + (";" if i < len(bits) - 1 else "."), i == 0))
+    rest = len(rows) - len(bits)
+    if not bits:
+        sms_parts.append((f"all {len(rows)} blocks {tstyle.name.lower()}.", True))
+    elif rest:
+        sms_parts.append((f"{rest} other{'s' if rest > 1 else ''} lower.", False))
+    if first_start:
+        sms_parts.append((f"(times {f.clock(first_start[0])[6:]})", False))
+
+    return FarmSummary(
+        key=summary_key, kind=kind, farm=a0.farm, farm_tz=a0.farm_tz,
+        units=a0.units, night=a0.night.isoformat(), level=top.level, level_rank=int(top.level_rank or 0),
+        level_name=tstyle.name, colour=tstyle.colour, subject=subject, headline=f"{tstyle.name}: {core}",
+        lead=lead, sms=_sms(sms_parts), rows=rows, runsheet=runsheet, cautions=_caution_list(cautions_keys),
+        footer=FOOTER_HEAT if kind == "heat" else FOOTER_FROST,
+        data={"blocks": [{"block": x.block, "block_id": x.block_id, "status": x.status, "level": x.level,
+                          "level_rank": x.level_rank, "p10_c": x.p10_c, "p50_c": x.p50_c, "p90_c": x.p90_c,
+                          "critical_time_utc": w.iso(x.critical_time_utc),
+                          "first_start_utc": w.iso(_first_start(x))} for x in items]},
+        revision=revision)
+
+
+def _runsheet(a0: Assessment, ok: list[Assessment], f: _Fmt) -> tuple[dict[str, Any], list[str]]:
+    """The crew run sheet from :mod:`advisory.risk.runsheet` (its three renderings and our table rows)."""
+    from advisory.risk import runsheet as rs
+
+    sheet = rs.build_run_sheet(a0.farm, a0.night, a0.farm_tz, ok,
+                               generated_utc=a0.reference_time_utc or None,
+                               units="imperial" if w.imperial(a0.units) else "metric")
+    rows = []
+    for r in sheet.rows:
+        p = r.plan
+        amounts = []
+        for attr, key in (("run_hours", "hours"), ("water_m3", "water_m3"), ("fuel_l", "fuel_l")):
+            v = getattr(p, attr, None)
+            if _finite(v):
+                amounts.append(f"{w.quantity_label(key)} {w.quantity(key, v, f.units)}")
+        rows.append({
+            "order": r.order, "block": r.risk.block, "method": w.method_name(p.method),
+            "ready_by": f.clock(r.ready_by) if r.ready_by else "",
+            "start": f.clock(r.start) if r.start else "",
+            "stop": (("not before " if p.stop_open else "") + f.clock(r.stop)) if r.stop else "",
+            "amounts": "; ".join(amounts),
+            "low": f"{f.t(r.risk.min_p50_c)} ({f.rng(r.risk.min_p10_c, r.risk.min_p90_c)})",
+        })
+    out = {"rows": rows, "unprotected": [r.block for r in sheet.unprotected],
+           "text": rs.render_text(sheet), "markdown": rs.render_markdown(sheet), "csv": rs.render_csv(sheet)}
+    return out, list(sheet.caution_keys)

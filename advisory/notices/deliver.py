@@ -1,0 +1,591 @@
+"""Deliver notices: outbox folder, SMTP e-mail, signed webhook, text messages (queued).
+
+Channels
+--------
+``outbox``
+    Always, once per notice (not per recipient): one file per format in
+    ``<outbox>/<night>/``: ``.txt``, ``.md``, ``.html``, ``.json`` and, when a
+    chart is drawn, ``.png`` (the HTML file shows it); a farm summary adds the
+    crew run sheet as ``.runsheet.csv``.  File names are built
+    from ASCII slugs of the farm and block names plus a hash of the notice key,
+    so any block name is safe and two notices never share a file.
+``email``
+    SMTP with STARTTLS when configured (``settings.smtp.starttls``), login when
+    a user is set.  One message per recipient: ``multipart/alternative`` with
+    the plain text and a ``multipart/related`` HTML part that carries the chart
+    PNG by Content-ID.  The password comes from :mod:`advisory.settings` only;
+    it is never stored, logged or written into an error message.
+``webhook``
+    HTTP POST of the notice JSON.  Header ``X-Advisory-Timestamp`` holds the
+    Unix time of sending; ``X-Advisory-Signature`` holds
+    ``hmac-sha256=<hex>``, the HMAC-SHA256 with the shared secret
+    (``ADVISORY_WEBHOOK_SECRET``) over ``<timestamp>.`` followed by the raw
+    body bytes, so neither the body nor the time can be changed or replayed
+    later.  Receivers check it with :func:`verify_signature`.  Without a secret
+    nothing is sent (an unsigned notice could be forged).
+``sms``
+    No text-message gateway is built in: the message (at most 160 GSM
+    characters) is written to the outbox as ``<name>.<recipient>.sms.txt``
+    with a ``To:`` line, for a gateway or a person to pick up, and logged with
+    status ``queued``.
+
+Rules
+-----
+* Every attempt is a :class:`~advisory.store.schema.Delivery` row (attempt
+  number, status ``sent``/``queued``/``failed``, error text).
+* A notice already delivered (``sent`` or ``queued``) to a recipient on a
+  channel is not delivered again, so re-running a night is safe; ``force=True``
+  (``advisory notices resend``) bypasses that rule on purpose.
+* A failing channel never stops the others.  Failures that may pass
+  (connection refused, time-outs, SMTP 4xx, HTTP 5xx/408/429) are retried in
+  rounds with growing pauses (:class:`RetryPolicy`); the pause is shared by all
+  pending deliveries, so one dead mail server delays a batch once, not once per
+  notice.  Failures that will not pass (no SMTP host or webhook secret, a
+  rejected address, HTTP 4xx) are logged once and not retried.
+* The rows are added to the caller's session and flushed; the caller commits.
+  Commit the notice row *before* delivering, and the deliveries right after, so
+  that a crash between sending and committing is as short as possible.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import hashlib
+import hmac
+import json
+import logging
+import os
+import smtplib
+import ssl
+import tempfile
+import time
+import urllib.error
+import urllib.request
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass, field
+from email.headerregistry import Address
+from email.message import EmailMessage
+from email.utils import formatdate, make_msgid
+from pathlib import Path
+from typing import Any
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from advisory import __version__
+from advisory.notices import words as w
+from advisory.notices.compose import BlockNotice, FarmSummary
+from advisory.notices.render import EXTENSIONS, as_notice, render
+from advisory.store.schema import Delivery, Notice, Recipient
+
+log = logging.getLogger(__name__)
+
+CHANNELS = ("outbox", "email", "webhook", "sms")
+#: Statuses that count as delivered.
+DONE = ("sent", "queued")
+#: Formats written to the outbox by default.
+OUTBOX_FORMATS = ("text", "markdown", "html", "json")
+
+SIGNATURE_HEADER = "X-Advisory-Signature"
+TIMESTAMP_HEADER = "X-Advisory-Timestamp"
+NOTICE_HEADER = "X-Advisory-Notice"
+DELIVERY_HEADER = "X-Advisory-Delivery"
+SIGNATURE_PREFIX = "hmac-sha256="
+
+
+@dataclass(frozen=True)
+class RetryPolicy:
+    """How often and how patiently to retry.
+
+    Attributes
+    ----------
+    attempts : int
+        Attempts per delivery in one call (1 = no retry).
+    first_delay_s : float
+        Pause after the first round [s]; each later pause is ``factor`` times longer.
+    factor : float
+    max_delay_s : float
+        Longest pause [s].
+    """
+
+    attempts: int = 3
+    first_delay_s: float = 5.0
+    factor: float = 4.0
+    max_delay_s: float = 120.0
+
+    def delay_s(self, round_index: int) -> float:
+        return min(self.first_delay_s * self.factor ** round_index, self.max_delay_s)
+
+
+class PermanentError(Exception):
+    """A failure that retrying will not fix (bad configuration, a rejected address)."""
+
+
+# --------------------------------------------------------------------------------------------------
+# Webhook signatures
+# --------------------------------------------------------------------------------------------------
+
+def sign(secret: str, timestamp: str | int, body: bytes) -> str:
+    """The signature header value for a body sent at ``timestamp`` (Unix seconds)."""
+    mac = hmac.new(secret.encode("utf-8"), f"{timestamp}.".encode("ascii") + body, hashlib.sha256)
+    return SIGNATURE_PREFIX + mac.hexdigest()
+
+
+def verify_signature(secret: str, body: bytes, signature: str | None, timestamp: str | None, *,
+                     max_age_s: float | None = 300.0, now: float | None = None) -> bool:
+    """Check a webhook delivery (for receivers and tests).
+
+    Parameters
+    ----------
+    secret : str
+        The shared secret.
+    body : bytes
+        The raw request body, exactly as received.
+    signature, timestamp : str
+        Values of the ``X-Advisory-Signature`` and ``X-Advisory-Timestamp`` headers.
+    max_age_s : float or None
+        Reject deliveries older (or further in the future) than this [s]; None to skip the check.
+    now : float, optional
+        Current Unix time (default: the clock).
+
+    Returns
+    -------
+    bool
+        True when the signature matches (compared in constant time) and the time is fresh.
+    """
+    if not signature or not timestamp or not secret:
+        return False
+    try:
+        ts = int(timestamp)
+    except ValueError:
+        return False
+    if max_age_s is not None:
+        now = time.time() if now is None else now
+        if abs(now - ts) > max_age_s:
+            return False
+    return hmac.compare_digest(sign(secret, timestamp, body), signature.strip())
+
+
+# --------------------------------------------------------------------------------------------------
+# Rendering once per notice
+# --------------------------------------------------------------------------------------------------
+
+class _Rendered:
+    """Renderings of one notice, made on first use."""
+
+    def __init__(self, notice_row: Notice):
+        self.row = notice_row
+        self.n: BlockNotice | FarmSummary = as_notice(notice_row.content)
+        self._cache: dict[str, Any] = {}
+        self.cid = make_msgid(idstring="chart", domain="advisory.local")[1:-1]
+
+    def get(self, fmt: str, chart_src: str | None = None) -> str:
+        k = (fmt, chart_src)
+        if k not in self._cache:
+            self._cache[k] = render(self.n, fmt, chart_src=chart_src)
+        return self._cache[k]
+
+    def png(self) -> bytes | None:
+        if "png" not in self._cache:
+            png = None
+            if isinstance(self.n, BlockNotice) and self.n.chart is not None and self.n.data.get("curve"):
+                try:
+                    png = _chart_for(self.n)
+                except Exception as exc:  # a chart must never stop a notice
+                    log.warning("chart for notice %s failed: %s", self.row.key, exc)
+            self._cache["png"] = png
+        return self._cache["png"]
+
+
+_CHARTS: dict[str, bytes | None] = {}
+
+
+def _chart_for(n: BlockNotice) -> bytes | None:
+    """The notice's chart, drawn once per process for the same picture (resends, several channels)."""
+    from advisory.notices.charts import chart_png
+
+    spec = json.dumps([n.block, n.units, n.farm_tz, n.kind, dataclasses.asdict(n.chart), n.data.get("curve")],
+                      sort_keys=True, default=str)
+    key = hashlib.sha256(spec.encode("utf-8")).hexdigest()
+    if key not in _CHARTS:
+        if len(_CHARTS) >= 64:
+            _CHARTS.pop(next(iter(_CHARTS)))
+        _CHARTS[key] = chart_png(n)
+    return _CHARTS[key]
+
+
+def outbox_base(outbox: Path, n: BlockNotice | FarmSummary, key: str | None = None) -> Path:
+    """Folder and file stem of a notice in the outbox (add ``.txt``, ``.html`` ...).
+
+    ``key`` is the stored notice's key (``Notice.key``; default the composed
+    notice's own key): its hash keeps every stored notice in its own files.
+    """
+    h = hashlib.sha256((key or n.key).encode("utf-8")).hexdigest()[:8]
+    who = w.slug(n.block, 40, "block") if isinstance(n, BlockNotice) else "farm-summary"
+    stem = f"{w.slug(n.farm, 24, 'farm')}_{who}_{w.slug(n.kind, 8)}_r{n.revision}_{h}"
+    return Path(outbox) / w.slug(n.night, 10, "undated") / stem
+
+
+def _write(path: Path, data: bytes) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        with _suppress():
+            os.unlink(tmp)
+        raise
+
+
+class _suppress:
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return True
+
+
+# --------------------------------------------------------------------------------------------------
+# Channels
+# --------------------------------------------------------------------------------------------------
+
+def _scrub(text: str, settings) -> str:
+    """Error text for the log and the database: never the SMTP password or the webhook secret.
+
+    Neither is ever put into a message on purpose; this catches a library
+    quoting one back.  (Secrets shorter than 6 characters are not searched for,
+    as they would match ordinary words; such secrets are too weak anyway.)
+    """
+    for secret in (getattr(getattr(settings, "smtp", None), "password", None),
+                   getattr(settings, "webhook_secret", None)):
+        if secret and len(secret) >= 6:
+            text = text.replace(secret, "***")
+    return text[:2000]
+
+
+def _send_outbox(r: _Rendered, settings, formats: Sequence[str], chart: bool) -> str:
+    base = outbox_base(settings.outbox, r.n, r.row.key)
+    png = r.png() if chart else None
+    if png:
+        _write(base.with_name(base.name + ".png"), png)
+    for fmt in formats:
+        src = base.name + ".png" if (fmt == "html" and png) else None
+        _write(base.with_name(f"{base.name}.{EXTENSIONS[fmt]}"), r.get(fmt, src).encode("utf-8"))
+    if isinstance(r.n, FarmSummary) and r.n.runsheet.get("csv"):
+        _write(base.with_name(base.name + ".runsheet.csv"), r.n.runsheet["csv"].encode("utf-8"))
+    return str(base.parent)
+
+
+def _send_sms(r: _Rendered, settings, recipient: Recipient, number: str) -> str:
+    base = outbox_base(settings.outbox, r.n, r.row.key)
+    who = f"{w.slug(recipient.name, 24, 'recipient')}-{recipient.id}"
+    path = base.with_name(f"{base.name}.{who}.sms.txt")
+    _write(path, f"To: {number}\n\n{r.get('sms')}\n".encode())
+    log.info("text message for %s queued in the outbox (no gateway configured): %s", recipient.name, path)
+    return str(path)
+
+
+def build_email(r: _Rendered, settings, recipient: Recipient, address: str) -> EmailMessage:
+    """The e-mail for one recipient: text + HTML alternatives, chart inline by Content-ID."""
+    n = r.n
+    msg = EmailMessage()
+    msg["Subject"] = " ".join(n.subject.split())
+    msg["From"] = settings.smtp.sender
+    try:
+        msg["To"] = Address(display_name=" ".join(recipient.name.split()), addr_spec=address.strip())
+    except Exception as exc:
+        raise PermanentError(f"not a usable e-mail address: {address!r} ({exc})") from None
+    msg["Date"] = formatdate(usegmt=True)
+    domain = settings.smtp.sender.rpartition("@")[2] or "advisory.local"
+    msg["Message-ID"] = make_msgid(idstring=f"n{r.row.id}", domain=domain.strip("> ") or "advisory.local")
+    msg[NOTICE_HEADER] = n.key
+    msg.set_content(r.get("text"))
+    png = r.png() if isinstance(n, BlockNotice) else None
+    msg.add_alternative(r.get("html", f"cid:{r.cid}" if png else None), subtype="html")
+    if png:
+        msg.get_payload()[1].add_related(png, maintype="image", subtype="png", cid=f"<{r.cid}>",
+                                         filename="chart.png", disposition="inline")
+    return msg
+
+
+def _send_email(r: _Rendered, settings, recipient: Recipient, address: str, *, smtp_factory, ssl_context,
+                timeout_s: float) -> str:
+    cfg = settings.smtp
+    if not cfg.host:
+        raise PermanentError("no SMTP host set (ADVISORY_SMTP_HOST or [smtp] host in the settings file)")
+    msg = build_email(r, settings, recipient, address)
+    try:
+        smtp = smtp_factory(cfg.host, int(cfg.port), timeout=timeout_s)
+    except (OSError, smtplib.SMTPException) as exc:
+        raise ConnectionError(f"cannot reach SMTP server {cfg.host}:{cfg.port}: {type(exc).__name__}: {exc}") \
+            from None
+    try:
+        smtp.ehlo()
+        if cfg.starttls:
+            try:
+                smtp.starttls(context=ssl_context or ssl.create_default_context())
+            except ssl.SSLCertVerificationError as exc:
+                raise PermanentError(f"SMTP server {cfg.host} certificate not trusted: {exc.verify_message}") \
+                    from None
+            smtp.ehlo()
+        if cfg.user:
+            smtp.login(cfg.user, cfg.password or "")
+        smtp.send_message(msg, from_addr=cfg.sender, to_addrs=[address.strip()])
+    except smtplib.SMTPNotSupportedError as exc:
+        raise PermanentError(f"SMTP server {cfg.host} does not support {exc}") from None
+    except smtplib.SMTPAuthenticationError as exc:
+        raise PermanentError(f"SMTP login refused for user {cfg.user!r}: {exc.smtp_code}") from None
+    except smtplib.SMTPRecipientsRefused as exc:
+        codes = {a: c for a, (c, _m) in exc.recipients.items()}
+        if all(400 <= c < 500 for c in codes.values()):
+            raise ConnectionError(f"recipient deferred by the server: {codes}") from None
+        raise PermanentError(f"recipient refused by the server: {codes}") from None
+    except smtplib.SMTPResponseException as exc:
+        text = f"SMTP {exc.smtp_code}: {exc.smtp_error!r}"
+        if 400 <= exc.smtp_code < 500:
+            raise ConnectionError(text) from None
+        raise PermanentError(text) from None
+    finally:
+        try:
+            smtp.quit()
+        except Exception:
+            with _suppress():
+                smtp.close()
+    return address
+
+
+def _send_webhook(r: _Rendered, settings, recipient: Recipient, url: str, *, urlopen, clock,
+                  timeout_s: float, delivery_id: str) -> str:
+    if not url.lower().startswith(("http://", "https://")):
+        raise PermanentError(f"webhook address must start with http:// or https://: {url!r}")
+    secret = settings.webhook_secret
+    if not secret:
+        raise PermanentError("no webhook secret set (ADVISORY_WEBHOOK_SECRET or [webhook] secret in the "
+                             "settings file); refusing to send an unsigned notice")
+    body = r.get("json").encode("utf-8")
+    ts = str(int(clock()))
+    req = urllib.request.Request(url, data=body, method="POST", headers={
+        "Content-Type": "application/json; charset=utf-8",
+        "User-Agent": f"advisory/{__version__}",
+        TIMESTAMP_HEADER: ts,
+        SIGNATURE_HEADER: sign(secret, ts, body),
+        NOTICE_HEADER: r.n.key,
+        DELIVERY_HEADER: delivery_id,
+    })
+    try:
+        with urlopen(req, timeout=timeout_s) as resp:
+            status = getattr(resp, "status", 200)
+            resp.read(1024)
+    except urllib.error.HTTPError as exc:
+        if exc.code in (408, 429) or exc.code >= 500:
+            raise ConnectionError(f"HTTP {exc.code} from {url}") from None
+        raise PermanentError(f"HTTP {exc.code} from {url}") from None
+    except (TimeoutError, urllib.error.URLError, OSError) as exc:
+        reason = getattr(exc, "reason", exc)
+        raise ConnectionError(f"cannot reach {url}: {reason}") from None
+    if not 200 <= status < 300:
+        raise ConnectionError(f"HTTP {status} from {url}")
+    return url
+
+
+# --------------------------------------------------------------------------------------------------
+# The delivery loop
+# --------------------------------------------------------------------------------------------------
+
+@dataclass
+class _Job:
+    rendered: _Rendered
+    channel: str
+    recipient: Recipient | None
+    address: str
+    attempt: int
+    send: Callable[[], str] = field(repr=False, default=None)
+
+
+def _existing(session: Session, notice_ids: list[int]) -> dict[tuple[int, int | None, str], tuple[int, bool]]:
+    """(notice, recipient, channel) -> (attempts so far, delivered?)."""
+    out: dict[tuple[int, int | None, str], tuple[int, bool]] = {}
+    if not notice_ids:
+        return out
+    rows = session.execute(select(Delivery.notice_id, Delivery.recipient_id, Delivery.channel, Delivery.status)
+                           .where(Delivery.notice_id.in_(notice_ids)))
+    for nid, rid, ch, status in rows:
+        n, done = out.get((nid, rid, ch), (0, False))
+        out[(nid, rid, ch)] = (n + 1, done or status in DONE)
+    return out
+
+
+def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Recipient]]], settings, *,
+                    sleep: Callable[[float], Any] = time.sleep, channels: Iterable[str] | None = None,
+                    force: bool = False, retry: RetryPolicy = RetryPolicy(),
+                    outbox_formats: Sequence[str] = OUTBOX_FORMATS, outbox_chart: bool | str = "auto",
+                    smtp_factory=smtplib.SMTP, ssl_context: ssl.SSLContext | None = None,
+                    urlopen=urllib.request.urlopen, clock: Callable[[], float] = time.time,
+                    timeout_s: float = 20.0) -> list[Delivery]:
+    """Deliver several notices, sharing the retry pauses.
+
+    Parameters
+    ----------
+    session : sqlalchemy.orm.Session
+        Delivery rows are added here and flushed; the caller commits.
+    batch : iterable of (Notice, list of Recipient)
+        Each stored notice (with ``id`` and ``content``) and who gets it.
+    settings : advisory.settings.Settings
+        ``outbox``, ``smtp`` and ``webhook_secret``.
+    sleep : callable
+        Pause between retry rounds (inject a no-op in tests).
+    channels : iterable of str, optional
+        Only these channels (of :data:`CHANNELS`); default all.
+    force : bool
+        Deliver even where already delivered (resend).
+    retry : RetryPolicy
+    outbox_formats : sequence of str
+        Formats written to the outbox (see :data:`advisory.notices.render.EXTENSIONS`).
+    outbox_chart : bool or "auto"
+        Draw the chart PNG into the outbox: always, never, or ("auto") when the
+        notice is at "stand by" or worse or goes out by e-mail in this call.
+    smtp_factory, ssl_context, urlopen, clock, timeout_s
+        Injection points for tests and special set-ups.
+
+    Returns
+    -------
+    list of Delivery
+        The rows of the attempts made by this call (already-delivered pairs are skipped silently).
+    """
+    wanted = set(CHANNELS if channels is None else channels)
+    unknown = wanted - set(CHANNELS)
+    if unknown:
+        from advisory.errors import InputError
+
+        raise InputError(f"unknown channel {', '.join(sorted(unknown))} (choose from {', '.join(CHANNELS)})",
+                         field="--channel")
+    batch = [(row, list(recips)) for row, recips in batch]
+    existing = _existing(session, [row.id for row, _ in batch])
+    jobs: list[_Job] = []
+
+    def job(r: _Rendered, channel: str, recipient: Recipient | None, address: str) -> _Job | None:
+        key = (r.row.id, None if recipient is None else recipient.id, channel)
+        count, done = existing.get(key, (0, False))
+        if done and not force:
+            return None
+        return _Job(r, channel, recipient, address, count)
+
+    for row, recips in batch:
+        r = _Rendered(row)
+        by_mail = "email" in wanted and any((rc.channels or {}).get("email") for rc in recips)
+        if "outbox" in wanted:
+            j = job(r, "outbox", None, str(Path(settings.outbox)))
+            if j:
+                rank_ok = isinstance(r.n, BlockNotice) and r.n.status == "ok" and r.n.level_rank >= 2
+                chart = outbox_chart is True or (outbox_chart == "auto" and (rank_ok or by_mail))
+                j.send = (lambda r=r, chart=chart: _send_outbox(r, settings, outbox_formats, chart))
+                jobs.append(j)
+        for rc in recips:
+            ch_map = rc.channels or {}
+            for ch in ("email", "webhook", "sms"):
+                addr = ch_map.get(ch)
+                if not addr or ch not in wanted:
+                    continue
+                addr = str(addr)
+                j = job(r, ch, rc, addr)
+                if not j:
+                    continue
+                if ch == "email":
+                    j.send = (lambda r=r, rc=rc, addr=addr: _send_email(
+                        r, settings, rc, addr, smtp_factory=smtp_factory, ssl_context=ssl_context,
+                        timeout_s=timeout_s))
+                elif ch == "webhook":
+                    j.send = (lambda r=r, rc=rc, addr=addr: _send_webhook(
+                        r, settings, rc, addr, urlopen=urlopen, clock=clock, timeout_s=timeout_s,
+                        delivery_id=f"{r.row.id}-{rc.id}"))
+                else:
+                    j.send = (lambda r=r, rc=rc, addr=addr: _send_sms(r, settings, rc, addr))
+                jobs.append(j)
+            for ch in ch_map:
+                if ch not in CHANNELS:
+                    log.warning("recipient %s: channel %r is not supported; skipped", rc.name, ch)
+
+    made: list[Delivery] = []
+    pending = jobs
+    attempts = max(1, int(retry.attempts))
+    for round_index in range(attempts):
+        again: list[_Job] = []
+        for j in pending:
+            j.attempt += 1
+            status, error, address = "sent", "", j.address
+            try:
+                address = j.send() or j.address
+                if j.channel == "sms":
+                    status = "queued"
+            except PermanentError as exc:
+                status, error = "failed", _scrub(str(exc), settings)
+            except Exception as exc:
+                status, error = "failed", _scrub(f"{type(exc).__name__}: {exc}", settings)
+                again.append(j)
+            d = Delivery(notice_id=j.rendered.row.id, recipient_id=None if j.recipient is None else j.recipient.id,
+                         channel=j.channel, address=str(address)[:500], attempt=j.attempt, status=status,
+                         attempted_at=dt.datetime.now(dt.UTC), error=error)
+            session.add(d)
+            made.append(d)
+            who = "outbox" if j.recipient is None else j.recipient.name
+            if status == "failed":
+                log.warning("notice %s -> %s by %s, attempt %d failed: %s", j.rendered.row.key, who, j.channel,
+                            j.attempt, error)
+            else:
+                log.info("notice %s -> %s by %s: %s", j.rendered.row.key, who, j.channel, status)
+        pending = again
+        if not pending or round_index == attempts - 1:
+            break
+        sleep(retry.delay_s(round_index))
+    session.flush()
+    return made
+
+
+def save_notice(session: Session, notice: BlockNotice | FarmSummary, *, farm_id: int, block_id: int | None = None,
+                forecast_id: int | None = None) -> tuple[Notice, bool]:
+    """Store a composed notice once: get the row with its key, or add it.
+
+    Returns
+    -------
+    (Notice, bool)
+        The row (flushed, with an id) and whether it was created now.  A rerun
+        finds the existing row, so delivering it again skips whatever was
+        already delivered.
+    """
+    row = session.scalar(select(Notice).where(Notice.key == notice.key))
+    if row is not None:
+        return row, False
+    row = Notice(key=notice.key, farm_id=farm_id, block_id=block_id, forecast_id=forecast_id, kind=notice.kind,
+                 night=dt.date.fromisoformat(notice.night), revision=notice.revision, is_update=notice.is_update,
+                 level=(notice.level or "")[:20], subject=notice.subject[:300], content=notice.to_dict())
+    session.add(row)
+    session.flush()
+    return row, True
+
+
+def deliver_notice(session: Session, notice_row: Notice, recipients: Sequence[Recipient], settings, *,
+                   sleep: Callable[[float], Any] = time.sleep, **kw) -> list[Delivery]:
+    """Deliver one stored notice to its recipients (see :func:`deliver_notices` for the options)."""
+    return deliver_notices(session, [(notice_row, recipients)], settings, sleep=sleep, **kw)
+
+
+def delivery_summary(rows: Iterable[Delivery]) -> dict[str, str]:
+    """``channel -> status`` of the latest attempt per recipient, for listings ("sent", "failed", "2/3 delivered")."""
+    latest: dict[tuple[int | None, str], Delivery] = {}
+    for d in rows:
+        k = (d.recipient_id, d.channel)
+        if k not in latest or (d.attempt, d.id or 0) > (latest[k].attempt, latest[k].id or 0):
+            latest[k] = d
+    out: dict[str, list[str]] = {}
+    for (_rid, ch), d in latest.items():
+        out.setdefault(ch, []).append(d.status)
+    summary = {}
+    for ch, v in out.items():
+        if len(set(v)) == 1:
+            summary[ch] = v[0]
+        else:
+            summary[ch] = f"{sum(s in DONE for s in v)}/{len(v)} delivered"
+    return summary

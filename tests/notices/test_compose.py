@@ -1,0 +1,306 @@
+"""Composing notices from hand-built assessments: every status, updates, heat, the farm summary."""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+
+import pytest
+
+from advisory.assessment import CurvePoint, ProtectionStep, from_dict, to_dict
+from advisory.notices import words
+from advisory.notices.compose import (
+    BlockNotice,
+    FarmSummary,
+    compose_block,
+    compose_farm,
+    notice_from_dict,
+    notice_key,
+)
+from tests.notices import samples
+
+UTC = dt.UTC
+
+
+def test_frost_lead_says_the_essentials_first():
+    n = compose_block(samples.frost_assessment())
+    assert n.level_name == "Protect"
+    assert n.subject.startswith("[Protect] Creek Bing")
+    # the low, its range, when it gets critical, the action with local times, the damage
+    assert n.lead[0] == "Low -2.8 °C around 05:00 PDT (8 in 10 chance: -4.1 to -1.5 °C)."
+    assert "from 02:40 PDT" in n.lead[1] and "-2.2 °C" in n.lead[1]
+    assert n.lead[2] == "Start over-tree sprinklers at 01:50 PDT, stop about 07:30 PDT."
+    assert "14 %" in n.lead[3] and "62 %" in n.lead[3]
+    keys = [s.key for s in n.sections]
+    assert keys == ["buds", "plan", "data", "verification"]
+    buds = n.sections[0]
+    assert "T10" in buds.paragraphs[0] and "-3.9 °C (T90)" in buds.paragraphs[0]
+    plan = n.sections[1].groups[0]
+    assert plan.tag == "RUN"
+    assert any("910 m³" in line for line in plan.lines)
+    data = n.sections[2]
+    assert any("10 min old" in i for i in data.items)
+    assert "Quality flags: none" in data.items
+
+
+def test_frost_cautions_and_footer():
+    n = compose_block(samples.frost_assessment())
+    keys = [c.key for c in n.cautions]
+    for k in ("sprinkler_no_stop", "ice_load", "water_supply", "crew_cold_dark", "decision_support"):
+        assert k in keys
+    assert "extension" in n.footer and "workplace-safety" in n.footer and "codes" in n.footer
+
+
+def test_cautions_added_when_plan_advises_but_none_given():
+    a = samples.frost_assessment(cautions=[])
+    keys = [c.key for c in compose_block(a).cautions]
+    assert "sprinkler_no_stop" in keys and "decision_support" in keys
+
+
+def test_unknown_caution_keys_are_left_out_and_texts_kept():
+    a = samples.frost_assessment(cautions=["ice_load", "no_such_caution", "Keep the gate to the pond locked."])
+    n = compose_block(a)
+    assert "no_such_caution" not in [c.key for c in n.cautions] + [c.text for c in n.cautions]
+    assert n.cautions[-1].text == "Keep the gate to the pond locked."
+
+
+def test_quiet_night_has_no_cautions_but_a_footer():
+    n = compose_block(samples.quiet_assessment())
+    assert n.level_name == "Quiet"
+    assert n.cautions == []
+    assert n.footer
+    assert "No protection needed tonight." in n.lead
+    assert "Stays above the critical -2.2 °C" in n.lead[1]
+    assert n.sections[1].groups[0].tag == "not advised"
+
+
+def test_notice_round_trips_through_json():
+    n = compose_block(samples.frost_assessment())
+    d = json.loads(json.dumps(n.to_dict()))
+    back = notice_from_dict(d)
+    assert isinstance(back, BlockNotice)
+    assert back == n
+    # the numbers travel with the words
+    assert from_dict(back.data).p50_c == -2.8
+
+
+def test_accepts_assessment_dicts():
+    a = samples.frost_assessment()
+    assert compose_block(to_dict(a)).lead == compose_block(a).lead
+
+
+def test_imperial_farm_gets_fahrenheit_everywhere():
+    n = compose_block(samples.frost_assessment(units="imperial"))
+    # -2.8 °C = 26.96 °F; -4.1 °C = 24.62 °F; -1.5 °C = 29.3 °F (F = 1.8 C + 32)
+    assert n.lead[0] == "Low 27.0 °F around 05:00 PDT (8 in 10 chance: 24.6 to 29.3 °F)."
+    words_shown = n.lead + [x for s in n.sections for x in s.paragraphs + s.items]
+    words_shown += [line for s in n.sections for g in s.groups for line in g.lines]
+    words_shown += [c for s in n.sections if s.table for r in s.table["rows"] for c in r]
+    assert not [x for x in words_shown if "°C" in x]
+    plan_lines = " ".join(n.sections[1].groups[0].lines)
+    assert "wet bulb falls to 29.8 °F" in plan_lines          # -1.2 °C, rewritten from the numbers
+    assert "910 m³ (240,317 gal)" in plan_lines                # 909.7 m³ x 264.172 gal/m³
+    ver = n.sections[3].table["rows"][0]
+    assert ver[3] == "+1.1 °F"                                  # a 0.6 °C difference is 1.08 °F
+
+
+def test_no_forecast_says_station_silent_since():
+    a = samples.frost_assessment(status="no_forecast", reason="no observation for 7 h", level="", level_rank=0,
+                                 p10_c=None, p50_c=None, p90_c=None, curve=[], plan=[], cautions=[],
+                                 critical_time_utc=None,
+                                 data_quality={"latest_obs_utc": "2026-04-06T21:05:00+00:00",
+                                               "obs_age_min": 455.0, "flags": ["air_temp: stuck"]})
+    n = compose_block(a)
+    assert n.level_name == "No forecast"
+    assert n.lead[0] == "No forecast tonight: station QR-CREEK silent since Mon 6 Apr 14:05 PDT."
+    assert "Reason: no observation for 7 h." in n.lead
+    assert any("-2.2 °C" in line for line in n.lead)
+    assert n.chart is None
+    assert n.sms.startswith("NO FORECAST Creek Bing 6 Apr:")
+    assert "Quality flags: air_temp: stuck" in n.sections[0].items
+
+
+def test_no_night_and_missed():
+    n = compose_block(samples.frost_assessment(status="no_night", reason="polar day at 78.2 N", plan=[],
+                                               curve=[], level="", cautions=[]))
+    assert n.lead[0] == "No frost forecast for the night of Mon 6 Apr 2026: the sun does not set here."
+    assert "polar day" in n.lead[1]
+    m = compose_block(samples.frost_assessment(status="missed", reason="server was down until 23:50",
+                                               plan=[], curve=[], level="", cautions=[]))
+    assert m.level_name == "Run missed"
+    assert m.lead[0].startswith("The evening run for the night of Mon 6 Apr 2026 was missed: server")
+    assert len(m.sms) <= 160
+
+
+def test_update_marks_and_lists_changes():
+    evening = samples.frost_assessment(level="marked", level_rank=2, p50_c=-1.9)
+    evening.plan[0].start_utc = dt.datetime(2026, 4, 7, 9, 30, tzinfo=UTC)
+    later = samples.frost_assessment(revision=1, is_update=True)
+    n = compose_block(later, evening)
+    assert n.is_update
+    assert n.subject.startswith("[Protect] Update 1 to the evening notice: Creek Bing")
+    assert n.lead[0].startswith("Update 1 to the evening notice: level Stand by → Protect")
+    assert "low -1.9 °C → -2.8 °C" in n.changes
+    assert "over-tree sprinklers start 02:30 PDT → 01:50 PDT" in n.changes
+    assert n.sections[0].key == "changes"
+    assert n.sms.startswith("UPDATE 1 PROTECT")
+    assert n.key.endswith(":r1")
+
+
+def test_update_with_no_material_change():
+    a = samples.frost_assessment(revision=2, is_update=True)
+    n = compose_block(a, samples.frost_assessment())
+    assert n.changes == []
+    assert "small changes only" in n.lead[0]
+
+
+def test_sms_fits_one_message_and_gsm_alphabet():
+    long_name = "Über-long Block Name With Ünicode — and more words than fit"
+    # One text message holds 160 characters of the GSM 7-bit default alphabet (3GPP TS 23.038).
+    for a in (samples.frost_assessment(block=long_name), samples.heat_assessment(block=long_name),
+              samples.quiet_assessment(), samples.frost_assessment(revision=3, is_update=True)):
+        s = compose_block(a).sms
+        assert len(s) <= 160
+        assert all(ch in words._GSM7_BASIC for ch in s), s
+
+
+def test_no_equipment_block():
+    a = samples.frost_assessment(plan=[ProtectionStep(method="none", advised=True,
+                                                      notes=["No protection equipment recorded for this block."])],
+                                 cautions=["no_protection"])
+    n = compose_block(a)
+    assert "No usable protection on this block tonight." in n.lead
+    assert n.sections[1].groups[0].tag == "AT RISK"
+    assert "no_protection" in [c.key for c in n.cautions]
+
+
+def test_ready_by_only_in_cold_case():
+    a = samples.frost_assessment(level="marked", level_rank=2, critical_time_utc=None)
+    a.plan[0].start_utc = None
+    a.plan[0].stop_utc = None
+    a.plan[0].ready_by_utc = dt.datetime(2026, 4, 7, 11, 10, tzinfo=UTC)  # set by the frost bridge when present
+    n = compose_block(a)
+    assert "Have over-tree sprinklers ready by 04:10 PDT" in n.lead[2]
+    assert n.sections[1].groups[0].tag == "BE READY"
+
+
+def test_heat_note():
+    n = compose_block(samples.heat_assessment())
+    assert n.kind == "heat" and n.level_name == "Very hot"
+    assert n.lead[0].startswith("High 35.4 °C around 16:00 PDT")
+    assert "sunburn" in n.lead[1] and "31.5 °C" in n.lead[1]
+    assert n.lead[2] == "Heavy work: best 06:00 PDT to 11:00 PDT."
+    keys = [s.key for s in n.sections]
+    assert keys[:3] == ["fruit", "crew", "hours"]
+    crew = n.sections[1]
+    assert crew.table["rows"][0][2] == "36.4 °C"
+    ckeys = [c.key for c in n.cautions]
+    assert {"heat_illness", "never_alone", "heat_plan"} <= set(ckeys)
+    assert "heat plan" in n.footer
+    assert n.chart.windows[0]["role"] == "sunburn"
+
+
+def test_heat_without_details_uses_the_curve():
+    a = samples.heat_assessment(details={})
+    n = compose_block(a)
+    assert any("heat index peaks at 36.4 °C" in line for line in n.lead)
+    assert any(s.key == "hours" for s in n.sections)
+
+
+def test_heat_estimated_maximum_is_said():
+    n = compose_block(samples.heat_assessment(details={"max_estimated": True}))
+    assert "Estimated from this morning's readings" in n.lead[0]
+
+
+def test_unknown_level_key_is_shown_tidily():
+    n = compose_block(samples.frost_assessment(level="very_odd", level_rank=9))
+    assert n.level_name == "Very odd"
+    assert n.colour == words.RANK_COLOURS[-1]
+
+
+def test_level_names_are_our_own():
+    banned = ("watch", "warning", "advisory", "excessive", "freeze")
+    for table in words.LEVELS.values():
+        for style in table.values():
+            assert not any(b in style.name.lower() for b in banned), style.name
+
+
+def test_notice_key_is_stable_and_distinct():
+    k = notice_key("frost", "Quillback Ridge Orchards", 3, dt.date(2026, 4, 6), 0)
+    assert k == notice_key("frost", "Quillback Ridge Orchards", 3, "2026-04-06", 0)
+    assert k != notice_key("frost", "Quillback Ridge Orchards", 3, dt.date(2026, 4, 6), 1)
+    assert k != notice_key("frost", "Quillback-Ridge Orchards", 3, dt.date(2026, 4, 6), 0)
+    assert notice_key("frost", "Quillback Ridge Orchards", None, dt.date(2026, 4, 6), 0).split(":")[2] == "farm"
+    assert len(notice_key("heat", "x" * 500, 10**9, dt.date(2026, 4, 6), 99)) <= 100
+
+
+def test_farm_summary_worst_first_with_run_sheet():
+    quiet = samples.quiet_assessment()
+    protect = samples.frost_assessment()
+    silent = samples.frost_assessment(block_id=5, block="Terrace Chardonnay", status="no_forecast", level="",
+                                      level_rank=0, plan=[], curve=[], cautions=[])
+    stand_by = samples.frost_assessment(block_id=3, block="Lower Bartlett", level="marked", level_rank=2)
+    stand_by.plan = [ProtectionStep(method="wind_machine", advised=True,
+                                    start_utc=dt.datetime(2026, 4, 7, 10, 20, tzinfo=UTC),
+                                    stop_utc=dt.datetime(2026, 4, 7, 14, 0, tzinfo=UTC),
+                                    quantities={"hours": 3.7, "inversion_c": 2.6, "start_air_temp_c": -1.2})]
+    s = compose_farm([quiet, silent, stand_by, protect])
+    assert isinstance(s, FarmSummary)
+    assert [r.block for r in s.rows] == ["Creek Bing", "Terrace Chardonnay", "Lower Bartlett", "Bench Gala"]
+    assert s.level_name == "Protect"
+    assert s.lead[0] == "4 blocks: 1 Protect, 1 No forecast, 1 Stand by, 1 Quiet."
+    assert "01:50 PDT (Creek Bing)" in s.lead[1]
+    assert "Terrace Chardonnay" in s.lead[2]
+    rows = s.runsheet["rows"]
+    assert [r["block"] for r in rows] == ["Creek Bing", "Lower Bartlett"]    # start order
+    assert rows[0]["start"] == "01:50 PDT"
+    assert "FROST RUN SHEET" in s.runsheet["text"].upper()
+    assert s.runsheet["csv"].startswith("order,")
+    assert len(s.sms) <= 160 and s.sms.startswith("Quillback Ridge Orchards 6 Apr: PROTECT Creek Bing from 01:50")
+    back = notice_from_dict(json.loads(json.dumps(s.to_dict())))
+    assert back == s
+
+
+def test_farm_summary_rejects_mixed_farms():
+    with pytest.raises(ValueError):
+        compose_farm([samples.frost_assessment(), samples.quiet_assessment(farm="Other Farm")])
+    with pytest.raises(ValueError):
+        compose_farm([])
+
+
+def test_heat_farm_summary():
+    s = compose_farm([samples.heat_assessment(), samples.heat_assessment(block_id=2, block="Creek Bing",
+                                                                         level="nil", level_rank=0)])
+    assert s.rows[0].block == "Bench Gala"
+    assert s.runsheet == {}
+    assert {"heat_illness", "never_alone", "heat_plan"} <= {c.key for c in s.cautions}
+
+
+def test_dst_night_times_carry_their_own_abbreviation():
+    # Fall-back night in Los Angeles: 2026-11-01 02:00 PDT (09:00 UTC) becomes 01:00 PST, so 01:30 happens twice.
+    a = samples.frost_assessment(night=dt.date(2026, 10, 31),
+                                 critical_time_utc=dt.datetime(2026, 11, 1, 9, 30, tzinfo=UTC),
+                                 curve=[CurvePoint(dt.datetime(2026, 11, 1, 7, 0, tzinfo=UTC), 1.0),
+                                        CurvePoint(dt.datetime(2026, 11, 1, 9, 0, tzinfo=UTC), -2.0)])
+    a.plan[0].start_utc = dt.datetime(2026, 11, 1, 8, 30, tzinfo=UTC)
+    n = compose_block(a)
+    assert "from 01:30 PST" in n.lead[1]
+    assert "at 01:30 PDT" in n.lead[2]
+
+
+def test_southern_hemisphere_zone():
+    a = samples.frost_assessment(farm_tz="Pacific/Auckland", night=dt.date(2026, 6, 10),
+                                 critical_time_utc=dt.datetime(2026, 6, 10, 15, 0, tzinfo=UTC))
+    n = compose_block(a)
+    assert "03:00 NZST" in n.lead[1]
+
+
+def test_heat_model_levels_and_caution_texts():
+    from advisory.risk import heat
+
+    for rank, key in enumerate(heat.LEVELS):
+        n = compose_block(samples.heat_assessment(level=key, level_rank=rank))
+        assert n.level_name in {"Easy day", "Hot", "Very hot", "Hot: severe"}
+    n = compose_block(samples.heat_assessment(level="high", cautions=list(heat.CAUTIONS)))
+    assert [c.text for c in n.cautions] == list(heat.CAUTIONS)       # the model's texts, not doubled
+    assert compose_block(samples.heat_assessment(level="acute", level_rank=3)).level_name == "Hot: severe"
