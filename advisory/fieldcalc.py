@@ -188,10 +188,21 @@ def start_air_temp_c(critical_c, dew_point_c, margin_c=0.0, pressure_kpa=moistur
     When sprinklers start, evaporation cools wetted buds toward the wet-bulb
     temperature, so sprinkling must begin while the wet bulb is still at or
     above the critical temperature [3]_.  This finds the air temperature whose
-    thermodynamic wet bulb (ASHRAE [1]_, :func:`advisory.physics.moisture.wet_bulb_c`)
-    for the given dew point equals ``critical_c + margin_c``.  Where the dew
-    point is at or above that target the air is saturated at the target, so
-    the answer is the target itself.
+    thermodynamic wet bulb (ASHRAE [1]_, as in
+    :func:`advisory.physics.moisture.wet_bulb_c`) for the given dew point equals
+    ``critical_c + margin_c``.
+
+    The ASHRAE balance (eq. 33 over water, eq. 35 over ice) is linear in the
+    air temperature once the wet bulb and the humidity ratio are fixed, so the
+    answer is exact and closed-form::
+
+        T = [(L - a Tw) Ws(Tw) + 1.006 Tw - W (L - b Tw)] / (1.006 + 1.86 W)
+
+    with (L, a, b) = (2501, 2.326, 4.186) for a wet bulb above 0 °C and
+    (2830, 0.24, 2.1) for an ice bulb at or below 0 °C, W the humidity ratio of
+    the air (from the dew point) and Ws the saturation humidity ratio at the
+    wet bulb.  Where the dew point is at or above the target the air is
+    saturated at the target, so the answer is the target itself.
 
     Parameters
     ----------
@@ -211,22 +222,22 @@ def start_air_temp_c(critical_c, dew_point_c, margin_c=0.0, pressure_kpa=moistur
 
     References
     ----------
-    .. [1] ASHRAE (2017) Handbook - Fundamentals, ch. 1.
+    .. [1] ASHRAE (2017) Handbook - Fundamentals, ch. 1, eqs. 20, 33, 35.
     .. [3] Snyder & de Melo-Abreu (2005), ch. 7.
     """
-    target, td, p = np.broadcast_arrays(np.asarray(critical_c, float) + np.asarray(margin_c, float),
-                                        np.asarray(dew_point_c, float), np.asarray(pressure_kpa, float))
-    lo = np.maximum(target, td).astype(float)
-    # The wet-bulb depression is below ~half the dew-point depression near 0 °C,
-    # so the answer lies well inside target + 2 * (target - dew point) + 5 K.
-    hi = lo + 2.0 * np.maximum(target - td, 0.0) + 5.0
-    for _ in range(50):
-        mid = 0.5 * (lo + hi)
-        wb = np.asarray(moisture.wet_bulb_c(mid, np.minimum(td, mid), p))
-        above = wb > target
-        hi = np.where(above, mid, hi)
-        lo = np.where(above, lo, mid)
-    out = np.where(td >= target, target, 0.5 * (lo + hi))
+    tw, td, p = np.broadcast_arrays(np.asarray(critical_c, float) + np.asarray(margin_c, float),
+                                    np.asarray(dew_point_c, float), np.asarray(pressure_kpa, float))
+    eps = 0.621945  # ASHRAE ratio of molecular masses
+    e = np.asarray(moisture.saturation_vapour_pressure_kpa(td))
+    w = eps * e / (p - e)
+    ice = tw <= 0.0
+    es = np.asarray(moisture.saturation_vapour_pressure_kpa(tw, over_ice=ice))
+    ws = eps * es / (p - es)
+    big_l = np.where(ice, 2830.0, 2501.0)
+    a = np.where(ice, 0.24, 2.326)
+    b = np.where(ice, 2.1, 4.186)
+    t = ((big_l - a * tw) * ws + 1.006 * tw - w * (big_l - b * tw)) / (1.006 + 1.86 * w)
+    out = np.where(td >= tw, tw, np.maximum(t, tw))
     return float(out) if out.ndim == 0 else out
 
 

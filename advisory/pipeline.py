@@ -147,10 +147,10 @@ def _silence_reason(station: Station, latest: pd.Timestamp | None, reason: str |
 def _curves_on_grid(fc: NightForecast, states: pd.DataFrame, idx: np.ndarray, elevation_m: np.ndarray
                     ) -> frost.NightCurves:
     """The forecast's median curves for blocks ``idx`` on one shared 15-minute UTC grid."""
-    ref = fc.reference_time[idx]
-    end = fc.sunrise[idx] + pd.Timedelta(hours=2)
+    ref = fc.reference_time[idx].as_unit("ns")
+    end = (fc.sunrise[idx] + pd.Timedelta(hours=2)).as_unit("ns")
     start = ref.min().floor("15min")
-    grid = pd.date_range(start, end.max().ceil("15min"), freq="15min")
+    grid = pd.date_range(start, end.max().ceil("15min"), freq="15min").as_unit("ns")
     hours = (grid.asi8[:, None] - ref.asi8[None, :]) / 3.6e12          # (H, n)
     sub_phys = _subset_physical(fc, idx)
     tmin = fc.quantile(0.5)[idx]
@@ -271,7 +271,7 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
             a.status = asm.STATUS_NO_FORECAST
             a.reason = _silence_reason(b.station, latest, fc.reason[i], b.farm.timezone)
         if not pd.isna(row["reference_time"]):
-            a.reference_time_utc = row["reference_time"].to_pydatetime()
+            a.reference_time_utc = row["reference_time"].round("s").to_pydatetime()
         out.append(a)
 
     idx = np.flatnonzero(ok)
@@ -313,7 +313,7 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
                     continue
                 p50 = float(temps_p50[h, i])
                 pts.append(asm.CurvePoint(
-                    time_utc=pd.Timestamp(t).tz_localize("UTC").to_pydatetime(), p50_c=p50,
+                    time_utc=pd.Timestamp(t).tz_localize("UTC").round("s").to_pydatetime(), p50_c=p50,
                     p10_c=float(temps_p10[h, i]), p90_c=float(temps_p90[h, i]),
                     wet_bulb_c=float(moisture.wet_bulb_c(p50, min(dew, p50), pk))))
             a.curve = pts
@@ -461,22 +461,21 @@ def _deliver(db, to_send: list[tuple[Notice, list]], settings, *, sleep=None) ->
     return dict(counts)
 
 
-def _pending_notices(db, keys_like: str | None, night: dt.date, kind_prefix: str) -> list[tuple[Notice, list]]:
-    """Notices of a night with no successful outbox delivery yet (after a crash between store and deliver)."""
+def _pending_notices(db, night: dt.date, kind_prefix: str, farm_ids: Sequence[int]) -> list[tuple[Notice, list]]:
+    """A night's notices with no outbox delivery yet (new ones, or left by a crash before delivery)."""
     from advisory.store.schema import Delivery
 
     out = []
+    if not farm_ids:
+        return out
     with db.transaction() as session:
-        rows = session.scalars(select(Notice).where(Notice.night == night, Notice.kind.like(f"{kind_prefix}%")))
+        delivered = select(Delivery.notice_id).where(Delivery.channel == "outbox", Delivery.status == "sent")
+        rows = session.scalars(select(Notice).where(Notice.night == night, Notice.kind.like(f"{kind_prefix}%"),
+                                                    Notice.farm_id.in_(list(farm_ids)),
+                                                    Notice.id.not_in(delivered)).order_by(Notice.id))
         for n in rows:
-            sent = session.scalar(select(func.count()).select_from(Delivery)
-                                  .where(Delivery.notice_id == n.id, Delivery.channel == "outbox",
-                                         Delivery.status == "sent"))
-            if sent:
-                continue
             if n.block_id is not None:
-                b = session.get(Block, n.block_id)
-                recips = list(b.recipients)
+                recips = list(session.get(Block, n.block_id).recipients)
             else:
                 recips = list(session.get(Farm, n.farm_id).recipients)
             out.append((n, recips))
@@ -559,20 +558,22 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
     if state == "finished":
         res.skipped.append(f"run {key} already done")
         return res
-    to_send: list[tuple[Notice, list]] = []
     if state == "new":
         with db.transaction() as session:
             blocks = _load_blocks(session, block_ids, farm, names)
             res.assessments = assess_night(session, blocks, night, as_of=now if update else None, update=update)
-            to_send, res.skipped = _store(session, res.assessments, revision_mode="update" if update else "evening",
-                                          now=now)
-            res.notices = [n.id for n, _ in to_send]
+            stored, res.skipped = _store(session, res.assessments,
+                                         revision_mode="update" if update else "evening", now=now)
+            res.notices = [n.id for n, _ in stored]
+            farm_ids = sorted({b.farm_id for b in blocks})
             _mark_run(session, key, "stored", now)
-    else:  # stored before a crash: deliver what is still pending
-        to_send = _pending_notices(db, key, night, "frost")
+    else:  # stored before a crash or a stop: only delivery is left
+        with db.transaction() as session:
+            farm_ids = sorted({b.farm_id for b in _load_blocks(session, block_ids, farm, names)})
     if deliver:
-        res.deliveries = _deliver(db, to_send, settings, sleep=sleep)
-    _mark_run(db, key, "finished", now, {"notices": len(to_send)})
+        # New notices, and any of this night's notices that a crash left undelivered.
+        res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids), settings, sleep=sleep)
+    _mark_run(db, key, "finished", now)
     return res
 
 
@@ -595,10 +596,12 @@ def record_missed(db, night: dt.date, block_ids: Sequence[int], *, key: str, run
                         "Check the block yourself or run `advisory night run` by hand.")
             a.reference_time_utc = run_at
             out.append(a)
-        to_send, res.skipped = _store(session, out, revision_mode="missed", now=now)
+        stored, res.skipped = _store(session, out, revision_mode="missed", now=now)
+        res.notices = [n.id for n, _ in stored]
+        farm_ids = sorted({b.farm_id for b in blocks})
         res.assessments = out
         _mark_run(session, key, "stored", now)
-    res.deliveries = _deliver(db, to_send, settings)
+    res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids), settings)
     _mark_run(db, key, "finished", now)
     return res
 
@@ -619,7 +622,7 @@ def observed_minimum(frame: pd.DataFrame, start: pd.Timestamp, end: pd.Timestamp
     inside = s[(s.index >= start) & (s.index <= end)]
     if len(inside) == 0:
         return None
-    times = s.index
+    times = s.index.as_unit("ns")
     if times.min() > start + pd.Timedelta(minutes=max_gap_min) or times.max() < end - pd.Timedelta(
             minutes=max_gap_min):
         return None
@@ -726,17 +729,21 @@ def night_history(frame: pd.DataFrame, lat: float, lon: float, tz: str, now: dt.
 
 
 def run_planned(db, kind: str, night: dt.date, block_ids: list[int], *, run_at: dt.datetime, key: str) -> None:
-    """Entry point of the scheduler's jobs."""
-    now = dt.datetime.now(dt.UTC)
+    """Entry point of the scheduler's jobs.
+
+    The planned time is the run's logical clock: an update uses the readings up
+    to ``run_at`` even when the job fires a little late, which makes a rerun
+    after a restart give the same result.
+    """
     if kind == "evening":
-        run_night(db, night, block_ids, key=key, now=max(now, run_at))
+        run_night(db, night, block_ids, key=key, now=run_at)
     elif kind == "update":
-        run_night(db, night, block_ids, key=key, now=max(now, run_at), update=True)
+        run_night(db, night, block_ids, key=key, now=run_at, update=True)
     elif kind == "morning":
-        verify_night(db, night, block_ids, key=key, now=max(now, run_at))
+        verify_night(db, night, block_ids, key=key, now=run_at)
     elif kind == "heat":
         from advisory import heat_pipeline
 
-        heat_pipeline.run_heat(db, night, block_ids, key=key, now=max(now, run_at))
+        heat_pipeline.run_heat(db, night, block_ids, key=key, now=run_at)
     else:
         raise ValueError(f"unknown run kind {kind!r}")

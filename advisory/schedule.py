@@ -266,6 +266,7 @@ def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None =
     """
     import threading
 
+    from apscheduler.executors.pool import ThreadPoolExecutor
     from apscheduler.jobstores.memory import MemoryJobStore
     from apscheduler.jobstores.sqlalchemy import SQLAlchemyJobStore
     from apscheduler.schedulers.background import BackgroundScheduler
@@ -273,9 +274,11 @@ def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None =
     s = settings or PlannerSettings()
     now_fn = clock or (lambda: dt.datetime.now(dt.UTC))
     stop = threading.Event()
+    # Runs execute one at a time (a later run reads what the earlier one stored); the planner has its own thread.
     scheduler = BackgroundScheduler(
         jobstores={"runs": SQLAlchemyJobStore(engine=db.engine, tablename="apscheduler_jobs"),
                    "default": MemoryJobStore()},
+        executors={"default": ThreadPoolExecutor(1), "planner": ThreadPoolExecutor(1)},
         job_defaults={"max_instances": 1}, timezone=dt.UTC)
 
     def planner_tick():
@@ -297,7 +300,7 @@ def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None =
             signal.signal(sig, _stop)
     scheduler.start()
     scheduler.add_job(planner_tick, "interval", minutes=planner_every_min, id="planner",
-                      next_run_time=dt.datetime.now(dt.UTC), jobstore="default")
+                      next_run_time=dt.datetime.now(dt.UTC), jobstore="default", executor="planner")
     echo(f"serving {db.url.split('///')[-1]}: planner every {planner_every_min} min; Ctrl-C to stop")
     try:
         stop.wait(timeout=stop_after_s)
@@ -307,3 +310,66 @@ def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None =
             for sig, handler in previous.items():
                 signal.signal(sig, handler)
         echo("scheduler stopped")
+
+
+def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: PlannerSettings | None = None,
+             echo=print) -> int:
+    """Run one night's planned runs through the real scheduler on a compressed clock.
+
+    Every run of the night (evening, hourly updates, morning verification) is
+    placed as a job in the database job store at ``seconds_per_hour`` real
+    seconds per hour of the night, counted from the first run; each job uses its
+    planned time as its logical clock.  For demonstrations and tests: a person
+    sees a whole night within a minute.
+
+    Returns the number of runs executed.
+    """
+    import threading
+
+    from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_EXECUTED
+    from apscheduler.executors.pool import ThreadPoolExecutor
+    from apscheduler.jobstores.sqlalchemy import SQLAlchemyJobStore
+    from apscheduler.schedulers.background import BackgroundScheduler
+
+    s = settings or PlannerSettings(kinds=(EVENING, UPDATE, MORNING))
+    clocks = load_block_clocks(db)
+    day_start = dt.datetime.combine(night, dt.time(0), dt.UTC)
+    runs = [r for r in plan(clocks, day_start - dt.timedelta(hours=12), day_start + dt.timedelta(hours=48), s)
+            if r.night == night]
+    if not runs:
+        echo(f"night {night}: nothing to run")
+        return 0
+    first = runs[0].run_at
+    wall0 = dt.datetime.now(dt.UTC) + dt.timedelta(seconds=1)
+    done = threading.Event()
+    executed = []
+    remaining = {r.key for r in runs}
+
+    scheduler = BackgroundScheduler(jobstores={"default": SQLAlchemyJobStore(engine=db.engine)},
+                                    executors={"default": ThreadPoolExecutor(1)},
+                                    job_defaults={"max_instances": 1, "misfire_grace_time": 3600},
+                                    timezone=dt.UTC)
+
+    def listener(event):
+        remaining.discard(event.job_id)
+        executed.append(event.job_id)
+        if event.exception is not None:
+            echo(f"  run {event.job_id} failed: {event.exception}")
+        if not remaining:
+            done.set()
+
+    scheduler.add_listener(listener, EVENT_JOB_EXECUTED | EVENT_JOB_ERROR)
+    scheduler.start(paused=True)
+    for r in runs:
+        wall = wall0 + dt.timedelta(seconds=(r.run_at - first).total_seconds() / 3600 * seconds_per_hour)
+        scheduler.add_job(execute_run, "date", run_date=wall, id=r.key, replace_existing=True,
+                          args=[db.url, r.kind, r.night.isoformat(), list(r.block_ids), r.run_at.isoformat(),
+                                r.key])
+        echo(f"  placed {r.kind:<8} {r.run_at:%H:%M}Z for {len(r.block_ids)} block(s) "
+             f"-> in {(wall - wall0).total_seconds() + 1:.0f} s")
+    scheduler.resume()
+    total = (runs[-1].run_at - first).total_seconds() / 3600 * seconds_per_hour + 60
+    done.wait(timeout=total)
+    scheduler.shutdown(wait=True)
+    echo(f"night {night}: {len(executed)} of {len(runs)} runs executed")
+    return len(executed)

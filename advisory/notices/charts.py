@@ -20,6 +20,7 @@ import math
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.dates import AutoDateLocator, DateFormatter, HourLocator
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 from advisory.notices import words as w
 from advisory.notices.compose import BlockNotice, notice_from_dict
@@ -89,7 +90,7 @@ def chart_png(notice: BlockNotice | dict, *, width_px: int = 480, height_px: int
 
     fig = Figure(figsize=(width_px / dpi, height_px / dpi), dpi=dpi)
     FigureCanvasAgg(fig)
-    ax = fig.add_axes((0.12, 0.33, 0.81, 0.57))
+    ax = fig.add_axes((0.13, 0.33, 0.80, 0.57))
     ax.set_facecolor("#ffffff")
     ax.grid(True, color=GRID, linewidth=0.6)
     for side in ("top", "right"):
@@ -152,7 +153,8 @@ def chart_png(notice: BlockNotice | dict, *, width_px: int = 480, height_px: int
     ax.xaxis.set_major_formatter(DateFormatter("%H:%M", tz=tz))
     abbrs = sorted({t.astimezone(tz).strftime("%Z") for t in (t0, t1)})
     ax.set_xlabel(f"local time ({'/'.join(abbrs)})", fontsize=10, color=INK)
-    ax.set_ylabel(w.temp_unit(units), fontsize=10, color=INK)
+    ax.yaxis.set_major_locator(MaxNLocator(nbins=6, integer=True))
+    ax.set_ylabel(w.temp_unit(units), fontsize=10, color=INK, labelpad=2)
     ax.set_title(n.chart.title or n.block, fontsize=11, color=INK, loc="left", parse_math=False)
 
     handles, labels = ax.get_legend_handles_labels()

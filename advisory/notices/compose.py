@@ -488,15 +488,21 @@ def _rules(a: Assessment, s, f: _Fmt) -> tuple[str, str]:
     return start, stop
 
 
+#: Quantities shown for a method that is not advised (they explain why).
+_ADEQUACY_KEYS = ("rate_needed_mm_h", "required_rate_mm_h", "rate_available_mm_h", "rate_mm_h", "inversion_c")
+
+
 def _plan_section(a: Assessment, f: _Fmt) -> Section:
     sec = Section("plan", "Protection plan" if a.kind != "heat" else "Cooling plan")
     if not a.plan:
         sec.paragraphs.append("No protection equipment is recorded for this block.")
         return sec
     order = sorted(a.plan, key=lambda s: (not s.advised, s.method == "none"))
+    has_equipment = any(s.method != "none" for s in a.plan)
     for s in order:
         if s.method == "none":
-            g = Group(w.method_name("none").capitalize(), "AT RISK" if s.advised else "")
+            title = "No usable protection" if has_equipment else w.method_name("none").capitalize()
+            g = Group(title, "AT RISK" if s.advised else "")
             g.lines.extend(s.notes)
             sec.groups.append(g)
             continue
@@ -509,8 +515,23 @@ def _plan_section(a: Assessment, f: _Fmt) -> Section:
             tag = "not advised"
         g = Group(w.method_name(s.method).capitalize(), tag)
         start_rule, stop_rule = _rules(a, s, f)
+        q = {k: v for k, v in (s.quantities or {}).items()
+             if k not in ("start_air_temp_c", "start_wet_bulb_c") and v is not None}
+        if not s.advised:
+            # Why not, and the figures that say so; no times, amounts or run instructions ("keep running
+            # until ...") that could read as an order for a method the plan does not advise.
+            g.lines.extend(n for n in s.notes if "keep running" not in n.lower())
+            q = {k: v for k, v in q.items() if k in _ADEQUACY_KEYS}
+            if q:
+                g.lines.append("; ".join(f"{w.quantity_label(k)} {w.quantity(k, v, f.units)}" for k, v in q.items()))
+            if start_rule:
+                g.lines.append(f"Its start rule: {start_rule}")
+            sec.groups.append(g)
+            continue
         if s.start_utc is not None:
             g.lines.append(f"Start {f.clock(s.start_utc)}" + (f", {start_rule}" if start_rule else ""))
+            if ready is not None and ready < s.start_utc:
+                g.lines.append(f"Be ready by {f.clock(ready)}: that is when it starts if the night runs colder")
         elif ready is not None:
             g.lines.append(f"Only if colder than forecast: start about {f.clock(ready)}"
                            + (f", {start_rule}" if start_rule else ""))
@@ -522,8 +543,6 @@ def _plan_section(a: Assessment, f: _Fmt) -> Section:
                            + (f", {stop_rule}" if stop_rule else ""))
         elif stop_rule:
             g.lines.append(f"Stop {stop_rule}")
-        q = {k: v for k, v in (s.quantities or {}).items()
-             if k not in ("start_air_temp_c", "start_wet_bulb_c") and v is not None}
         if q:
             g.lines.append("; ".join(f"{w.quantity_label(k)} {w.quantity(k, v, f.units)}" for k, v in q.items()))
         if s.estimated:
@@ -639,6 +658,8 @@ def _frost(a: Assessment, f: _Fmt, name: str):
         ready = w.parse_time(getattr(s, "ready_by_utc", None))
         if s.start_utc is not None:
             txt = f"Start {m} at {f.clock(s.start_utc)}"
+            if ready is not None and ready < s.start_utc:
+                txt += f" (ready by {f.clock(ready)} in case it runs colder)"
             if s.stop_utc is not None:
                 open_ = bool(getattr(s, "stop_open", False))
                 txt += f", stop {'not before' if open_ else 'about'} {f.clock(s.stop_utc)}"

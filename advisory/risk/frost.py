@@ -945,14 +945,22 @@ def _num(params: Mapping, key: str, lo: float = 0.0, hi: float = 1e9) -> float |
     return f
 
 
-def _scenario(curves: NightCurves, shift: np.ndarray):
-    """Air and wet-bulb curves shifted by ``shift`` (n,)."""
+def _scenario(curves: NightCurves, shift: np.ndarray, rows: np.ndarray):
+    """Air and wet-bulb curves shifted by ``shift`` (n,).
+
+    The wet bulb (the costly part) is computed only for ``rows`` (bool, n) -
+    the blocks with sprinklers; elsewhere it is NaN and unused.
+    """
     air = curves.air_temp_c + shift[:, None]
     td = np.minimum(curves.dew_point_c, air)
     td = np.where(np.isfinite(td), td, air - 3.0)  # missing dew point: assume a 3 K depression
-    wb = np.asarray(moisture.wet_bulb_c(np.where(np.isfinite(air), air, 0.0), np.where(
-        np.isfinite(air), td, 0.0), curves.pressure_kpa[:, None]))
-    wb = np.where(np.isfinite(air), wb, np.nan)
+    wb = np.full_like(air, np.nan)
+    if rows.any():
+        a, d = air[rows], td[rows]
+        ok = np.isfinite(a)
+        w = np.asarray(moisture.wet_bulb_c(np.where(ok, a, 0.0), np.where(ok, d, 0.0),
+                                           curves.pressure_kpa[rows][:, None]))
+        wb[rows] = np.where(ok, w, np.nan)
     return air, td, wb
 
 
@@ -1005,8 +1013,10 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
     valid = np.isfinite(curves.air_temp_c)
     crit = t10
     # Scenarios: the curve moved so its minimum is the median (central) or the 10th percentile (cold).
-    air_c, _, wb_c = _scenario(curves, forecast.p50_c - dmg.curve_min_c)
-    air_k, _, wb_k = _scenario(curves, forecast.p10_c - dmg.curve_min_c)
+    kinds_per_block = [_equipment_by_kind(b.equipment) for b in blocks]
+    has_spr = np.array([bool({"overtree_sprinkler", "undertree_sprinkler"} & k.keys()) for k in kinds_per_block])
+    air_c, _, wb_c = _scenario(curves, forecast.p50_c - dmg.curve_min_c, has_spr)
+    air_k, _, wb_k = _scenario(curves, forecast.p10_c - dmg.curve_min_c, has_spr)
     hours_t10 = _hours_at_or_below(times_ns, air_c, crit)
     p_min_t10 = forecast.cdf_at(t10)
     p_min_t90 = forecast.cdf_at(t90)
@@ -1066,7 +1076,7 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
     out: list[BlockRisk] = []
     for i, b in enumerate(blocks):
         st = s[i]
-        kinds = _equipment_by_kind(b.equipment)
+        kinds = kinds_per_block[i]
         needs = int(dmg.level_index[i]) >= st.protect_level_index
         plans: list[MethodPlan] = []
         for method in METHODS:

@@ -304,3 +304,27 @@ def test_heat_model_levels_and_caution_texts():
     n = compose_block(samples.heat_assessment(level="high", cautions=list(heat.CAUTIONS)))
     assert [c.text for c in n.cautions] == list(heat.CAUTIONS)       # the model's texts, not doubled
     assert compose_block(samples.heat_assessment(level="acute", level_rank=3)).level_name == "Hot: severe"
+
+
+def test_method_not_advised_shows_why_not_when():
+    a = samples.frost_assessment(level="grave", level_rank=4)
+    a.plan[0].advised = False
+    a.plan[0].notes = ["Stop condition not reached before the forecast ends; keep running until it is.",
+                       "System rate 3.8 mm/h is below the 10.2 mm/h needed."]
+    a.plan[0].quantities = {**a.plan[0].quantities, "rate_needed_mm_h": 10.2}
+    a.plan.append(ProtectionStep(method="none", advised=True, notes=["No usable protection tonight."]))
+    n = compose_block(a)
+    groups = {g.title: g for g in n.sections[1].groups}
+    assert groups["No usable protection"].tag == "AT RISK"
+    lines = " ".join(groups["Over-tree sprinklers"].lines)
+    assert groups["Over-tree sprinklers"].tag == "not advised"
+    assert "keep running" not in lines and "01:50" not in lines and "910 m³" not in lines
+    assert "rate needed 10.2 mm/h" in lines and "below the 10.2 mm/h" in lines
+
+
+def test_ready_by_before_start_is_said():
+    a = samples.frost_assessment()
+    a.plan[0].ready_by_utc = dt.datetime(2026, 4, 7, 7, 30, tzinfo=UTC)
+    n = compose_block(a)
+    assert "Start over-tree sprinklers at 01:50 PDT (ready by 00:30 PDT in case it runs colder)" in n.lead[2]
+    assert any(line.startswith("Be ready by 00:30 PDT") for line in n.sections[1].groups[0].lines)

@@ -1,0 +1,120 @@
+"""The nightly pipeline on the demo farm: idempotent, updates, silence, missed runs, verification."""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlalchemy import func, select, text
+
+from advisory import assessment as asm
+from advisory import pipeline
+from advisory.store.schema import Delivery, Forecast, Notice, Verification
+
+NIGHT = dt.date(2026, 4, 8)      # a radiation-frost night of the demo week
+NOW = dt.datetime(2026, 4, 9, 5, 0, tzinfo=dt.UTC)
+
+
+def _count(db, model, *where):
+    with db.transaction() as s:
+        return s.scalar(select(func.count()).select_from(model).where(*where))
+
+
+def test_evening_run_assesses_every_block_once_and_rerun_sends_nothing(spring_db, quiet_channels):
+    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    assert len(res.assessments) == 6
+    assert all(a.status == asm.STATUS_OK for a in res.assessments)
+    # a frost night: every block is at some risk, and the plan says something for each
+    assert all(a.level for a in res.assessments)
+    assert _count(spring_db, Forecast) == 6
+    notices = _count(spring_db, Notice)
+    deliveries = _count(spring_db, Delivery)
+    assert notices == 7  # six blocks and one farm summary
+    outbox_files = sorted(p.name for p in quiet_channels.rglob("*") if p.is_file())
+    assert outbox_files
+    again = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    assert len(again.skipped) == 6
+    assert _count(spring_db, Forecast) == 6
+    assert _count(spring_db, Notice) == notices
+    assert _count(spring_db, Delivery) == deliveries
+    assert sorted(p.name for p in quiet_channels.rglob("*") if p.is_file()) == outbox_files
+
+
+def test_update_notice_only_on_material_change(spring_db):
+    first = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    n0 = _count(spring_db, Notice)
+    # an update a minute after the reference time sees the same readings: nothing material
+    ref = min(a.reference_time_utc for a in first.assessments)
+    res = pipeline.run_night(spring_db, NIGHT, now=ref + dt.timedelta(minutes=1), update=True,
+                             sleep=lambda s: None)
+    assert _count(spring_db, Forecast, Forecast.revision == 1) == 6
+    assert all(a.is_update for a in res.assessments)
+    assert _count(spring_db, Notice) == n0
+
+
+def test_material_change_rules():
+    base = asm.Assessment(kind="frost", farm="F", farm_tz="UTC", units="metric", block_id=1, block="B",
+                          station="S", crop="apple", variety=None, stage="full bloom", area_ha=1.0,
+                          night=NIGHT, level="marked", p50_c=-1.0,
+                          plan=[asm.ProtectionStep("wind_machine", True, start_utc=NOW)])
+    same = asm.from_dict(asm.to_dict(base))
+    assert pipeline.material_change(same, base) == []
+    later = asm.from_dict(asm.to_dict(base))
+    later.plan[0].start_utc = NOW + dt.timedelta(minutes=pipeline.MATERIAL_START_SHIFT_MIN)
+    assert pipeline.material_change(later, base)
+    small = asm.from_dict(asm.to_dict(base))
+    small.plan[0].start_utc = NOW + dt.timedelta(minutes=pipeline.MATERIAL_START_SHIFT_MIN - 1)
+    assert pipeline.material_change(small, base) == []
+    worse = asm.from_dict(asm.to_dict(base))
+    worse.level = "serious"
+    assert pipeline.material_change(worse, base)
+
+
+def test_silent_station_gets_an_explicit_notice(spring_db):
+    # QR-CREEK stops reporting at 15:00 local on the day of the night
+    cut = int(dt.datetime(2026, 4, 8, 22, 0, tzinfo=dt.UTC).timestamp())
+    with spring_db.engine.begin() as conn:
+        conn.execute(text("DELETE FROM observations WHERE station_id = (SELECT id FROM stations WHERE code = "
+                          "'QR-CREEK') AND time_utc >= :t"), {"t": cut})
+    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    creek = [a for a in res.assessments if a.station == "QR-CREEK"]
+    assert creek and all(a.status == asm.STATUS_NO_FORECAST for a in creek)
+    assert all("silent since Wed 08 Apr 14:45 PDT" in a.reason for a in creek)
+    with spring_db.transaction() as s:
+        subjects = [n.subject for n in s.scalars(select(Notice).where(Notice.block_id.is_not(None)))]
+    assert len(subjects) == 6  # the silent blocks get a notice too, not silence
+
+
+def test_missed_evening_run_sends_one_notice(spring_db):
+    run_at = dt.datetime(2026, 4, 9, 4, 39, tzinfo=dt.UTC)
+    res = pipeline.record_missed(spring_db, NIGHT, [1, 2], key="evening:test", run_at=run_at,
+                                 now=run_at + dt.timedelta(hours=3))
+    assert {a.status for a in res.assessments} == {asm.STATUS_MISSED}
+    assert "was missed" in res.assessments[0].reason
+    again = pipeline.record_missed(spring_db, NIGHT, [1, 2], key="evening:test", run_at=run_at,
+                                   now=run_at + dt.timedelta(hours=3))
+    assert again.assessments == []
+    assert _count(spring_db, Notice, Notice.block_id.is_not(None)) == 2
+
+
+def test_morning_verification_stores_observed_minimum(spring_db):
+    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    early = pipeline.verify_night(spring_db, NIGHT, now=NOW)
+    assert early.verified == [] and early.skipped
+    res = pipeline.verify_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 15, tzinfo=dt.UTC))
+    assert len(res.verified) == 6
+    assert _count(spring_db, Verification) == 6
+    # the demo's bench station bottoms out near -3.4 °C at dawn (see demo-farm/generate.py)
+    bench = [v for v in res.verified if v["block"] == "Bench Gala"][0]
+    assert -4.5 < bench["observed_c"] < -2.5
+    again = pipeline.verify_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 16, tzinfo=dt.UTC))
+    assert again.verified == []
+
+
+def test_observed_minimum_needs_a_covered_window():
+    import pandas as pd
+
+    idx = pd.date_range("2026-04-09 04:00", "2026-04-09 14:00", freq="15min", tz="UTC")
+    frame = pd.DataFrame({"air_temp_c": range(len(idx))}, index=idx, dtype=float)
+    assert pipeline.observed_minimum(frame, idx[0], idx[-1]) == 0.0
+    holed = frame.drop(frame.index[8:20])
+    assert pipeline.observed_minimum(holed, idx[0], idx[-1]) is None
