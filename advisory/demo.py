@@ -1,29 +1,41 @@
 """The main job on the demo farm, end to end.
 
-Imports the invented demo farm (``demo-farm/``) and its station files into a
-database, then runs every step that exists over the demo's nights and days,
-printing what a grower, an extension agent and a crew lead would see.  Running
-it twice gives the same result: by default it starts from a fresh database in
-the demo folder.
+Copies the invented demo farm (``demo-farm/``) into the demo folder, drops its
+station files into the stations' inbox folders and sweeps them in (units,
+column maps and quality control included), then runs each spring night as the
+scheduler would (evening run at sunset + 2 h, morning check at sunrise + 1 h),
+and the summer heat week.  It prints what a grower, an extension agent and a
+crew lead would see; every notice is also written to the demo's outbox.
+Running it twice gives the same result: by default it starts from a fresh
+database in the demo folder.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import os
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
+from sqlalchemy import select
+
+from advisory import pipeline, reports
+from advisory import settings as settings_mod
+from advisory.ingest import inbox
 from advisory.ingest.farm_file import import_farm_file
+from advisory.ingest.report import station_report
+from advisory.physics import sun
 from advisory.store.db import Database, upgrade
+from advisory.store.schema import Block, Farm
 
 REPO = Path(__file__).resolve().parents[1]
 DEMO_FARM = REPO / "demo-farm"
 DEFAULT_OUT = REPO / "demo-output"
 
-#: Local dates of the demo's spring nights and summer days.
+#: Local dates of the demo's spring nights (the readings run from 6 to 13 April).
 SPRING_NIGHTS = [dt.date(2026, 4, 6) + dt.timedelta(days=i) for i in range(7)]
-SUMMER_DAYS = [dt.date(2026, 7, 14) + dt.timedelta(days=i) for i in range(6)]
+SEASONS = ("spring", "summer")
 
 
 @dataclass
@@ -31,28 +43,106 @@ class DemoPaths:
     out: Path
     db_url: str
     outbox: Path
+    farm_dir: Path
 
 
 def prepare(out: Path = DEFAULT_OUT, db_url: str | None = None) -> DemoPaths:
     """Make the demo folder; a fresh SQLite database there unless a URL is given."""
-    out = Path(out)
-    if db_url is None:
-        if out.exists():
-            shutil.rmtree(out)
-        out.mkdir(parents=True)
-        db_url = f"sqlite:///{out / 'demo.sqlite'}"
-    else:
-        out.mkdir(parents=True, exist_ok=True)
-        if (out / "outbox").exists():
-            shutil.rmtree(out / "outbox")
-    return DemoPaths(out=out, db_url=db_url, outbox=out / "outbox")
+    out = Path(out).resolve()
+    if db_url is None and out.exists():
+        shutil.rmtree(out)
+    out.mkdir(parents=True, exist_ok=True)
+    for sub in ("outbox", "farm"):
+        if (out / sub).exists():
+            shutil.rmtree(out / sub)
+    shutil.copytree(DEMO_FARM, out / "farm", ignore=shutil.ignore_patterns("inbox", "__pycache__", "*.py"))
+    return DemoPaths(out=out, db_url=db_url or f"sqlite:///{out / 'demo.sqlite'}", outbox=out / "outbox",
+                     farm_dir=out / "farm")
 
 
-def run(paths: DemoPaths, echo=print) -> Database:
+def _evening_clock(db, night: dt.date) -> dt.datetime:
+    """The latest evening reference time of the demo's blocks that night (as the scheduler would run)."""
+    with db.transaction() as s:
+        rows = s.execute(select(Block.latitude, Block.longitude, Farm.timezone, Block.reference_offset_min)
+                         .join(Farm).where(Block.active.is_(True))).all()
+    times = []
+    for lat, lon, tz, off in rows:
+        st = sun.sun_times(lat, lon, night, tz)
+        times.append(st.sunset + dt.timedelta(minutes=off))
+    return max(times) + dt.timedelta(minutes=1)
+
+
+def _morning_clock(db, night: dt.date) -> dt.datetime:
+    with db.transaction() as s:
+        rows = s.execute(select(Block.latitude, Block.longitude, Farm.timezone).join(Farm)).all()
+    return max(sun.sun_times(lat, lon, night, tz).sunrise for lat, lon, tz in rows) + dt.timedelta(hours=1,
+                                                                                                   minutes=1)
+
+
+def run(paths: DemoPaths, echo=print, *, heat: bool = True) -> Database:
     """Run the demo; ``echo`` receives every line meant for the person watching."""
-    before, after = upgrade(paths.db_url)
-    echo(f"database: {paths.db_url} (schema {after})")
+    os.environ["ADVISORY_OUTBOX"] = str(paths.outbox)
+    _before, after = upgrade(paths.db_url)
+    echo(f"database  {paths.db_url} (schema {after})")
+    echo(f"outbox    {paths.outbox}")
     db = Database(paths.db_url)
-    report = import_farm_file(db, DEMO_FARM / "farm.toml")
-    echo(report.text())
+    settings = settings_mod.load(paths.db_url)
+
+    echo("\n== 1. The extension agent registers the farm")
+    echo(import_farm_file(db, paths.farm_dir / "farm.toml").text())
+
+    echo("\n== 2. The loggers' files arrive in the station inboxes and are swept in")
+    with db.transaction() as s:
+        from advisory.store.schema import Station
+
+        inboxes = {st.code: Path(st.inbox) for st in s.scalars(select(Station)) if st.inbox}
+    for code, folder in sorted(inboxes.items()):
+        folder.mkdir(parents=True, exist_ok=True)
+        for season in SEASONS:
+            shutil.copy(paths.farm_dir / "stations" / f"{code}-{season}.csv", folder)
+    for r in inbox.sweep(db, settle_seconds=0):
+        echo(f"  {r.station_code}: {Path(r.file).name} -> {r.status}" + (f" ({r.reason})" if r.reason else ""))
+    for code in sorted(inboxes):
+        echo("")
+        echo(station_report(db, code, since="2026-04-06", until="2026-04-14", max_items=4).text)
+
+    echo("\n== 3. Spring week: each evening at sunset + 2 h, each morning at sunrise + 1 h")
+    worst = None
+    for night in SPRING_NIGHTS:
+        res = pipeline.run_night(db, night, now=_evening_clock(db, night), settings=settings)
+        rank = max((a.level_rank for a in res.assessments), default=0)
+        lows = ", ".join(f"{a.block} {a.p50_c:.1f}" for a in res.assessments if a.p50_c is not None)
+        echo(f"  night of {night:%a %d %b}: forecast lows °C: {lows}")
+        if worst is None or rank > worst[0]:
+            worst = (rank, night, res)
+        ver = pipeline.verify_night(db, night, now=_morning_clock(db, night))
+        if ver.verified:
+            errs = [v["forecast_c"] - v["observed_c"] for v in ver.verified if v["forecast_c"] is not None]
+            echo(f"      next morning: {len(ver.verified)} blocks verified, mean error "
+                 f"{sum(errs) / len(errs):+.1f} °C (forecast - observed)")
+
+    if worst is not None:
+        _rank, night, res = worst
+        echo(f"\n== 4. What the manager reads on the coldest night ({night:%a %d %b}): the farm summary")
+        for text in reports.summary_text(db, res.notices, "text"):
+            echo(text)
+        echo(f"\n== 5. The run sheet as CSV for the office (advisory night sheet --farm "
+             f"\"{res.assessments[0].farm}\" --date {night} --format csv)")
+        echo(reports.run_sheet(db, res.assessments[0].farm, night, "csv"))
+
+    echo("\n== 6. Verification to date (advisory verify report)")
+    echo(reports.format_verification(reports.verification_report(db)))
+
+    if heat:
+        try:
+            from advisory import heat_pipeline
+        except ImportError:  # heat notes not installed in this build
+            heat_pipeline = None
+        if heat_pipeline is not None and hasattr(heat_pipeline, "demo_heat"):
+            echo("\n== 7. Summer heat week: a morning heat note per block")
+            echo(heat_pipeline.demo_heat(paths, db, echo=echo) or "")
+
+    echo(f"\nEvery notice (text, Markdown, HTML, JSON, text messages) is in {paths.outbox}")
+    echo("Watch the scheduler run a night in under a minute:  advisory --db "
+         f"{paths.db_url} serve --rehearse 2026-04-10 --seconds-per-hour 4")
     return db

@@ -140,7 +140,8 @@ def plan(blocks: list[BlockClock], start: dt.datetime, end: dt.datetime,
         sunset = table["sunset"]
         sunrise = table["sunrise"]
         evening = _minute(sunset + pd.to_timedelta(offsets, unit="min"))
-        morning = _minute(sunrise + pd.Timedelta(minutes=s.morning_offset_min))
+        # rounded up: the morning check must not start before its window has closed
+        morning = (sunrise + pd.Timedelta(minutes=s.morning_offset_min)).dt.ceil("min")
         for i in np.flatnonzero(normal):
             bid = int(ids[i])
             ev = evening.iat[i].to_pydatetime()

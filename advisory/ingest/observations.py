@@ -88,6 +88,7 @@ References
 
 from __future__ import annotations
 
+import codecs
 import csv
 import datetime as dt
 import hashlib
@@ -211,8 +212,6 @@ class ReadOptions:
                     raise InputError(f"{k} must be one character, not {value!r}", file=file, line=line,
                                      field=k)
             if k == "encoding":
-                import codecs
-
                 try:
                     codecs.lookup(v)
                 except LookupError:
@@ -644,8 +643,6 @@ def _read_columns(body: bytes, opts: ReadOptions, read_kw: dict, names: list[str
                   value_idx: dict[str, int], value_cols: dict, header_line: int, name: str,
                   problems: _Problems) -> tuple[dict[str, np.ndarray], _Times]:
     """Read the value columns (pandas) and the time column (vectorised scan when possible)."""
-    import codecs
-
     first_data_line = header_line + 1
     n_fields = len(names)
     # Unquoted files in an ASCII-compatible encoding are scanned with numpy (field counts, and the

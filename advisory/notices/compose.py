@@ -1136,7 +1136,8 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
 
     Order: blocks by level rank (highest first), a block without a forecast
     (station silent, run missed) just below the blocks to protect, blocks with
-    no night last; ties by earliest protection start, then name.
+    no night last; within a level by expected damage (highest first), then
+    earliest protection start, then name.
     """
     items = [asm.from_dict(x) if isinstance(x, dict) else x for x in assessments]
     if not items:
@@ -1150,7 +1151,8 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
     f = _Fmt(a0.farm_tz, a0.units)
     kind = a0.kind
     far = dt.datetime.max.replace(tzinfo=dt.UTC)
-    items.sort(key=lambda x: (-_severity(x), _first_start(x) or far, x.block))
+    items.sort(key=lambda x: (-_severity(x), -(x.expected_kill_pct or 0.0) if x.status == asm.STATUS_OK else 0.0,
+                              _first_start(x) or far, x.block))
 
     rows: list[FarmRow] = []
     for x in items:
@@ -1213,12 +1215,15 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
     lead = [f"{len(rows)} block{'s' if len(rows) != 1 else ''}: {count_txt}."]
     if first_start:
         lead.append(f"First protection start {f.clock(first_start[0])} ({first_start[1].block}).")
+    bare = [x.block for x in ok if _steps(x)[1]]
+    if bare:
+        lead.append("At risk with no usable protection: " + ", ".join(bare) + ".")
     silent = [x.block for x in items if x.status in (asm.STATUS_NO_FORECAST, asm.STATUS_MISSED)]
     if silent:
         lead.append("No forecast for: " + ", ".join(silent) + ".")
     core = f"{a0.farm}, {when_txt}: {count_txt}"
     subject = f"[{tstyle.name}] {core}"[:250]
-    sms_parts = [(f"{_short_name(a0.farm, 24)} {w.short_day(a0.night)}:", True)]
+    head = w.gsm_safe(f"{_short_name(a0.farm, 24)} {w.short_day(a0.night)}:")
     bits = []
     for x, r in zip(items, rows, strict=True):
         if r.status == asm.STATUS_OK and r.level_rank < 2:
@@ -1227,22 +1232,32 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
         st = _first_start(x) if r.status == asm.STATUS_OK else None
         if st:
             bit += f" from {f.clock(st)[:5]}"
-        bits.append(bit)
-    for i, bit in enumerate(bits):
-        sms_parts.append((bit + (";" if i < len(bits) - 1 else "."), i == 0))
-    rest = len(rows) - len(bits)
+        bits.append(w.gsm_safe(bit))
+    tz_note = f" (times {f.clock(first_start[0])[6:]})" if first_start else ""
     if not bits:
-        sms_parts.append((f"all {len(rows)} blocks {tstyle.name.lower()}.", True))
-    elif rest:
-        sms_parts.append((f"{rest} other{'s' if rest > 1 else ''} lower.", False))
-    if first_start:
-        sms_parts.append((f"(times {f.clock(first_start[0])[6:]})", False))
+        who = f"all {len(rows)} blocks" if len(rows) > 1 else _short_name(rows[0].block)
+        sms = _sms([(head, True), (f"{who} {tstyle.name.lower()}.", True)])
+    else:
+        sms = ""
+        for k in range(len(bits), 0, -1):
+            rest = len(rows) - k
+            more = f"; {rest} other{'s' if rest != 1 else ''} lower" if rest and k == len(bits) else (
+                f"; +{len(bits) - k} more at risk" if k < len(bits) else "")
+            for tail in (tz_note, ""):
+                cand = f"{head} {'; '.join(bits[:k])}{more}.{tail}"
+                if len(cand) <= SMS_MAX:
+                    sms = cand
+                    break
+            if sms:
+                break
+        if not sms:
+            sms = _sms([(head, True), (bits[0], True)])
 
     return FarmSummary(
         key=summary_key, kind=kind, farm=a0.farm, farm_tz=a0.farm_tz,
         units=a0.units, night=a0.night.isoformat(), level=top.level, level_rank=int(top.level_rank or 0),
         level_name=tstyle.name, colour=tstyle.colour, subject=subject, headline=f"{tstyle.name}: {core}",
-        lead=lead, sms=_sms(sms_parts), rows=rows, runsheet=runsheet, cautions=_caution_list(cautions_keys),
+        lead=lead, sms=sms, rows=rows, runsheet=runsheet, cautions=_caution_list(cautions_keys),
         footer=FOOTER_HEAT if kind == "heat" else FOOTER_FROST,
         data={"blocks": [{"block": x.block, "block_id": x.block_id, "status": x.status, "level": x.level,
                           "level_rank": x.level_rank, "p10_c": x.p10_c, "p50_c": x.p50_c, "p90_c": x.p90_c,

@@ -58,7 +58,7 @@ import logging
 import os
 import smtplib
 import ssl
-import tempfile
+import threading
 import time
 import urllib.error
 import urllib.request
@@ -228,10 +228,10 @@ def outbox_base(outbox: Path, n: BlockNotice | FarmSummary, key: str | None = No
 
 
 def _write(path: Path, data: bytes) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
+    """Write a file whole or not at all (a temporary name, then an atomic rename); the folder must exist."""
+    tmp = path.with_name(f".{path.name}.{os.getpid()}-{threading.get_ident()}.tmp")
     try:
-        with os.fdopen(fd, "wb") as fh:
+        with open(tmp, "wb") as fh:
             fh.write(data)
         os.replace(tmp, path)
     except BaseException:
@@ -268,6 +268,7 @@ def _scrub(text: str, settings) -> str:
 
 def _send_outbox(r: _Rendered, settings, formats: Sequence[str], chart: bool) -> str:
     base = outbox_base(settings.outbox, r.n, r.row.key)
+    base.parent.mkdir(parents=True, exist_ok=True)
     png = r.png() if chart else None
     if png:
         _write(base.with_name(base.name + ".png"), png)
@@ -283,6 +284,7 @@ def _send_sms(r: _Rendered, settings, recipient: Recipient, number: str) -> str:
     base = outbox_base(settings.outbox, r.n, r.row.key)
     who = f"{w.slug(recipient.name, 24, 'recipient')}-{recipient.id}"
     path = base.with_name(f"{base.name}.{who}.sms.txt")
+    path.parent.mkdir(parents=True, exist_ok=True)
     _write(path, f"To: {number}\n\n{r.get('sms')}\n".encode())
     log.info("text message for %s queued in the outbox (no gateway configured): %s", recipient.name, path)
     return str(path)

@@ -125,7 +125,7 @@ def environment() -> jinja2.Environment:
     if _env is None:
         env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(TEMPLATES)), autoescape=_autoescape,
                                  trim_blocks=True, lstrip_blocks=True, keep_trailing_newline=True,
-                                 undefined=jinja2.StrictUndefined)
+                                 undefined=jinja2.StrictUndefined, auto_reload=False)
         env.filters.update(md=md_escape, mdcell=md_cell, wrap=wrap, table=text_table)
         _env = env
     return _env

@@ -1085,7 +1085,7 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
             plans.append(_method_plan(
                 method, kinds[method], i, b, st, fams, crit[i], margin[i], s_margin[i], area[i],
                 wind_mean[i], wind_max_spr[i], req_rate[i], spr_start_air[i], evening_wind[i],
-                forecast, dmg, no_sunrise[i]))
+                forecast, dmg, no_sunrise[i], int(first_valid[i])))
         plans = _recommend(plans, needs, forecast.p50_c[i], crit[i], st)
         if not plans:
             note = ("No protection equipment recorded for this block."
@@ -1109,9 +1109,9 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
 
 
 def _method_plan(method, params, i, b, st, fams, crit, margin, s_margin, area, wind_mean, wind_max,
-                 req_rate, spr_start_air, evening_wind, forecast, dmg, no_sunrise) -> MethodPlan:
+                 req_rate, spr_start_air, evening_wind, forecast, dmg, no_sunrise, first_valid) -> MethodPlan:
     use_wb = method in ("overtree_sprinkler", "undertree_sprinkler")
-    (cs, cf, _, ct, csf), (ks, kf, _, kt, ksf) = fams[use_wb]
+    (cs, cf, ci, ct, csf), (ks, kf, _, kt, ksf) = fams[use_wb]
     rnd = st.round_minutes
     start = _round_ns(np.array([cs[i]]), rnd, up=False)[0] if cf[i] else np.nan
     ready = _round_ns(np.array([ks[i]]), rnd, up=False)[0] if kf[i] else np.nan
@@ -1127,6 +1127,8 @@ def _method_plan(method, params, i, b, st, fams, crit, margin, s_margin, area, w
         notes.append("Start condition not reached even in the cold case; stand by only.")
     elif not cf[i]:
         notes.append("Start condition reached only if the night turns out colder than the median forecast.")
+    if cf[i] and ci[i] == first_valid:
+        notes.append("Already at the start temperature when the forecast begins: start now.")
     if stop_open:
         notes.append("Stop condition not reached before the forecast ends; keep running until it is.")
     if no_sunrise:

@@ -439,3 +439,10 @@ def test_times_are_utc_aware():
     p = r.plans[0]
     assert p.start_utc.tzinfo is not None and p.start_utc.utcoffset() == timedelta(0)
     assert r.time_of_min_utc == datetime(2024, 4, 10, 12, 0, tzinfo=UTC)
+
+
+def test_already_cold_at_start_of_curve():
+    c = night(t_eve=-2.0, t_min=-3.0)
+    r = fr.plan_night([block(equipment=[{"kind": "heater"}])], c, fc(-4.0, -3.0, -2.0))[0]
+    p = r.plans[0]
+    assert p.start_utc == T0.to_pydatetime() and any("start now" in n for n in p.notes)
