@@ -13,6 +13,7 @@ database in the demo folder.
 from __future__ import annotations
 
 import datetime as dt
+import logging
 import os
 import shutil
 from dataclasses import dataclass
@@ -79,9 +80,39 @@ def _morning_clock(db, night: dt.date) -> dt.datetime:
                                                                                                    minutes=1)
 
 
+#: The demo extension agent's webhook (see demo-farm/farm.toml) and its shared secret (demo only).
+DEMO_WEBHOOK_PORT = 8765
+DEMO_WEBHOOK_SECRET = "demo-only-secret-quillback"
+
+
 def run(paths: DemoPaths, echo=print, *, heat: bool = True) -> Database:
-    """Run the demo; ``echo`` receives every line meant for the person watching."""
+    """Run the demo; ``echo`` receives every line meant for the person watching.
+
+    A local webhook receiver stands in for the extension office's system and
+    checks every delivery's signature; e-mail is not configured in the demo, so
+    those deliveries are logged as failed with the reason.
+    """
+    from advisory.notices.receiver import WebhookReceiver
+
+    logging.getLogger("advisory.notices.deliver").setLevel(logging.ERROR)
     os.environ["ADVISORY_OUTBOX"] = str(paths.outbox)
+    os.environ.setdefault("ADVISORY_WEBHOOK_SECRET", DEMO_WEBHOOK_SECRET)
+    try:
+        receiver = WebhookReceiver(os.environ["ADVISORY_WEBHOOK_SECRET"], port=DEMO_WEBHOOK_PORT)
+    except OSError as exc:
+        echo(f"(webhook receiver not started: port {DEMO_WEBHOOK_PORT} busy: {exc.strerror})")
+        receiver = None
+    if receiver is None:
+        return _run(paths, echo, heat=heat)
+    with receiver:
+        db = _run(paths, echo, heat=heat)
+        got = receiver.received
+        echo(f"\nThe extension office's webhook received {len(got.verified)} signed notices "
+             f"(signature verified), rejected {got.rejected}.")
+    return db
+
+
+def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
     _before, after = upgrade(paths.db_url)
     echo(f"database  {paths.db_url} (schema {after})")
     echo(f"outbox    {paths.outbox}")
@@ -142,7 +173,16 @@ def run(paths: DemoPaths, echo=print, *, heat: bool = True) -> Database:
             echo("\n== 7. Summer heat week: a morning heat note per block")
             echo(heat_pipeline.demo_heat(paths, db, echo=echo) or "")
 
-    echo(f"\nEvery notice (text, Markdown, HTML, JSON, text messages) is in {paths.outbox}")
+    with db.transaction() as s:
+        from sqlalchemy import func
+
+        from advisory.store.schema import Delivery
+
+        counts = s.execute(select(Delivery.channel, Delivery.status, func.count())
+                           .group_by(Delivery.channel, Delivery.status)).all()
+    echo("\nDeliveries logged: " + ", ".join(f"{ch} {st} {n}" for ch, st, n in sorted(counts))
+         + "  (e-mail needs ADVISORY_SMTP_HOST; text messages are queued in the outbox: no gateway here)")
+    echo(f"Every notice (text, Markdown, HTML, JSON, text messages) is in {paths.outbox}")
     echo("Watch the scheduler run a night in under a minute:  advisory --db "
          f"{paths.db_url} serve --rehearse 2026-04-10 --seconds-per-hour 4")
     return db

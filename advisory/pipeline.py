@@ -401,7 +401,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
                 continue
             a.details = {**a.details, "update_reasons": why}
             row.payload = asm.to_dict(a)
-        notice = compose.compose_block(a, previous_noticed)
+        notice = compose.compose_block(a, previous_noticed, data=row.payload)
         content = notice.to_dict()
         key = compose.notice_key(a.kind, a.farm, a.block_id, a.night, a.revision)
         nrow = Notice(key=key, farm_id=block.farm_id, block_id=a.block_id, forecast_id=row.id, kind=a.kind,

@@ -331,7 +331,7 @@ def notice_key(kind: str, farm: str, block_id: int | None, night, revision: int)
     Parameters
     ----------
     kind : str
-        "frost" or "heat" (a farm summary uses the same kind with ``block_id`` None).
+        "frost" or "heat" (a farm summary: the same kind, or e.g. "frost-summary", with ``block_id`` None).
     farm : str
         Farm name (any text; a short hash keeps similar names apart).
     block_id : int or None
@@ -344,12 +344,12 @@ def notice_key(kind: str, farm: str, block_id: int | None, night, revision: int)
     Returns
     -------
     str
-        e.g. ``frost:quillback-ridge-orchards-3f2a9c1d:b12:2026-04-06:r0`` (at most 100 characters).
+        e.g. ``frost:quillback-ridge-orchards-3f2a9c1d:b12:2026-04-06:r0`` (at most 110 characters).
     """
     night_s = night.isoformat() if isinstance(night, dt.date) else str(night)
     digest = hashlib.sha256(farm.encode("utf-8")).hexdigest()[:8]
     who = "farm" if block_id is None else f"b{int(block_id)}"
-    return f"{w.slug(kind, 10)}:{w.slug(farm, 40, 'farm')}-{digest}:{who}:{night_s}:r{int(revision)}"
+    return f"{w.slug(kind, 20)}:{w.slug(farm, 40, 'farm')}-{digest}:{who}:{night_s}:r{int(revision)}"
 
 
 # --------------------------------------------------------------------------------------------------
@@ -361,9 +361,15 @@ class _Fmt:
 
     def __init__(self, tz: str, units: str):
         self.tz, self.units = tz, units
+        self.imp = w.imperial(units)
+        self.unit = w.temp_unit(units)
 
     def t(self, c):
-        return w.temp(c, self.units)
+        """Same as :func:`words.temp` (kept in step by the tests), without re-reading the units each time."""
+        if not _finite(c):
+            return "n/a"
+        s = f"{c * 1.8 + 32.0 if self.imp else c:.1f}"
+        return f"{'0.0' if s == '-0.0' else s} {self.unit}"
 
     def rng(self, lo, hi):
         return w.temp_range(lo, hi, self.units)
@@ -379,6 +385,8 @@ class _Fmt:
 
 
 def _finite(x) -> bool:
+    if type(x) is float:
+        return x - x == 0.0          # False for NaN and ±inf
     return isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x)
 
 
@@ -1037,7 +1045,8 @@ def changes(a: Assessment, previous: Assessment | None) -> list[str]:
 # Public
 # --------------------------------------------------------------------------------------------------
 
-def compose_block(a: Assessment | dict, previous: Assessment | dict | None = None) -> BlockNotice:
+def compose_block(a: Assessment | dict, previous: Assessment | dict | None = None, *,
+                  data: dict[str, Any] | None = None) -> BlockNotice:
     """Compose one block's notice.
 
     Parameters
@@ -1047,16 +1056,22 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
     previous : Assessment or dict, optional
         For an update: the assessment of the last notice sent for this block
         and night, to say what changed.
+    data : dict, optional
+        ``advisory.assessment.to_dict(a)`` when the caller already has it (the
+        forecast payload): saves encoding the assessment a second time.
 
     Returns
     -------
     BlockNotice
     """
     if isinstance(a, dict):
+        data = a if data is None else data
         a = asm.from_dict(a)
     if isinstance(previous, dict):
         previous = asm.from_dict(previous)
     key = notice_key(a.kind, a.farm, a.block_id, a.night, a.revision)
+    if data is None:
+        data = _plain(a)
     a = _clean_names(a)
     f = _Fmt(a.farm_tz, a.units)
     style = w.level_style(a.kind, a.level, a.level_rank, a.status)
@@ -1090,7 +1105,7 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
         level_meaning=style.meaning, colour=style.colour, subject=subject, headline=headline, lead=lead,
         sms=_sms(sms_parts), sections=sections, cautions=_caution_list(keys),
         footer=FOOTER_HEAT if a.kind == "heat" else FOOTER_FROST, changes=changed, chart=chart,
-        issued_utc=w.iso(a.reference_time_utc), data=_plain(a))
+        issued_utc=w.iso(a.reference_time_utc), data=data)
     return notice
 
 

@@ -290,8 +290,10 @@ def _send_sms(r: _Rendered, settings, recipient: Recipient, number: str) -> str:
     return str(path)
 
 
-def build_email(r: _Rendered, settings, recipient: Recipient, address: str) -> EmailMessage:
-    """The e-mail for one recipient: text + HTML alternatives, chart inline by Content-ID."""
+def build_email(r: _Rendered | Notice, settings, recipient: Recipient, address: str) -> EmailMessage:
+    """The e-mail of a stored notice for one recipient: text + HTML alternatives, chart inline by Content-ID."""
+    if isinstance(r, Notice):
+        r = _Rendered(r)
     n = r.n
     msg = EmailMessage()
     msg["Subject"] = " ".join(n.subject.split())

@@ -231,7 +231,8 @@ def test_notice_key_is_stable_and_distinct():
     assert k != notice_key("frost", "Quillback Ridge Orchards", 3, dt.date(2026, 4, 6), 1)
     assert k != notice_key("frost", "Quillback-Ridge Orchards", 3, dt.date(2026, 4, 6), 0)
     assert notice_key("frost", "Quillback Ridge Orchards", None, dt.date(2026, 4, 6), 0).split(":")[2] == "farm"
-    assert len(notice_key("heat", "x" * 500, 10**9, dt.date(2026, 4, 6), 99)) <= 100
+    assert len(notice_key("heat-summary", "x" * 500, 10**9, dt.date(2026, 4, 6), 99)) <= 110
+    assert notice_key("frost-summary", "F", None, "2026-04-06", 0).startswith("frost-summary:")
 
 
 def test_farm_summary_worst_first_with_run_sheet():
@@ -328,3 +329,15 @@ def test_ready_by_before_start_is_said():
     n = compose_block(a)
     assert "Start over-tree sprinklers at 01:50 PDT (ready by 00:30 PDT in case it runs colder)" in n.lead[2]
     assert any(line.startswith("Be ready by 00:30 PDT") for line in n.sections[1].groups[0].lines)
+
+
+def test_fast_paths_agree_with_the_reference_functions():
+    from advisory.notices.compose import _Fmt, _plain
+
+    for a in (samples.frost_assessment(), samples.heat_assessment(), samples.quiet_assessment()):
+        assert _plain(a) == to_dict(a)
+        assert compose_block(a, data=to_dict(a)).to_dict() == compose_block(a).to_dict()
+    for units in ("metric", "imperial"):
+        f = _Fmt("UTC", units)
+        for c in (-17.78, -0.04, 0.0, 2.35, None, float("nan"), float("inf"), 3):
+            assert f.t(c) == words.temp(c, units), (c, units)
