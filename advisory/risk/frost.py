@@ -106,9 +106,10 @@ References
    :mod:`advisory.crops.thresholds`.
 .. [3] Gerber, J. F. & Harrison, D. S. (1964) Sprinkler irrigation for cold
    protection of citrus. Trans. ASAE 7, 464-468 (application-rate table, as
-   reproduced in extension guides).
+   reproduced in extension guides; citation details from memory).
 .. [4] Katz, R. W., Murphy, A. H. & Winkler, R. L. (1982) Assessing the value
-   of frost forecasts to orchardists. J. Appl. Meteor. 21, 518-531.
+   of frost forecasts to orchardists. J. Appl. Meteor. 21, 518-531 (citation
+   details from memory; cited by [1] ch. 5 for logistic damage functions).
 """
 
 from __future__ import annotations
@@ -1058,7 +1059,10 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
     (_, wf, wi, wt, _), _ = fams[True]
     stop_idx_wb = np.searchsorted(times_ns, np.nan_to_num(wt, nan=float(times_ns[-1])))
     wind_max_spr = _window_stat(curves.wind_speed_ms, valid, np.where(wf, wi, imin), stop_idx_wb, np.nanmax)
-    req_rate = required_sprinkler_rate_mm_h(forecast.p10_c, np.nan_to_num(wind_max_spr, nan=0.0))
+    # The rate is judged on the central forecast; the cold case (p10) is reported beside it.  Judging on the
+    # cold case alone would rule sprinklers out on most uncertain nights, when they are the best tool.
+    req_rate = required_sprinkler_rate_mm_h(forecast.p50_c, np.nan_to_num(wind_max_spr, nan=0.0))
+    req_rate_cold = required_sprinkler_rate_mm_h(forecast.p10_c, np.nan_to_num(wind_max_spr, nan=0.0))
 
     # dew point at the (central, else cold) sprinkler start for the thermometer reading
     (wcs, wcf, wci, _, _), (wks, wkf, wki, _, _) = fams[True]
@@ -1084,8 +1088,8 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
                 continue
             plans.append(_method_plan(
                 method, kinds[method], i, b, st, fams, crit[i], margin[i], s_margin[i], area[i],
-                wind_mean[i], wind_max_spr[i], req_rate[i], spr_start_air[i], evening_wind[i],
-                forecast, dmg, no_sunrise[i], int(first_valid[i])))
+                wind_mean[i], wind_max_spr[i], (req_rate[i], req_rate_cold[i]), spr_start_air[i],
+                evening_wind[i], forecast, dmg, no_sunrise[i], int(first_valid[i])))
         plans = _recommend(plans, needs, forecast.p50_c[i], crit[i], st)
         if not plans:
             note = ("No protection equipment recorded for this block."
@@ -1109,7 +1113,8 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
 
 
 def _method_plan(method, params, i, b, st, fams, crit, margin, s_margin, area, wind_mean, wind_max,
-                 req_rate, spr_start_air, evening_wind, forecast, dmg, no_sunrise, first_valid) -> MethodPlan:
+                 req_rates, spr_start_air, evening_wind, forecast, dmg, no_sunrise, first_valid) -> MethodPlan:
+    req_rate, req_rate_cold = req_rates
     use_wb = method in ("overtree_sprinkler", "undertree_sprinkler")
     (cs, cf, ci, ct, csf), (ks, kf, _, kt, ksf) = fams[use_wb]
     rnd = st.round_minutes
@@ -1167,10 +1172,19 @@ def _method_plan(method, params, i, b, st, fams, crit, margin, s_margin, area, w
             elif rate + 1e-9 < req_rate:
                 usable = False
                 notes.append(f"System rate {rate:g} mm/h is below the {req_rate:.1f} mm/h needed for "
-                             f"wind up to {wind_max:.1f} m/s and a minimum near {forecast.p10_c[i]:.1f} °C.")
+                             f"wind up to {wind_max:.1f} m/s and a minimum near {forecast.p50_c[i]:.1f} °C; "
+                             "too little water can freeze buds harder than none.")
                 keys.insert(0, "sprinkler_rate_short")
             else:
-                notes.append(f"System rate {rate:g} mm/h meets the {req_rate:.1f} mm/h needed.")
+                notes.append(f"System rate {rate:g} mm/h meets the {req_rate:.1f} mm/h needed for the "
+                             f"forecast minimum near {forecast.p50_c[i]:.1f} °C.")
+                cold_need = float(req_rate_cold)
+                if not np.isfinite(cold_need) or rate + 1e-9 < cold_need:
+                    need_txt = "more than the guidance covers" if not np.isfinite(cold_need) \
+                        else f"about {cold_need:.1f} mm/h"
+                    notes.append(f"If the night runs as cold as {forecast.p10_c[i]:.1f} °C, {need_txt} would be "
+                                 "needed: watch the block thermometers and the ice (clear, dripping ice is "
+                                 "working; milky, dry ice is not).")
     else:
         kw["start_air_temp_c"] = float(crit + margin)
 

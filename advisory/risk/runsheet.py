@@ -90,6 +90,13 @@ class RunSheet:
     caution_keys: tuple[str, ...]
 
 
+def level_name(level: str) -> str:
+    """The level's display name, as the notices show it (one vocabulary everywhere)."""
+    from advisory.notices.words import level_style
+
+    return level_style("frost", level).name
+
+
 def _zone(name: str) -> ZoneInfo:
     try:
         return ZoneInfo(name)
@@ -274,7 +281,7 @@ def render_text(sheet: RunSheet) -> str:
     for row in sheet.rows:
         r, p = row.risk, row.plan
         out.append(f"{row.order}. {r.block} - {METHOD_NAMES[p.method]}")
-        out.append(f"   {r.crop.replace('_', ' ')}, {r.stage}; risk {r.level}")
+        out.append(f"   {r.crop.replace('_', ' ')}, {r.stage}; {level_name(r.level)}")
         out.append(f"   {_when(row)}")
         out.append(f"   {_start_rule(sheet, r, p)}")
         out.append(f"   stop {_stop_rule(sheet, r, p)}")
@@ -289,14 +296,14 @@ def render_text(sheet: RunSheet) -> str:
     if sheet.unprotected:
         out.append("AT RISK, NO USABLE PROTECTION:")
         for r in sheet.unprotected:
-            out.append(f"- {r.block} ({r.crop.replace('_', ' ')}, {r.stage}): risk {r.level}, "
+            out.append(f"- {r.block} ({r.crop.replace('_', ' ')}, {r.stage}): {level_name(r.level)}, "
                        f"min {_min_range(sheet, r)}, about {100 * r.expected_kill:.0f} % of buds at risk")
             for p in r.recommended:
                 for note in p.notes:
                     out.append(f"  {note}")
         out.append("")
     if sheet.quiet:
-        out.append("No protection needed: " + ", ".join(f"{r.block} ({r.level})" for r in sheet.quiet))
+        out.append("No protection needed: " + ", ".join(f"{r.block} ({level_name(r.level)})" for r in sheet.quiet))
         out.append("")
     if sheet.caution_keys:
         out.append("CAUTIONS")
@@ -306,7 +313,9 @@ def render_text(sheet: RunSheet) -> str:
 
 
 def _md_escape(text: str) -> str:
-    return text.replace("|", "\\|")
+    """Escape table pipes, and HTML so a block name cannot inject markup where Markdown is rendered."""
+    return (text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+            .replace("|", "\\|"))
 
 
 def render_markdown(sheet: RunSheet) -> str:
@@ -322,7 +331,7 @@ def render_markdown(sheet: RunSheet) -> str:
             r, p = row.risk, row.plan
             ready = _clock(row.ready_by) if row.ready_by is not None else "-"
             stop = ("≥ " if p.stop_open else "") + _clock(row.stop) if row.stop is not None else "-"
-            cells = [str(row.order), r.block, f"{r.crop.replace('_', ' ')}, {r.stage}", r.level,
+            cells = [str(row.order), r.block, f"{r.crop.replace('_', ' ')}, {r.stage}", level_name(r.level),
                      METHOD_NAMES[p.method], ready, _clock(row.start), stop, _run(p),
                      _start_rule(sheet, r, p), _supply(sheet, p) or "-", _min_range(sheet, r)]
             out.append("| " + " | ".join(_md_escape(c) for c in cells) + " |")
@@ -336,13 +345,13 @@ def render_markdown(sheet: RunSheet) -> str:
         out += ["## At risk, no usable protection", ""]
         for r in sheet.unprotected:
             reasons = " ".join(n for p in r.recommended for n in p.notes)
-            out.append(f"- **{_md_escape(r.block)}** ({r.crop.replace('_', ' ')}, {r.stage}): risk {r.level}, "
+            out.append(f"- **{_md_escape(r.block)}** ({r.crop.replace('_', ' ')}, {r.stage}): {level_name(r.level)}, "
                        f"minimum {_min_range(sheet, r)}, about {100 * r.expected_kill:.0f} % of buds at risk. "
                        f"{_md_escape(reasons)}")
         out.append("")
     if sheet.quiet:
         out += ["## No protection needed", "",
-                ", ".join(f"{_md_escape(r.block)} ({r.level})" for r in sheet.quiet), ""]
+                ", ".join(f"{_md_escape(r.block)} ({level_name(r.level)})" for r in sheet.quiet), ""]
     if sheet.caution_keys:
         out += ["## Cautions", ""]
         out += [f"- **{c.title}.** {c.text}" for c in caut.ordered(sheet.caution_keys)]

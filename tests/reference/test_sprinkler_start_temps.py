@@ -13,7 +13,7 @@ Sources
   tables are nearly identical.
 * Knox, J. A., Nevius, D. S. & Knox, P. N. (2017) Two simple and accurate
   approximations for wet-bulb temperature in moist conditions, with forecasting
-  applications. Bull. Amer. Meteor. Soc. 98, 1897-1906 ("one-third rule": near
+  applications. Bull. Amer. Meteor. Soc. 98 (volume and pages from memory) ("one-third rule": near
   freezing, Tw = T - (T - Td)/3), with the worked example 32 °F, dew point 23 °F
   -> wet bulb 29 °F (checked in a stored copy of the UGA Extension summary).
   Inverted for a start temperature: T = (3 Tc - Td) / 2.
@@ -32,20 +32,19 @@ DEW_POINT_ROWS_C = [-1.0, -2.0, -3.0, -4.0, -5.0, -6.0, -7.0, -8.0, -10.0, -12.0
 
 def test_table_7_5_definition_start_air_temperature_has_that_wet_bulb():
     # FAO Table 7.5 definition: start air temperature T such that wet bulb(T, Td) = Tw.
-    for tw in WET_BULB_COLUMNS_C:
-        for td in DEW_POINT_ROWS_C:
-            t = start_air_temp_c(tw, td)
-            if td >= tw:
-                assert t == pytest.approx(tw)  # saturated: start at the critical temperature itself
-                continue
-            assert t > tw
-            # The wet bulb crosses Tw at T (just below T it is colder, just above not colder).
-            assert moisture.wet_bulb_c(t - 0.002, td) <= tw + 1e-3
-            assert moisture.wet_bulb_c(t + 0.002, td) >= tw - 1e-3
-            if tw < 0.0:
-                # Below 0 °C the ice-bulb curve is continuous: exact equality.  At exactly 0 °C the
-                # ASHRAE ice- and water-bulb equations do not meet, so only the crossing holds.
-                assert moisture.wet_bulb_c(t, td) == pytest.approx(tw, abs=0.005)
+    tw, td = (a.ravel() for a in np.meshgrid(WET_BULB_COLUMNS_C, DEW_POINT_ROWS_C))
+    t = start_air_temp_c(tw, td)
+    sat = td >= tw
+    np.testing.assert_allclose(t[sat], tw[sat])  # saturated: start at the critical temperature itself
+    t, tw, td = t[~sat], tw[~sat], td[~sat]
+    assert np.all(t > tw)
+    # The wet bulb crosses Tw at T (just below T it is colder, just above not colder).
+    assert np.all(moisture.wet_bulb_c(t - 0.002, td) <= tw + 1e-3)
+    assert np.all(moisture.wet_bulb_c(t + 0.002, td) >= tw - 1e-3)
+    # Below 0 °C the ice-bulb curve is continuous: exact equality.  At exactly 0 °C the ASHRAE
+    # ice- and water-bulb equations do not meet, so only the crossing holds there.
+    below = tw < 0.0
+    np.testing.assert_allclose(moisture.wet_bulb_c(t[below], td[below]), tw[below], atol=0.005)
 
 
 def test_table_7_5_drier_air_needs_earlier_start():
@@ -85,7 +84,6 @@ def test_start_temperatures_match_one_third_rule(critical_f):
 
 def test_one_third_rule_wet_bulb_accuracy():
     # Knox et al. (2017): Tw ~= T - (T - Td)/3 near freezing; within 1 °F (from memory, unverified).
-    for t_f in np.arange(28.0, 41.0):
-        for dep in range(0, 16):
-            tw_f = c_to_f(moisture.wet_bulb_c(f_to_c(t_f), f_to_c(t_f - dep)))
-            assert tw_f == pytest.approx(t_f - dep / 3.0, abs=1.0)
+    t_f, dep = (a.ravel() for a in np.meshgrid(np.arange(28.0, 41.0), np.arange(0.0, 16.0)))
+    tw_f = c_to_f(moisture.wet_bulb_c(f_to_c(t_f), f_to_c(t_f - dep)))
+    np.testing.assert_allclose(tw_f, t_f - dep / 3.0, atol=1.0)
