@@ -371,14 +371,16 @@ def fit_arrays(x_raw, y, physical_min_c, *, min_nights: int = MIN_NIGHTS,
     j_cs = PREDICTORS.index("cooling_since_sunset_c")
     cs = x_raw[:, j_cs]
     ok_cs = np.isfinite(cs)
-    fill = {"cooling_since_sunset_c": float(np.average(cs[ok_cs], weights=w[ok_cs])) if ok_cs.any() else 0.0}
+    fill = {"cooling_since_sunset_c": float(w[ok_cs] @ cs[ok_cs] / w[ok_cs].sum()) if ok_cs.any() else 0.0}
     x = x_raw.copy()
     x[~ok_cs, j_cs] = fill["cooling_since_sunset_c"]
     wn = w / w.mean()
-    center = np.average(x, axis=0, weights=wn)
-    scale = np.sqrt(np.average((x - center) ** 2, axis=0, weights=wn))
+    center = (wn @ x) / n
+    scale = np.sqrt((wn @ (x - center) ** 2) / n)
     scale = np.where(scale > 1e-6, scale, 1.0)
-    z = np.column_stack([np.ones(n), (x - center) / scale])
+    z = np.empty((n, x.shape[1] + 1))
+    z[:, 0] = 1.0
+    z[:, 1:] = (x - center) / scale
     zw = z * wn[:, None]
     gram = z.T @ zw
     p1 = z.shape[1]
@@ -386,7 +388,7 @@ def fit_arrays(x_raw, y, physical_min_c, *, min_nights: int = MIN_NIGHTS,
     penalty = prior_nights * np.eye(p1)
     g_inv = np.linalg.inv(gram + penalty)
     coef = g_inv @ (zw.T @ y + penalty @ prior)
-    leverage = np.einsum("ij,jk,ik->i", zw, g_inv, z)
+    leverage = ((zw @ g_inv) * z).sum(axis=1)
     loo = (y - z @ coef) / np.maximum(1.0 - leverage, 1e-3)
 
     order = np.argsort(loo, kind="stable")

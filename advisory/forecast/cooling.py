@@ -232,6 +232,17 @@ class PhysicalNight:
         self.minimum_c = self.air_temp_c - self.total_drop
         self.warming_k_per_h = MORNING_WARMING_K_PER_H * (1.0 - 0.75 * self.cloud_cover_pct / 100.0)
 
+    def __len__(self) -> int:
+        return len(self.air_temp_c)
+
+    def subset(self, idx) -> PhysicalNight:
+        """The same quantities for a subset of blocks (index array or boolean mask)."""
+        out = object.__new__(PhysicalNight)
+        for name, value in vars(self).items():
+            is_block_array = isinstance(value, np.ndarray) and value.ndim >= 1 and len(value) == len(self)
+            setattr(out, name, value[idx] if is_block_array else value)
+        return out
+
 
 def physical_night(states) -> PhysicalNight:
     """:class:`PhysicalNight` from an evening-state frame (see :mod:`advisory.forecast.evening`)."""

@@ -59,8 +59,8 @@ from advisory.physics.sun import sun_times_batch
 
 __all__ = [
     "WARNING_PROBABILITY", "COLD_NIGHT_C", "FROST_C", "MAX_GAP_MIN", "VERIFY_AFTER_SUNRISE_H",
-    "read_observations_csv", "hindcast_frame", "summarize", "run_hindcast", "format_summary",
-    "plot_hindcast",
+    "read_observations_csv", "verify_windows", "verified_nights", "hindcast_frame", "summarize",
+    "run_hindcast", "format_summary", "plot_hindcast",
 ]
 
 #: Probability of a minimum <= 0 °C at which a frost warning is counted as issued.
@@ -209,8 +209,27 @@ def _candidate_nights(times_utc: pd.DatetimeIndex, tz: str):
     return np.asarray(sorted(set(local.date)), dtype=object)
 
 
-def _verify_windows(obs: pd.DataFrame, states: pd.DataFrame, max_gap_min: float):
-    """Continuity of each night's window and the observed minimum (vectorised)."""
+def verify_windows(obs: pd.DataFrame, states: pd.DataFrame, max_gap_min: float = MAX_GAP_MIN):
+    """Continuity of each night's window and its observed minimum (vectorised).
+
+    Parameters
+    ----------
+    obs : pandas.DataFrame
+        The station's QC-passed observations, indexed by aware time.
+    states : pandas.DataFrame
+        Evening states of the nights (``sunset``, ``sunrise``, ``reference_time``).
+    max_gap_min : float, default 90
+        Longest gap allowed between air-temperature readings [min].
+
+    Returns
+    -------
+    continuous : ndarray of bool
+        The window from sunset to sunrise + 1 h is covered without a longer gap.
+    observed_min_c : ndarray
+        Lowest air temperature from the reference time to sunrise + 1 h [°C]
+        (NaN unless continuous).
+    """
+    obs = obs.sort_index()
     air = obs["air_temp_c"].to_numpy(dtype=float)
     ok = np.isfinite(air)
     t = obs.index.as_unit("ns").asi8[ok]
@@ -244,6 +263,58 @@ def _verify_windows(obs: pd.DataFrame, states: pd.DataFrame, max_gap_min: float)
     return continuous, observed
 
 
+def verified_nights(obs: pd.DataFrame, lat: float, lon: float, tz: str, *, until=None,
+                    reference_offset_h: float = REFERENCE_OFFSET_H, max_age_min: float = MAX_AGE_MIN,
+                    max_gap_min: float = MAX_GAP_MIN) -> pd.DataFrame:
+    """Every verifiable past night of a station: evening state plus observed minimum.
+
+    The rows are what :func:`advisory.forecast.calibration.fit_calibration`
+    takes, defined exactly as in the hindcast.
+
+    Parameters
+    ----------
+    obs : pandas.DataFrame
+        QC-passed observations indexed by aware time.
+    lat, lon : float
+        Station position [degrees].
+    tz : str
+        IANA zone of the station.
+    until : aware datetime, optional
+        Only nights whose window (to sunrise + 1 h) has closed by then.
+    reference_offset_h, max_age_min, max_gap_min : float
+        As in :func:`hindcast_frame`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Evening-state columns plus ``observed_min_c``, oldest night first.
+    """
+    rows, _ = _verified(obs, lat, lon, tz, reference_offset_h, max_age_min, max_gap_min)
+    if until is not None:
+        end = pd.DatetimeIndex(rows["sunrise"]).as_unit("ns") + pd.Timedelta(hours=VERIFY_AFTER_SUNRISE_H)
+        rows = rows[np.asarray(end <= pd.Timestamp(until).tz_convert("UTC"))]
+    return rows.reset_index(drop=True)
+
+
+def _verified(obs, lat, lon, tz, reference_offset_h, max_age_min, max_gap_min):
+    obs = obs.sort_index()
+    nights = _candidate_nights(obs.index, tz)
+    sun = sun_times_batch(lat, lon, nights, tz)
+    states = evening_states(obs, sun, reference_offset_h=reference_offset_h, max_age_min=max_age_min)
+    continuous, observed = verify_windows(obs, states, max_gap_min)
+    status_ok = states["status"].to_numpy(dtype=object) == OK
+    usable = status_ok & continuous & np.isfinite(observed)
+    skipped = {
+        "no forecast possible (polar day or night, stale or missing evening data)": int((~status_ok).sum()),
+        "window from sunset to sunrise + 1 h not continuous": int((status_ok & ~continuous).sum()),
+        "no reading from the reference time to sunrise + 1 h": int((status_ok & continuous
+                                                                    & ~np.isfinite(observed)).sum()),
+    }
+    st = states[usable].copy()
+    st["observed_min_c"] = observed[usable]
+    return st.sort_values("reference_time", kind="stable"), skipped
+
+
 def hindcast_frame(obs: pd.DataFrame, lat: float, lon: float, tz: str, *, min_nights: int = MIN_NIGHTS,
                    reference_offset_h: float = REFERENCE_OFFSET_H, max_age_min: float = MAX_AGE_MIN,
                    max_gap_min: float = MAX_GAP_MIN, chunk: int = 256):
@@ -272,22 +343,7 @@ def hindcast_frame(obs: pd.DataFrame, lat: float, lon: float, tz: str, *, min_ni
     skipped : dict
         Number of candidate nights skipped, by reason.
     """
-    obs = obs.sort_index()
-    nights = _candidate_nights(obs.index, tz)
-    sun = sun_times_batch(lat, lon, nights, tz)
-    states = evening_states(obs, sun, reference_offset_h=reference_offset_h, max_age_min=max_age_min)
-    continuous, observed = _verify_windows(obs, states, max_gap_min)
-    status_ok = states["status"].to_numpy(dtype=object) == OK
-    usable = status_ok & continuous & np.isfinite(observed)
-    skipped = {
-        "no forecast possible (polar day or night, stale or missing evening data)": int((~status_ok).sum()),
-        "window from sunset to sunrise + 1 h not continuous": int((status_ok & ~continuous).sum()),
-        "no reading from the reference time to sunrise + 1 h": int((status_ok & continuous
-                                                                    & ~np.isfinite(observed)).sum()),
-    }
-    st = states[usable].copy()
-    st["observed_min_c"] = observed[usable]
-    st = st.sort_values("reference_time", kind="stable")
+    st, skipped = _verified(obs, lat, lon, tz, reference_offset_h, max_age_min, max_gap_min)
     n = len(st)
     x_raw = predictor_matrix(st, {"cooling_since_sunset_c": np.nan})
     phys = physical_night(st)

@@ -80,3 +80,13 @@ def test_curve_fraction_and_inverse():
         back = cooling.curve_fraction(night, h[None, :])[0]
         np.testing.assert_allclose(back, s, atol=1e-9)
     assert np.all(cooling.hours_to_fraction(night, np.ones(3)) <= night.hours_to_minimum + 1e-12)
+
+
+def test_physical_night_subset():
+    night = cooling.PhysicalNight([5.0, 10.0, 2.0], [-5.0, 9.0, 0.0], [1.0, 0.0, 3.0], [0.0, 0.0, 100.0],
+                                  [2.0, 2.0, 2.0], [10.0, 9.0, 8.0])
+    sub = night.subset(np.array([2, 0]))
+    assert len(sub) == 2 and len(night) == 3
+    np.testing.assert_allclose(sub.minimum_c, night.minimum_c[[2, 0]])
+    np.testing.assert_allclose(sub.b, night.b[[2, 0]])
+    assert sub.pressure_kpa == night.pressure_kpa

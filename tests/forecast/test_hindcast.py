@@ -170,3 +170,18 @@ def test_command_line(tmp_path, capsys):
     assert main(["hindcast", str(tmp_path / "missing.csv"), "--lat", "36", "--lon", "-80",
                  "--tz", "UTC"]) == 2
     assert "file not found" in capsys.readouterr().err
+
+
+def test_verified_nights_feed_the_calibration():
+    from advisory.forecast.calibration import fit_calibration
+
+    obs = synthetic_station(40, gap_day=20)
+    rows = hc.verified_nights(obs, 36.0, -80.0, "Etc/GMT+5")
+    assert rows["reference_time"].is_monotonic_increasing and np.isfinite(rows["observed_min_c"]).all()
+    until = pd.Timestamp("2023-10-15 12:00", tz="UTC")
+    early = hc.verified_nights(obs, 36.0, -80.0, "Etc/GMT+5", until=until)
+    assert len(early) < len(rows)
+    assert (pd.DatetimeIndex(early["sunrise"]) + pd.Timedelta(hours=1) <= until).all()
+    assert fit_calibration(rows).training_nights == len(rows)
+    cont, mins = hc.verify_windows(obs, rows)
+    assert cont.all() and np.allclose(mins, rows["observed_min_c"])
