@@ -28,7 +28,8 @@ def register(sub) -> None:
     imp.add_argument("--nonexistent", choices=("error", "before", "after"),
                      help="how to read a naive local time skipped when clocks spring forward (default: error)")
     imp.add_argument("--utc-offset", metavar="±HH:MM",
-                     help="naive times are at this fixed offset from UTC, not in the station's zone")
+                     help="naive times are at this fixed offset from UTC, not in the station's zone "
+                          "(write --utc-offset=-08:00)")
     imp.add_argument("--time-format", metavar="FMT",
                      help="strftime format of the time column, or 'epoch' (default: ISO 8601)")
     imp.add_argument("--json", action="store_true", help="print the summary as JSON")

@@ -142,7 +142,7 @@ class StationSpec:
     temp_sensor_height_m: float = 1.5
     upper_sensor_height_m: float | None = None
     wind_sensor_height_m: float = 2.0
-    column_map: dict[str, str] = field(default_factory=dict)
+    column_map: dict[str, Any] = field(default_factory=dict)
     inbox: str | None = None
 
 
@@ -277,6 +277,23 @@ def _unknown_keys(chk: _Checker, obj: dict, table: str, idx: int | None) -> None
             chk.fail(f"unknown key '{key}' (allowed: {allowed})", table, idx, key)
 
 
+def _column_map(chk: _Checker, cmap: dict, idx: int) -> dict:
+    """Logger header -> canonical column; an ``_options`` sub-table holds reading options."""
+    out: dict = {}
+    for key, value in cmap.items():
+        if key == "_options":
+            if not isinstance(value, dict):
+                chk.fail("'_options' must be a table of reading options (e.g. time_format, utc_offset)",
+                         "stations", idx, "_options")
+            out[key] = dict(value)
+        elif isinstance(value, str) and value.strip():
+            out[str(key)] = value.strip()
+        else:
+            chk.fail(f"column map entry '{key}' must name a canonical column, got {value!r}",
+                     "stations", idx, key)
+    return out
+
+
 def parse_farm_text(text: str, path: str = "<farm file>") -> FarmSpec:
     """Validate a farm file's text; pure.
 
@@ -331,7 +348,7 @@ def parse_farm_text(text: str, path: str = "<farm file>") -> FarmSpec:
                                           required=False, lo=0.5, hi=100),
             wind_sensor_height_m=chk.get(st, "wind_sensor_height_m", "stations", i, float, required=False,
                                          default=2.0, lo=0.5, hi=100),
-            column_map={str(k): str(v) for k, v in cmap.items()},
+            column_map=_column_map(chk, cmap, i),
             inbox=chk.get(st, "inbox", "stations", i, str, required=False),
         ))
     codes = {s.code for s in stations}

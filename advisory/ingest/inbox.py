@@ -67,7 +67,7 @@ class SweepResult:
         return asdict(self)
 
     def text(self) -> str:
-        name = Path(self.file).name or self.file
+        name = self.file if self.status == "no_inbox" else (Path(self.file).name or self.file)
         head = f"{self.station_code}: {name}: {self.status}"
         if self.status == "imported" and self.summary:
             s = self.summary

@@ -17,7 +17,7 @@ import numpy as np
 from sqlalchemy import select
 
 from advisory.errors import InputError
-from advisory.ingest.observations import fetch_rows, get_station, rows_to_arrays
+from advisory.ingest.observations import fetch_arrays, get_station
 from advisory.ingest.qc import (
     DEFAULT_CONFIG,
     FLAG_NAMES,
@@ -136,9 +136,7 @@ def station_report(target: Any, station_code: str, *, since: Any = None, until: 
     t0 = parse_when(since, st.timezone, latest_s=latest, field="--since")
     t1 = parse_when(until, st.timezone, latest_s=latest, field="--until")
     cols = [*VALUE_COLUMNS, *QC_COLUMNS.values()]
-    rows = fetch_rows(session, [st.id], t0, t1, cols)
-    _ids, t, m = rows_to_arrays(rows, cols)
-    del rows
+    _ids, t, m = fetch_arrays(session, [st.id], t0, t1, cols)
     nv = len(VALUE_COLUMNS)
     vals = m[:, :nv]
     q = m[:, nv:].astype(np.int64)

@@ -417,3 +417,16 @@ def test_load_many_stations_in_one_call(obs_db, csv_file):
 def test_load_needs_aware_times(obs_db):
     with obs_db.transaction() as s, pytest.raises(ValueError, match="timezone-aware"):
         load_observations(s, 1, dt.datetime(2024, 1, 1), utc(2024, 1, 2))
+
+
+def test_time_column_need_not_come_first():
+    p = parse("air_temp_c,wind_speed_ms,time\n5,1,2024-07-01T06:00Z\n6,,2024-07-01T06:05Z\n")
+    assert list(p.frame.index) == [utc(2024, 7, 1, 6), utc(2024, 7, 1, 6, 5)]
+    assert p.frame["air_temp_c"].tolist() == [5, 6]
+    with pytest.raises(InputError, match="line 3: values without a time"):
+        parse("air_temp_c,wind_speed_ms,time\n5,1,2024-07-01T06:00Z\n6,2\n")
+
+
+def test_short_lines_leave_trailing_values_missing():
+    p = parse("time,air_temp_c,wind_speed_ms\n2024-07-01T06:00Z,5\n2024-07-01T06:05Z,6,2\n")
+    assert np.isnan(p.frame["wind_speed_ms"].iloc[0]) and p.frame["wind_speed_ms"].iloc[1] == 2
