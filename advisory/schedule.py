@@ -83,10 +83,6 @@ class PlannerSettings:
     skipped: list[str] = field(default_factory=list)
 
 
-def _minute(ts: pd.Series) -> pd.Series:
-    return ts.dt.floor("min")
-
-
 def _in_season(night: dt.date, season: tuple[str, str] | None) -> bool:
     if not season:
         return False
@@ -128,40 +124,51 @@ def plan(blocks: list[BlockClock], start: dt.datetime, end: dt.datetime,
     first = (start - dt.timedelta(days=2)).date()
     n_nights = (end.date() - first).days + 2
     groups: dict[tuple[str, dt.datetime, dt.date], list[int]] = defaultdict(list)
+
+    def add(kind: str, night: dt.date, times_ns: np.ndarray, block_ids: np.ndarray) -> None:
+        """Group blocks by run minute (vectorised: one entry per distinct minute)."""
+        if not len(times_ns):
+            return
+        uniq, inv = np.unique(times_ns, return_inverse=True)
+        order = np.argsort(inv, kind="stable")
+        bounds = np.searchsorted(inv[order], np.arange(len(uniq) + 1))
+        for j, t in enumerate(uniq):
+            at = dt.datetime.fromtimestamp(int(t) / 1e9, dt.UTC)
+            groups[(kind, at, night)].extend(int(x) for x in block_ids[order[bounds[j]:bounds[j + 1]]])
+
+    minute_ns = 60 * 10**9
     for k in range(n_nights):
         night = first + dt.timedelta(days=k)
         table = sun.sun_times_batch(lat, lon, night, tzs)
         normal = (table["status"] == sun.NORMAL).to_numpy()
-        for i in np.flatnonzero(~normal):
-            msg = (f"block {ids[i]}: night {night}: no nocturnal forecast, the sun does not "
-                   f"{'set' if table['status'].iat[i] == sun.POLAR_DAY else 'rise'}")
-            if start.date() <= night <= end.date():
-                s.skipped.append(msg)
-        sunset = table["sunset"]
-        sunrise = table["sunrise"]
-        evening = _minute(sunset + pd.to_timedelta(offsets, unit="min"))
-        # rounded up: the morning check must not start before its window has closed
-        morning = (sunrise + pd.Timedelta(minutes=s.morning_offset_min)).dt.ceil("min")
-        for i in np.flatnonzero(normal):
-            bid = int(ids[i])
-            ev = evening.iat[i].to_pydatetime()
-            rise = sunrise.iat[i].to_pydatetime()
-            if EVENING in s.kinds:
-                groups[(EVENING, ev, night)].append(bid)
-            if UPDATE in s.kinds:
-                t = ev + dt.timedelta(minutes=s.update_interval_min)
-                while t < rise:
-                    groups[(UPDATE, t, night)].append(bid)
-                    t += dt.timedelta(minutes=s.update_interval_min)
-            if MORNING in s.kinds:
-                groups[(MORNING, morning.iat[i].to_pydatetime(), night)].append(bid)
+        if start.date() - dt.timedelta(days=1) <= night <= end.date():
+            for i in np.flatnonzero(~normal):
+                s.skipped.append(f"block {ids[i]}: night {night}: no nocturnal forecast, the sun does not "
+                                 f"{'set' if table['status'].iat[i] == sun.POLAR_DAY else 'rise'}")
+        sunset = pd.DatetimeIndex(table["sunset"]).as_unit("ns").asi8
+        sunrise = pd.DatetimeIndex(table["sunrise"]).as_unit("ns").asi8
+        ok_ids, set_ns, rise_ns = ids[normal], sunset[normal], sunrise[normal]
+        evening = (set_ns + (offsets[normal] * minute_ns).astype("int64")) // minute_ns * minute_ns
+        if EVENING in s.kinds:
+            add(EVENING, night, evening, ok_ids)
+        if UPDATE in s.kinds and len(ok_ids):
+            step = s.update_interval_min * minute_ns
+            n_steps = int(np.max((rise_ns - evening) // step)) if len(ok_ids) else 0
+            if n_steps > 0:
+                times = evening[:, None] + step * np.arange(1, n_steps + 1)[None, :]
+                mask = times < rise_ns[:, None]
+                add(UPDATE, night, times[mask], np.broadcast_to(ok_ids[:, None], times.shape)[mask])
+        if MORNING in s.kinds:
+            # rounded up: the morning check must not start before its window has closed
+            morning = -((-(rise_ns + s.morning_offset_min * minute_ns)) // minute_ns) * minute_ns
+            add(MORNING, night, morning, ok_ids)
         if HEAT in s.kinds:
             # The heat note of day D+1 follows the sunrise that ends night D.
             day = night + dt.timedelta(days=1)
-            heat_at = _minute(sunrise + pd.Timedelta(minutes=s.heat_offset_min))
-            for i in np.flatnonzero(normal):
-                if _in_season(day, blocks[i].heat_season):
-                    groups[(HEAT, heat_at.iat[i].to_pydatetime(), day)].append(int(ids[i]))
+            in_season = np.array([_in_season(day, blocks[i].heat_season) for i in np.flatnonzero(normal)], bool)
+            if in_season.any():
+                heat_at = (rise_ns + s.heat_offset_min * minute_ns) // minute_ns * minute_ns
+                add(HEAT, day, heat_at[in_season], ok_ids[in_season])
     runs = [PlannedRun(kind, at, night, tuple(sorted(bids)))
             for (kind, at, night), bids in groups.items() if start <= at < end]
     runs.sort(key=lambda r: (r.run_at, KINDS.index(r.kind), r.night))
