@@ -51,6 +51,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from advisory.physics.arrays import asfloat as _a
 from advisory.physics.moisture import STANDARD_PRESSURE_KPA, psychrometric_constant_kpa_per_c
 from advisory.physics.radiation import net_longwave_loss_w_m2
 
@@ -71,9 +72,6 @@ MORNING_WARMING_K_PER_H = 1.5
 #: The hourly curve ends this long after sunrise [h].
 CURVE_END_AFTER_SUNRISE_H = 2.0
 
-
-def _a(x):
-    return np.asarray(x, dtype=float)
 
 
 def _calm(wind_speed_ms):

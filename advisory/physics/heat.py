@@ -69,6 +69,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from advisory.physics.arrays import asfloat as _asfloat
+from advisory.physics.arrays import out as _out
 from advisory.physics.moisture import STANDARD_PRESSURE_KPA, wet_bulb_c
 
 __all__ = [
@@ -83,13 +85,6 @@ __all__ = [
 ]
 
 
-def _asfloat(x):
-    return np.asarray(x, dtype=float)
-
-
-def _out(x):
-    x = np.asarray(x)
-    return float(x) if x.ndim == 0 else x
 
 
 def c_to_f(temp_c):

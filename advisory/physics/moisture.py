@@ -33,6 +33,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from advisory.physics.arrays import asfloat as _asfloat
+from advisory.physics.arrays import out as _out
+
 # Alduchov & Eskridge (1996) [1] coefficients; pressures in kPa.
 _A_WATER_KPA, _B_WATER, _C_WATER_C = 0.61094, 17.625, 243.04
 _A_ICE_KPA, _B_ICE, _C_ICE_C = 0.61121, 22.587, 273.86
@@ -43,14 +46,6 @@ STANDARD_PRESSURE_KPA = 101.325
 _EPSILON = 0.621945
 
 
-def _asfloat(x):
-    return np.asarray(x, dtype=float)
-
-
-def _out(x):
-    """Return a Python float for 0-d results, else the array."""
-    x = np.asarray(x)
-    return float(x) if x.ndim == 0 else x
 
 
 def saturation_vapour_pressure_kpa(temp_c, over_ice=False):

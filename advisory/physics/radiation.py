@@ -22,6 +22,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from advisory.physics.arrays import asfloat as _a
+from advisory.physics.arrays import out as _out
 from advisory.physics.moisture import vapour_pressure_kpa_from_dew_point
 
 __all__ = [
@@ -44,13 +46,6 @@ CLOUD_EMISSION_FACTOR = 0.84
 SURFACE_EMISSIVITY = 0.98
 
 
-def _a(x):
-    return np.asarray(x, dtype=float)
-
-
-def _out(x):
-    x = np.asarray(x)
-    return float(x) if x.ndim == 0 else x
 
 
 def blackbody_emittance_w_m2(temp_c, emissivity=1.0):
