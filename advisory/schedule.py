@@ -74,7 +74,8 @@ class PlannedRun:
 class PlannerSettings:
     update_interval_min: int = 60
     morning_offset_min: int = 60
-    heat_offset_min: int = 120
+    #: sunrise + 2.5 h: the morning reading at sunrise + 2 h is in by then
+    heat_offset_min: int = 150
     #: A run may start this late and still run (restart within the grace time).
     grace_min: int = 45
     #: How far ahead to place jobs.

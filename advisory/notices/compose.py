@@ -1229,7 +1229,8 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
     when_txt = f"night of {w.short_day(a0.night)}" if kind != "heat" else w.short_day(a0.night)
     lead = [f"{len(rows)} block{'s' if len(rows) != 1 else ''}: {count_txt}."]
     if first_start:
-        lead.append(f"First protection start {f.clock(first_start[0])} ({first_start[1].block}).")
+        what = "First evaporative cooling start" if kind == "heat" else "First protection start"
+        lead.append(f"{what} {f.clock(first_start[0])} ({first_start[1].block}).")
     bare = [x.block for x in ok if _steps(x)[1]]
     if bare:
         lead.append("At risk with no usable protection: " + ", ".join(bare) + ".")

@@ -1,0 +1,43 @@
+"""`advisory heat run`: the morning heat note for a day."""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from advisory import heat_pipeline
+from advisory.errors import InputError
+from advisory.store.db import Database
+
+
+def _date(text: str | None, field: str = "--date") -> dt.date | None:
+    if text is None:
+        return None
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError:
+        raise InputError(f"'{text}' is not a date like 2026-07-15", field=field) from None
+
+
+def register(sub) -> None:
+    p = sub.add_parser("heat", help="summer heat: the morning note on fruit sunburn and crew heat")
+    hsub = p.add_subparsers(dest="heat_command", metavar="ACTION")
+    hsub.required = True
+    run = hsub.add_parser(
+        "run", help="assess and notify one day (one-shot, for cron or by hand)",
+        description="Assess the day's heat for each block: the high from the imported outlook (or, without "
+                    "one, estimated from the morning readings), the hourly curve, fruit sunburn hours, "
+                    "evaporative cooling, crew heat index and WBGT estimate; store and deliver the notes. "
+                    "Runs whatever the farm's heat season; a day already assessed is not assessed again.")
+    run.add_argument("--date", help="local date of the day (default: today in the farm's zone)")
+    run.add_argument("--block", action="append", metavar="NAME", help="only this block (repeatable)")
+    run.add_argument("--farm", help="only this farm")
+    run.add_argument("--no-deliver", action="store_true", help="store the notes but deliver nothing")
+    run.add_argument("--format", choices=("text", "markdown"), default="text", help="how to print the summary")
+    run.set_defaults(func=do_run)
+
+
+def do_run(args) -> int:
+    db = Database(args.db)
+    print(heat_pipeline.heat_run_text(db, _date(args.date), farm=args.farm, names=args.block,
+                                      deliver=not args.no_deliver, fmt=args.format))
+    return 0
