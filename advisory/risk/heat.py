@@ -120,7 +120,8 @@ _GENERIC = CropHeatThresholds("other", 32.0, 35.0, 38.0, 30.0, 29.0,
                               "generic fallback (common practice, from memory)")
 _CROP_ALIASES = {"apples": "apple", "pome": "apple", "pear": "apple", "pears": "apple",
                  "grapes": "grape", "vine": "grape", "wine grape": "grape", "table grape": "grape",
-                 "sweet cherry": "cherry", "cherries": "cherry", "tart cherry": "cherry"}
+                 "sweet cherry": "cherry", "cherries": "cherry", "tart cherry": "cherry",
+                 "wine_grape": "grape"}
 
 #: Heavy-work WBGT limits (acclimatised, ACGIH TLV screening) and the work-rest they allow.
 CREW_WORK_REST_HEAVY = (
@@ -155,7 +156,7 @@ CAUTIONS = (
 def _thresholds(crops) -> list[CropHeatThresholds]:
     out = []
     for c in np.atleast_1d(np.asarray(crops, dtype=object)):
-        key = str(c).strip().lower()
+        key = str(c).strip().lower().replace("_", " ")  # crop keys of advisory.crops ("sweet_cherry")
         key = _CROP_ALIASES.get(key, key)
         out.append(CROP_HEAT.get(key, _GENERIC))
     return out
