@@ -22,15 +22,18 @@ a level change, or the set of advised methods changing).
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
+import gc
 import logging
+import time
 from collections import defaultdict
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import func, select
+from sqlalchemy import func, insert, select
 from sqlalchemy.orm import Session, selectinload
 
 from advisory import assessment as asm
@@ -80,23 +83,107 @@ class RunResult:
     skipped: list[str] = field(default_factory=list)
     verified: list[dict] = field(default_factory=list)
     farm_summaries: dict[str, int] = field(default_factory=dict)
+    #: Wall time of each stage of the run [s] (see :class:`StageTimes`).
+    timings: dict[str, float] = field(default_factory=dict)
+
+
+class StageTimes(dict):
+    """Wall time per stage of a run [s]: ``lap(name)`` adds the time since the previous lap."""
+
+    def __init__(self):
+        super().__init__()
+        self._t = time.perf_counter()
+
+    def lap(self, name: str) -> None:
+        now = time.perf_counter()
+        self[name] = self.get(name, 0.0) + now - self._t
+        self._t = now
+
+
+def _lap(timings: StageTimes | None, name: str) -> None:
+    if timings is not None:
+        timings.lap(name)
 
 
 # --------------------------------------------------------------------------- loading
 
 def _load_blocks(session: Session, block_ids: Sequence[int] | None, farm: str | None = None,
-                 names: Sequence[str] | None = None) -> list[Block]:
-    q = (select(Block).join(Farm)
-         .options(selectinload(Block.farm), selectinload(Block.station), selectinload(Block.equipment),
-                  selectinload(Block.recipients))
-         .where(Block.active.is_(True)).order_by(Farm.name, Block.name))
+                 names: Sequence[str] | None = None, *, equipment: bool = True) -> list[Block]:
+    """Active blocks (all, or by id, farm or name), ordered by farm and block name.
+
+    Each comes with its farm, station and recipients (and its equipment unless
+    ``equipment=False``) already in place, read with one query per table
+    rather than one per block.
+    """
+    q = select(Block).join(Farm).where(Block.active.is_(True)).order_by(Farm.name, Block.name)
     if block_ids is not None:
         q = q.where(Block.id.in_(list(block_ids)))
     if farm:
         q = q.where(Farm.name == farm)
     if names:
         q = q.where(Block.name.in_(list(names)))
-    return list(session.scalars(q))
+    blocks = list(session.scalars(q))
+    if blocks:
+        _populate(session, blocks, equipment=equipment)
+    return blocks
+
+
+def _populate(session: Session, blocks: list[Block], *, equipment: bool) -> None:
+    """Put the farm, station, recipients (and equipment) of ``blocks`` in place, in bulk.
+
+    The values are set as loaded from the database (nothing becomes dirty), exactly what the
+    relationships would load one block at a time.
+    """
+    from sqlalchemy.orm.attributes import set_committed_value
+
+    from advisory.store.schema import BlockRecipient, Equipment, Recipient
+
+    ids = [b.id for b in blocks]
+    farms = {f.id: f for f in session.scalars(select(Farm).where(Farm.id.in_({b.farm_id for b in blocks})))}
+    stations = {x.id: x for x in session.scalars(select(Station).where(
+        Station.id.in_({b.station_id for b in blocks})))}
+    links: dict[int, list[int]] = defaultdict(list)
+    for chunk in _chunked(ids):
+        for bid, rid in session.execute(select(BlockRecipient.block_id, BlockRecipient.recipient_id)
+                                        .where(BlockRecipient.block_id.in_(chunk))
+                                        .order_by(BlockRecipient.block_id, BlockRecipient.recipient_id)):
+            links[bid].append(rid)
+    wanted = sorted({r for rs in links.values() for r in rs})
+    recipients = {}
+    for chunk in _chunked(wanted):
+        recipients.update({r.id: r for r in session.scalars(select(Recipient).where(Recipient.id.in_(chunk)))})
+    gear: dict[int, list] = defaultdict(list)
+    if equipment:
+        for chunk in _chunked(ids):
+            for e in session.scalars(select(Equipment).where(Equipment.block_id.in_(chunk)).order_by(Equipment.id)):
+                gear[e.block_id].append(e)
+    for b in blocks:
+        set_committed_value(b, "farm", farms[b.farm_id])
+        set_committed_value(b, "station", stations[b.station_id])
+        set_committed_value(b, "recipients", [recipients[r] for r in links.get(b.id, ())])
+        if equipment:
+            set_committed_value(b, "equipment", gear.get(b.id, []))
+
+
+def _equipment_of(session: Session, blocks: list[Block]) -> dict[int, list[dict]]:
+    """Each block's protection equipment as ``{"kind": ..., **params}`` dicts, in id order (one query per
+    5000 blocks; the ``equipment`` collections are used where already loaded)."""
+    from sqlalchemy import inspect as sa_inspect
+
+    from advisory.store.schema import Equipment
+
+    out: dict[int, list[dict]] = {}
+    missing = []
+    for b in blocks:
+        if "equipment" in sa_inspect(b).dict:
+            out[b.id] = [{"kind": e.kind, **e.params} for e in b.equipment]
+        else:
+            missing.append(b.id)
+    for chunk in _chunked(missing):
+        for bid, kind, params in session.execute(select(Equipment.block_id, Equipment.kind, Equipment.params)
+                                                 .where(Equipment.block_id.in_(chunk)).order_by(Equipment.id)):
+            out.setdefault(bid, []).append({"kind": kind, **(params or {})})
+    return out
 
 
 def _latest_calibrations(session: Session, station_ids: Sequence[int], kind: str = "night_min"
@@ -128,8 +215,10 @@ def _recent_verification(session: Session, block_ids: Sequence[int], before: dt.
 
 # --------------------------------------------------------------------------- the frost night
 
-def _base_assessment(b: Block, night: dt.date, kind: str = "frost") -> asm.Assessment:
-    ct = thresholds.critical_temps(b.crop, b.stage, b.t10_override_c, b.t90_override_c)
+def _base_assessment(b: Block, night: dt.date, kind: str = "frost", *, critical: dict | None = None
+                     ) -> asm.Assessment:
+    """The block's fixed part of an assessment; ``critical`` memoises the critical temperatures."""
+    ct = _critical(b, critical)
     return asm.Assessment(
         kind=kind, farm=b.farm.name, farm_tz=b.farm.timezone, units=b.farm.units, block_id=b.id,
         block=b.name, station=b.station.code, crop=b.crop, variety=b.variety, stage=b.stage,
@@ -182,18 +271,199 @@ def _subset_physical(fc: NightForecast, idx: np.ndarray):
     return phys
 
 
+#: Blocks whose reference times lie within this span share one risk pass (one time grid) [h].
+GROUP_SPAN_H = 4.0
+
+
+def _night_groups(fc: NightForecast, idx: np.ndarray, span_h: float | None = None) -> list[np.ndarray]:
+    """Split blocks ``idx`` into groups whose reference times lie within ``span_h`` of each other.
+
+    The risk model works on one shared 15-minute grid per call, from the earliest reference time to
+    the latest end of the night; one call for farms on several continents would pad every block with
+    a day of empty grid.  Each block's results do not depend on the grid's extent.
+    """
+    ref = fc.reference_time[idx].as_unit("ns").asi8
+    order = np.argsort(ref, kind="stable")
+    groups, start = [], 0
+    limit = int((GROUP_SPAN_H if span_h is None else span_h) * 3600 * 10**9)
+    for k in range(1, len(order) + 1):
+        if k == len(order) or ref[order[k]] - ref[order[start]] > limit:
+            groups.append(np.sort(idx[order[start:k]]))
+            start = k
+    return groups
+
+
 def _cdf(fc: NightForecast, idx: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
-    q = fc.quantiles_c[idx]
+    """P(minimum <= x) from the forecast's quantile table, for x of shape (n, g).
+
+    Same values as :func:`advisory.forecast.result.table_prob_below` column by column; rows whose
+    quantiles are finite and sorted (all in practice) are counted with one binary search per row
+    instead of comparing every level with every x.
+    """
+    q = np.asarray(fc.quantiles_c[idx], float)
+    sorted_rows = np.all(np.isfinite(q), axis=1)
+    if q.shape[1] > 1:
+        sorted_rows &= np.all(np.diff(q, axis=1) >= 0, axis=1)
 
     def cdf(x):
         x = np.asarray(x, float)
-        return np.stack([table_prob_below(q, x[:, j]) for j in range(x.shape[1])], axis=1)
+        if x.ndim != 2 or not sorted_rows.all():
+            return np.stack([table_prob_below(q, x[:, j]) for j in range(x.shape[1])], axis=1)
+        return _table_prob_below_sorted(q, x)
 
     return cdf
 
 
+def _table_prob_below_sorted(q: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """:func:`~advisory.forecast.result.table_prob_below` for rows of finite, sorted quantiles ``q`` (n, k)
+    at thresholds ``x`` (n, g); returns (n, g)."""
+    from advisory.forecast.result import LEVELS
+
+    n, k = q.shape
+    below = np.empty(x.shape, dtype=np.int64)
+    for i in range(n):  # count of q[i] <= x[i] (q[i] sorted): one binary search per row
+        below[i] = np.searchsorted(q[i], x[i], side="right")
+    j = np.clip(below, 1, k - 1)
+    lo = np.take_along_axis(q, j - 1, axis=1)
+    hi = np.take_along_axis(q, j, axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        f = np.where(hi > lo, (x - lo) / (hi - lo), 1.0)
+    p = LEVELS[j - 1] + np.clip(f, 0.0, 1.0) * (LEVELS[j] - LEVELS[j - 1])
+    p = np.where(below == 0, 0.0, np.where(below >= k, 1.0, p))
+    return np.where(np.isfinite(x), p, np.nan)
+
+
+
+def _critical(b: Block, cache: dict | None):
+    """The block's critical temperatures (memoised per crop, stage and overrides within one run)."""
+    key = (b.crop, b.stage, b.t10_override_c, b.t90_override_c)
+    if cache is None or key not in cache:
+        ct = thresholds.critical_temps(b.crop, b.stage, b.t10_override_c, b.t90_override_c)
+        if cache is None:
+            return ct
+        cache[key] = ct
+    return cache[key]
+
+
+def _frost_settings(b: Block, cache: dict) -> frost.FrostSettings:
+    """The block's frost settings (farm's, overridden by the block's), memoised per distinct pair."""
+    key = (b.farm_id, repr(b.farm.settings), repr(b.settings))
+    if key not in cache:
+        cache[key] = frost.FrostSettings.from_mappings(b.farm.settings, b.settings,
+                                                       where=f"block '{b.name}' settings")
+    return cache[key]
+
+
+def _nullable(values: np.ndarray) -> list:
+    """Floats as a list, NaN as None."""
+    return [None if v != v else v for v in np.asarray(values, float).tolist()]
+
+
+def _pydatetimes(values) -> list:
+    """Aware UTC datetimes (None for NaT) from datetime64 values."""
+    idx = pd.DatetimeIndex(values)
+    if idx.tz is None:
+        idx = idx.tz_localize("UTC")
+    py = idx.to_pydatetime()
+    return [None if m else v for v, m in zip(py, idx.isna(), strict=True)]
+
+
+def _latest_valid(obs: dict[int, pd.DataFrame], station_ids: np.ndarray, ref_ns: np.ndarray) -> list:
+    """Time of each block's latest valid air temperature at or before its reference time (None: none)."""
+    out: list = [None] * len(station_ids)
+    order = np.argsort(station_ids, kind="stable")
+    keys = station_ids[order]
+    bounds = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1], True])
+    stamps: dict[int, pd.Timestamp] = {}
+    for a, z in zip(bounds[:-1], bounds[1:], strict=True):
+        frame = obs.get(int(keys[a]))
+        if frame is None or not len(frame):
+            continue
+        t = frame.index.as_unit("ns").asi8[frame["air_temp_c"].notna().to_numpy()]
+        rows = order[a:z]
+        pos = np.searchsorted(t, ref_ns[rows], side="right") - 1
+        for r, p in zip(rows.tolist(), pos.tolist(), strict=True):
+            if p >= 0:
+                v = int(t[p])
+                if v not in stamps:
+                    stamps[v] = pd.Timestamp(v, tz="UTC")
+                out[r] = stamps[v]
+    return out
+
+
+_EVENING_KEYS = ("air_temp_c", "dew_point_c", "wind_speed_ms", "cloud_cover_pct", "upper_air_temp_c",
+                 "cooling_since_sunset_c")
+
+
+def _assessments(blocks: list[Block], night: dt.date, update: bool, table: pd.DataFrame, states: pd.DataFrame,
+                 obs: dict[int, pd.DataFrame], fc: NightForecast, ok: np.ndarray, verif: dict,
+                 ref_max: pd.Timestamp) -> list[asm.Assessment]:
+    """Every block's assessment before the risk: sun times, data quality, status and reason.
+
+    Works on whole columns; the only Python loop per block fills the dataclasses.
+    """
+    sunsets = _pydatetimes(table["sunset"])
+    sunrises = _pydatetimes(table["sunrise"])
+    status = table["status"].to_numpy(dtype=object)
+    ref = pd.DatetimeIndex(states["reference_time"])
+    ref_ns = np.where(ref.isna(), pd.Timestamp(ref_max).as_unit("ns").value, ref.as_unit("ns").asi8)
+    latest = _latest_valid(obs, np.array([b.station_id for b in blocks], np.int64), ref_ns)
+    refs = _pydatetimes(ref.round("s"))
+    age = _nullable(states["air_temp_age_min"].to_numpy(float))
+    evening = {k: _nullable(states[k].to_numpy(float)) for k in _EVENING_KEYS}
+    crit: dict = {}
+    out: list[asm.Assessment] = []
+    for i, b in enumerate(blocks):
+        a = _base_assessment(b, night, critical=crit)
+        a.is_update = update
+        a.sunset_utc = sunsets[i]
+        a.sunrise_utc = sunrises[i]
+        a.verification = verif.get(b.id, [])
+        last = latest[i]
+        a.data_quality = {
+            "latest_obs_utc": None if last is None else last.isoformat(),
+            "obs_age_min": age[i],
+            "evening": {k: v[i] for k, v in evening.items()},
+            "assumed": list(fc.assumed[i] or ()),
+        }
+        if status[i] != sun.NORMAL:
+            a.status = asm.STATUS_NO_NIGHT
+            a.reason = ("the sun does not set tonight at this latitude: no nocturnal forecast"
+                        if status[i] == sun.POLAR_DAY else
+                        "the sun does not rise tomorrow at this latitude: no nocturnal forecast")
+        elif not ok[i]:
+            a.status = asm.STATUS_NO_FORECAST
+            a.reason = _silence_reason(b.station, last, fc.reason[i], b.farm.timezone)
+        if refs[i] is not None:
+            a.reference_time_utc = refs[i]
+        out.append(a)
+    return out
+
+
+def _set_curves(out: list[asm.Assessment], fc: NightForecast, states: pd.DataFrame, idx: np.ndarray,
+                pressure_kpa: np.ndarray) -> None:
+    """The hourly night curve of blocks ``idx`` (median, 10th and 90th percentile, wet bulb), in one pass."""
+    times, p50 = fc.curve(0.5)
+    _, p10 = fc.curve(0.1)
+    _, p90 = fc.curve(0.9)
+    # (blocks, hours), row-major: each block's points in time order
+    times, p50, p10, p90 = (x[:, idx].T for x in (times, p50, p10, p90))
+    valid = ~np.isnat(times) & np.isfinite(p50)
+    dew = states["dew_point_c"].to_numpy(float)[idx][:, None]
+    pk = np.broadcast_to(np.asarray(pressure_kpa, float)[:, None], p50.shape)
+    wet = np.asarray(moisture.wet_bulb_c(p50[valid], np.minimum(dew, p50)[valid], pk[valid]), float)
+    when = pd.DatetimeIndex(times[valid]).tz_localize("UTC").round("s").to_pydatetime()
+    rows = zip(when, p50[valid].tolist(), p10[valid].tolist(), p90[valid].tolist(), wet.tolist(), strict=True)
+    points = [asm.CurvePoint(time_utc=t, p50_c=a, p10_c=b, p90_c=c, wet_bulb_c=w) for t, a, b, c, w in rows]
+    ends = np.cumsum(valid.sum(axis=1))
+    start = 0
+    for i, end in zip(idx, ends.tolist(), strict=True):
+        out[i].curve = points[start:end]
+        start = end
+
+
 def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of: dt.datetime | None = None,
-                 update: bool = False) -> list[asm.Assessment]:
+                 update: bool = False, timings: StageTimes | None = None) -> list[asm.Assessment]:
     """Forecast and assess ``night`` for ``blocks`` (pure reads; nothing is written).
 
     Parameters
@@ -228,114 +498,97 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
     ref_min = table["sunset"].min()
     if pd.isna(ref_min):
         ref_min = ref_max
+    _lap(timings, "sun+evening state")
     obs = load_observations_many(session, station_ids, ref_min - pd.Timedelta(hours=LOOKBACK_H),
                                  ref_max + pd.Timedelta(minutes=1))
+    _lap(timings, "load observations")
     station_keys = np.array([b.station_id for b in blocks], dtype=object)
     sun_rows = table.assign(night=night)
     states = evening_states(obs, sun_rows, station=station_keys, reference_offset_h=offset_h)
     states["station"] = station_keys
+    _lap(timings, "sun+evening state")
     cals = _latest_calibrations(session, station_ids)
     fc = calib.forecast_night(states, {k: v for k, v in cals.items()}, block=[b.id for b in blocks])
     ok = fc.ok & (table["status"].to_numpy(dtype=object) == sun.NORMAL)
     verif = _recent_verification(session, [b.id for b in blocks], night)
+    _lap(timings, "forecast")
 
-    out: list[asm.Assessment] = []
-    for i, b in enumerate(blocks):
-        a = _base_assessment(b, night)
-        a.is_update = update
-        st = table.iloc[i]
-        a.sunset_utc = None if pd.isna(st["sunset"]) else st["sunset"].to_pydatetime()
-        a.sunrise_utc = None if pd.isna(st["sunrise"]) else st["sunrise"].to_pydatetime()
-        a.verification = verif.get(b.id, [])
-        row = states.iloc[i]
-        frame = obs.get(b.station_id)
-        latest = None
-        if frame is not None and len(frame):
-            ref_i = row["reference_time"] if not pd.isna(row["reference_time"]) else ref_max
-            valid = frame["air_temp_c"].notna() & (frame.index <= ref_i)
-            latest = frame.index[valid].max() if valid.any() else None
-        a.data_quality = {
-            "latest_obs_utc": None if latest is None or pd.isna(latest) else latest.isoformat(),
-            "obs_age_min": None if pd.isna(row["air_temp_age_min"]) else float(row["air_temp_age_min"]),
-            "evening": {k: (None if pd.isna(row[k]) else float(row[k]))
-                        for k in ("air_temp_c", "dew_point_c", "wind_speed_ms", "cloud_cover_pct",
-                                  "upper_air_temp_c", "cooling_since_sunset_c")},
-            "assumed": list(fc.assumed[i] or ()),
-        }
-        if st["status"] != sun.NORMAL:
-            a.status = asm.STATUS_NO_NIGHT
-            a.reason = ("the sun does not set tonight at this latitude: no nocturnal forecast"
-                        if st["status"] == sun.POLAR_DAY else
-                        "the sun does not rise tomorrow at this latitude: no nocturnal forecast")
-        elif not ok[i]:
-            a.status = asm.STATUS_NO_FORECAST
-            a.reason = _silence_reason(b.station, latest, fc.reason[i], b.farm.timezone)
-        if not pd.isna(row["reference_time"]):
-            a.reference_time_utc = row["reference_time"].round("s").to_pydatetime()
-        out.append(a)
-
+    out = _assessments(blocks, night, update, table, states, obs, fc, ok, verif, ref_max)
     idx = np.flatnonzero(ok)
     if len(idx):
-        curves = _curves_on_grid(fc, states, idx, elev)
-        forecast = frost.MinTempForecast(fc.quantile(0.1)[idx], fc.quantile(0.5)[idx], fc.quantile(0.9)[idx],
-                                         cdf=_cdf(fc, idx))
-        setups = []
-        for i in idx:
-            b = blocks[i]
-            a = out[i]
-            upper = states["upper_air_temp_c"].iat[i]
-            air = states["air_temp_c"].iat[i]
-            setups.append(frost.BlockSetup(
-                name=b.name, crop=b.crop, stage=b.stage, t10_c=a.t10_c, t90_c=a.t90_c, area_ha=b.area_ha,
-                equipment=[{"kind": e.kind, **e.params} for e in b.equipment],
-                upper_inversion_c=None if pd.isna(upper) or pd.isna(air) else float(upper - air),
-                cloud_cover_pct=None if pd.isna(states["cloud_cover_pct"].iat[i])
-                else float(states["cloud_cover_pct"].iat[i]),
-                settings=frost.FrostSettings.from_mappings(b.farm.settings, b.settings,
-                                                           where=f"block '{b.name}' settings")))
-        risks = frost.plan_night(setups, curves, forecast)
-        times_p50, temps_p50 = fc.curve(0.5)
-        _, temps_p10 = fc.curve(0.1)
-        _, temps_p90 = fc.curve(0.9)
-        for k, i in enumerate(idx):
-            a = out[i]
-            fields = frost.assessment_fields(risks[k])
-            for key, value in fields.items():
-                setattr(a, key, value)
-            a.model = str(fc.model[i])
-            a.training_nights = int(fc.training_nights[i])
-            dew = float(states["dew_point_c"].iat[i])
-            pk = float(curves.pressure_kpa[k])
-            pts = []
-            for h in range(times_p50.shape[0]):
-                t = times_p50[h, i]
-                if np.isnat(t) or not np.isfinite(temps_p50[h, i]):
-                    continue
-                p50 = float(temps_p50[h, i])
-                pts.append(asm.CurvePoint(
-                    time_utc=pd.Timestamp(t).tz_localize("UTC").round("s").to_pydatetime(), p50_c=p50,
-                    p10_c=float(temps_p10[h, i]), p90_c=float(temps_p90[h, i]),
-                    wet_bulb_c=float(moisture.wet_bulb_c(p50, min(dew, p50), pk))))
-            a.curve = pts
+        upper = states["upper_air_temp_c"].to_numpy(float)
+        air = states["air_temp_c"].to_numpy(float)
+        cloud = states["cloud_cover_pct"].to_numpy(float)
+        inversion = upper - air
+        frost_settings: dict = {}
+        gear = _equipment_of(session, [blocks[i] for i in idx])
+        # Blocks whose nights overlap share one time grid; far-apart zones get their own, so the
+        # grid of each pass is not padded with the hours of the other side of the world.
+        for group in _night_groups(fc, idx):
+            curves = _curves_on_grid(fc, states, group, elev)
+            forecast = frost.MinTempForecast(fc.quantile(0.1)[group], fc.quantile(0.5)[group],
+                                             fc.quantile(0.9)[group], cdf=_cdf(fc, group))
+            setups = []
+            for i in group:
+                b = blocks[i]
+                a = out[i]
+                setups.append(frost.BlockSetup(
+                    name=b.name, crop=b.crop, stage=b.stage, t10_c=a.t10_c, t90_c=a.t90_c, area_ha=b.area_ha,
+                    equipment=gear.get(b.id, []),
+                    upper_inversion_c=None if np.isnan(inversion[i]) else float(inversion[i]),
+                    cloud_cover_pct=None if np.isnan(cloud[i]) else float(cloud[i]),
+                    settings=_frost_settings(b, frost_settings)))
+            risks = frost.plan_night(setups, curves, forecast)
+            for k, i in enumerate(group):
+                a = out[i]
+                for key, value in frost.assessment_fields(risks[k]).items():
+                    setattr(a, key, value)
+                a.model = str(fc.model[i])
+                a.training_nights = int(fc.training_nights[i])
+        pressure = np.asarray(moisture.pressure_kpa_from_elevation(elev[idx]), float)
+        _set_curves(out, fc, states, idx, pressure)
+    _lap(timings, "risk/plan")
     return out
 
 
 # --------------------------------------------------------------------------- storing and delivering
 
-def _previous(session: Session, block_id: int, night: dt.date, kind: str) -> Forecast | None:
-    return session.scalar(select(Forecast).where(Forecast.block_id == block_id, Forecast.kind == kind,
-                                                 Forecast.night == night)
-                          .order_by(Forecast.revision.desc()).limit(1))
+#: Ids per ``IN (...)`` list (well below SQLite's limit on bound parameters).
+_IN_CHUNK = 5000
 
 
-def _last_noticed(session: Session, block_id: int, night: dt.date, kind: str) -> asm.Assessment | None:
-    n = session.scalar(select(Notice).where(Notice.block_id == block_id, Notice.kind == kind,
-                                            Notice.night == night)
-                       .order_by(Notice.revision.desc()).limit(1))
-    if n is None or n.forecast_id is None:
-        return None
-    f = session.get(Forecast, n.forecast_id)
-    return asm.from_dict(f.payload) if f and f.payload else None
+def _chunked(values: Sequence, size: int = _IN_CHUNK):
+    values = list(values)
+    for k in range(0, len(values), size):
+        yield values[k:k + size]
+
+
+def _previous_revisions(session: Session, night: dt.date, kind: str) -> dict[int, int]:
+    """Latest stored forecast revision of every block for a night (one query)."""
+    return dict(session.execute(select(Forecast.block_id, func.max(Forecast.revision))
+                                .where(Forecast.kind == kind, Forecast.night == night)
+                                .group_by(Forecast.block_id)).all())
+
+
+def _last_noticed_many(session: Session, block_ids: Sequence[int], night: dt.date, kind: str
+                       ) -> dict[int, asm.Assessment]:
+    """The assessment behind each block's latest notice of the night (blocks without one are absent)."""
+    wanted = set(block_ids)
+    if not wanted:
+        return {}
+    latest: dict[int, tuple[int, int | None]] = {}
+    for bid, rev, fid in session.execute(select(Notice.block_id, Notice.revision, Notice.forecast_id)
+                                         .where(Notice.kind == kind, Notice.night == night,
+                                                Notice.block_id.is_not(None))):
+        if bid in wanted and (bid not in latest or rev > latest[bid][0]):
+            latest[bid] = (rev, fid)
+    by_forecast = {fid: bid for bid, (_, fid) in latest.items() if fid is not None}
+    out: dict[int, asm.Assessment] = {}
+    for chunk in _chunked(sorted(by_forecast)):
+        for fid, payload in session.execute(select(Forecast.id, Forecast.payload).where(Forecast.id.in_(chunk))):
+            if payload:
+                out[by_forecast[fid]] = asm.from_dict(payload)
+    return out
 
 
 def _first_advised_start(a: asm.Assessment) -> dt.datetime | None:
@@ -371,82 +624,268 @@ def material_change(new: asm.Assessment, old: asm.Assessment | None) -> list[str
     return why
 
 
+# The same JSON-able form as :func:`advisory.assessment.to_dict`, several times faster: the
+# encoder of each value type is looked up once per type, not found by a chain of tests per value;
+# plain values are passed inline, and the ISO form of recurring instants is remembered.
+_ENCODERS: dict[type, Callable] = {}
+_PLAIN = frozenset({str, int, bool, type(None)})
+_ISO: dict[dt.datetime, str] = {}
+
+
+def _encode_fast(value):
+    enc = _ENCODERS.get(type(value))
+    if enc is None:
+        enc = _ENCODERS[type(value)] = _encoder_for(type(value))
+    return enc(value)
+
+
+def _identity(value):
+    return value
+
+
+def _iso_utc(v: dt.datetime) -> str:
+    s = _ISO.get(v)
+    if s is None:
+        if len(_ISO) > 50_000:
+            _ISO.clear()
+        s = _ISO[v] = v.astimezone(dt.UTC).isoformat()
+    return s
+
+
+def _encoder_for(t: type) -> Callable:
+    """The encoder of values of type ``t``; mirrors the order of tests in ``advisory.assessment._encode``."""
+    import dataclasses
+
+    plain = _PLAIN
+    enc = _encode_fast
+    if issubclass(t, dt.datetime):
+        return _iso_utc if t is dt.datetime else (lambda v: v.astimezone(dt.UTC).isoformat())
+    if issubclass(t, dt.date):
+        return lambda v: v.isoformat()
+    if dataclasses.is_dataclass(t):
+        names = tuple(f.name for f in dataclasses.fields(t))
+        return lambda v: {n: (x if (tx := type(x := getattr(v, n))) in plain
+                              else ((None if x != x else x) if tx is float else enc(x))) for n in names}
+    if issubclass(t, dict):
+        return lambda v: {k: (x if (tx := type(x)) in plain
+                              else ((None if x != x else x) if tx is float else enc(x))) for k, x in v.items()}
+    if issubclass(t, list | tuple):
+        return lambda v: [(x if (tx := type(x)) in plain
+                           else ((None if x != x else x) if tx is float else enc(x))) for x in v]
+    if hasattr(t, "item"):  # numpy scalar
+        return lambda v: v.item()
+    if issubclass(t, float):
+        return lambda v: None if v != v else v
+    return _identity
+
+
+def assessment_payload(a: asm.Assessment) -> dict:
+    """``advisory.assessment.to_dict(a)`` (the stored forecast payload), computed faster."""
+    return _encode_fast(a)
+
+
+@dataclass(frozen=True)
+class StoredNotice:
+    """A stored notice row as the run and the delivery read it (no database session needed).
+
+    :func:`advisory.notices.deliver.deliver_notices` reads only ``id``, ``key``
+    and ``content`` of a notice row, so this stands in for the ORM row.
+    """
+
+    id: int
+    key: str
+    farm_id: int
+    block_id: int | None
+    #: ``Notice.content`` as stored (the composed notice as plain data).
+    content: dict = field(repr=False, default_factory=dict)
+
+
 def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
-           now: dt.datetime) -> tuple[list[tuple[Notice, list]], list[str]]:
-    """Store forecasts and notices; returns (notices to deliver, skipped messages)."""
-    to_send: list[tuple[Notice, list]] = []
+           now: dt.datetime, timings: StageTimes | None = None
+           ) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
+    """Store forecasts and notices; returns (notices to deliver, skipped messages).
+
+    The rows are written with a few bulk ``INSERT``\\ s (the database hands back
+    the new ids in order); what was stored before is read with one query per
+    table, not one per block.
+
+    Parameters
+    ----------
+    session : Session
+        The run's transaction (the caller commits).
+    assessments : list of Assessment
+    revision_mode : {"evening", "heat", "missed", "update"}
+        ``evening``, ``heat`` and ``missed`` store revision 0 of a block-night
+        once (a block already assessed is skipped); ``update`` stores the next
+        revision and a notice only when :func:`material_change` says so.
+    now : datetime
+        The run's clock (``created_at``).
+    """
     skipped: list[str] = []
-    by_farm: dict[int, list[tuple[asm.Assessment, Block]]] = defaultdict(list)
+    if not assessments:
+        return [], skipped
+    kinds = {a.kind for a in assessments}
+    nights = {a.night for a in assessments}
+    prev: dict[int, int] = {}
+    for kind in kinds:
+        for night in nights:
+            prev.update({(bid, kind, night): rev for bid, rev in _previous_revisions(session, night, kind).items()})
+    todo: list[asm.Assessment] = []
     for a in assessments:
-        block = session.get(Block, a.block_id)
-        prev = _previous(session, a.block_id, a.night, a.kind)
+        p = prev.get((a.block_id, a.kind, a.night))
         if revision_mode in ("evening", "heat", "missed"):
-            if prev is not None:
-                skipped.append(f"{a.block}: {a.kind} {a.night} already assessed (revision {prev.revision})")
+            if p is not None:
+                skipped.append(f"{a.block}: {a.kind} {a.night} already assessed (revision {p})")
                 continue
             a.revision = 0
         else:
-            a.revision = 0 if prev is None else prev.revision + 1
-            a.is_update = prev is not None
-        row = Forecast(block_id=a.block_id, kind=a.kind, night=a.night, revision=a.revision, created_at=now,
-                       reference_time=a.reference_time_utc, status=a.status, reason=a.reason, model=a.model,
-                       training_nights=a.training_nights, min_p10_c=a.p10_c, min_p50_c=a.p50_c,
-                       min_p90_c=a.p90_c, level=a.level, payload=asm.to_dict(a))
-        session.add(row)
-        session.flush()
-        previous_noticed = _last_noticed(session, a.block_id, a.night, a.kind) if a.is_update else None
+            a.revision = 0 if p is None else p + 1
+            a.is_update = p is not None
+        todo.append(a)
+    noticed: dict = {}
+    if revision_mode == "update":
+        for kind in kinds:
+            for night in nights:
+                ids = [a.block_id for a in todo if a.is_update and a.kind == kind and a.night == night]
+                noticed.update({(bid, kind, night): v
+                                for bid, v in _last_noticed_many(session, ids, night, kind).items()})
+    blocks = {a.block_id: session.get(Block, a.block_id) for a in todo}
+    payloads = []
+    composed: list[tuple[asm.Assessment, compose.BlockNotice] | None] = []
+    for a in todo:
+        payload = assessment_payload(a)
+        previous_noticed = noticed.get((a.block_id, a.kind, a.night)) if a.is_update else None
+        notice = None
+        why: list[str] = []
         if a.is_update:
             why = material_change(a, previous_noticed)
-            if not why:
-                continue
-            a.details = {**a.details, "update_reasons": why}
-            row.payload = asm.to_dict(a)
-        notice = compose.compose_block(a, previous_noticed, data=row.payload)
-        content = notice.to_dict()
-        key = compose.notice_key(a.kind, a.farm, a.block_id, a.night, a.revision)
-        nrow = Notice(key=key, farm_id=block.farm_id, block_id=a.block_id, forecast_id=row.id, kind=a.kind,
-                      night=a.night, revision=a.revision, is_update=a.is_update, level=a.level,
-                      subject=notice.subject, created_at=now, content=content)
-        session.add(nrow)
+            if why:
+                a.details = {**a.details, "update_reasons": why}
+                payload = {**payload, "details": {**(payload.get("details") or {}), "update_reasons": list(why)}}
+        if not a.is_update or why:
+            notice = compose.compose_block(a, previous_noticed, data=payload)
+        payloads.append(payload)
+        composed.append(notice)
+    _lap(timings, "compose")
+    forecast_ids = _insert_returning_ids(session, Forecast, [
+        {"block_id": a.block_id, "kind": a.kind, "night": a.night, "revision": a.revision, "created_at": now,
+         "reference_time": a.reference_time_utc, "status": a.status, "reason": a.reason, "model": a.model,
+         "training_nights": a.training_nights, "min_p10_c": a.p10_c, "min_p50_c": a.p50_c,
+         "min_p90_c": a.p90_c, "level": a.level, "payload": payload}
+        for a, payload in zip(todo, payloads, strict=True)])
+    rows, sent = [], []
+    by_farm: dict[int, list[tuple[asm.Assessment, Block]]] = defaultdict(list)
+    batch_payloads: dict[int, dict] = {}
+    for a, payload, notice, fid in zip(todo, payloads, composed, forecast_ids, strict=True):
+        batch_payloads[fid] = payload
+        if notice is None:
+            continue
+        block = blocks[a.block_id]
+        rows.append({"key": notice.key,
+                     "farm_id": block.farm_id, "block_id": a.block_id, "forecast_id": fid, "kind": a.kind,
+                     "night": a.night, "revision": a.revision, "is_update": a.is_update, "level": a.level,
+                     "subject": notice.subject, "created_at": now, "content": notice.to_dict()})
         by_farm[block.farm_id].append((a, block))
-        to_send.append((nrow, list(block.recipients)))
+        sent.append(list(block.recipients))
+    _lap(timings, "store")
     # One farm summary per farm and run (only for the evening and heat runs and for updates with news).
+    summaries = []
     for farm_id, items in by_farm.items():
         farm_assessments = [a for a, _ in items]
+        a0 = farm_assessments[0]
         revision = max(a.revision for a in farm_assessments)
         if revision_mode in ("evening", "heat"):
             # the summary gathers every block of the farm assessed for this night, not only this batch
-            farm_assessments = _all_farm_assessments(session, farm_id, farm_assessments[0].night,
-                                                     farm_assessments[0].kind) or farm_assessments
-        summary = compose.compose_farm(farm_assessments, revision=revision)
-        key = compose.notice_key(farm_assessments[0].kind + "-summary", farm_assessments[0].farm, None,
-                                 farm_assessments[0].night, revision) + f":{_batch_tag(items)}"
+            farm_assessments = _farm_payloads(session, farm_id, a0.night, a0.kind, batch_payloads) \
+                or farm_assessments
+        key = compose.notice_key(a0.kind + "-summary", a0.farm, None, a0.night, revision) + f":{_batch_tag(items)}"
         if session.scalar(select(Notice.id).where(Notice.key == key)) is not None:
             continue
-        content = summary.to_dict()
-        nrow = Notice(key=key, farm_id=farm_id, block_id=None, forecast_id=None,
-                      kind=farm_assessments[0].kind + "-summary", night=farm_assessments[0].night,
-                      revision=revision, is_update=revision > 0, level=summary.level, subject=summary.subject,
-                      created_at=now, content=content)
-        session.add(nrow)
+        summary = compose.compose_farm(farm_assessments, revision=revision)
         recips = {r.id: r for _, b in items for r in b.recipients}
-        to_send.append((nrow, list(recips.values())))
-    session.flush()
+        rows.append({"key": key, "farm_id": farm_id, "block_id": None, "forecast_id": None,
+                     "kind": a0.kind + "-summary", "night": a0.night, "revision": revision,
+                     "is_update": revision > 0, "level": summary.level, "subject": summary.subject,
+                     "created_at": now, "content": summary.to_dict()})
+        summaries.append(list(recips.values()))
+    _lap(timings, "compose")
+    notice_ids = _insert_returning_ids(session, Notice, rows)
+    to_send = [(StoredNotice(nid, r["key"], r["farm_id"], r["block_id"], r["content"]), recips)
+               for nid, r, recips in zip(notice_ids, rows, sent + summaries, strict=True)]
+    _lap(timings, "store")
     return to_send, skipped
+
+
+def _insert_returning_ids(session: Session, model, rows: list[dict]) -> list[int]:
+    """Bulk ``INSERT`` of ``rows`` (column defaults and types applied); the new ids in the order of ``rows``."""
+    if not rows:
+        return []
+    ids: list[int] = []
+    for chunk in _chunked(rows, 2000):
+        ids += session.scalars(insert(model).returning(model.id, sort_by_parameter_order=True), chunk).all()
+    return ids
 
 
 def _batch_tag(items) -> str:
     return "-".join(str(b.id) for _, b in sorted(items, key=lambda x: x[1].id))[:120]
 
 
-def _all_farm_assessments(session: Session, farm_id: int, night: dt.date, kind: str) -> list[asm.Assessment]:
-    rows = session.scalars(select(Forecast).join(Block).where(Block.farm_id == farm_id, Forecast.night == night,
-                                                                Forecast.kind == kind, Forecast.revision == 0,
-                                                                Block.active.is_(True)))
-    return [asm.from_dict(r.payload) for r in rows if r.payload]
+def _farm_payloads(session: Session, farm_id: int, night: dt.date, kind: str, known: dict[int, dict]
+                   ) -> list[dict]:
+    """Payloads of every active block's revision-0 forecast of the farm for the night.
+
+    ``known`` maps forecast ids to payloads already at hand (this run's), which
+    are not read back from the database.
+    """
+    ids = list(session.scalars(select(Forecast.id).join(Block).where(
+        Block.farm_id == farm_id, Forecast.night == night, Forecast.kind == kind, Forecast.revision == 0,
+        Block.active.is_(True))))
+    found = {i: known[i] for i in ids if i in known}
+    missing = [i for i in ids if i not in known]
+    for chunk in _chunked(missing):
+        found.update(session.execute(select(Forecast.id, Forecast.payload).where(Forecast.id.in_(chunk))).all())
+    return [found[i] for i in ids if found.get(i)]
 
 
-def _deliver(db, to_send: list[tuple[Notice, list]], settings, *, sleep=None) -> dict[str, int]:
+def _outbox_plan(batch: list[tuple[Notice, list]], settings, wanted: set[str]) -> list[tuple[list, dict]]:
+    """Split a batch by what the outbox gets (see ``outbox_formats`` and ``outbox_charts`` in
+    :mod:`advisory.settings`): ``[(part of the batch, keyword arguments for deliver_notices)]``.
+
+    With the default settings (every format; charts "auto") the batch stays whole.  Otherwise the
+    farm summaries get every format; a block notice gets the configured formats, and its chart (with
+    the HTML that shows it) when the setting asks for one: "always", "never", "email" (the notice goes
+    out by e-mail in this run) or "auto" (by e-mail, or at "stand by" or worse).
+    """
+    from advisory.notices import deliver as deliver_mod
+
+    full = tuple(deliver_mod.OUTBOX_FORMATS)
+    formats = tuple(getattr(settings, "outbox_formats", None) or full)
+    charts = getattr(settings, "outbox_charts", None) or "auto"
+    if formats == full and charts == "auto":
+        return [(batch, {})]
+    by_mail = "email" in wanted
+    summaries, charted, plain = [], [], []
+    for n, recips in batch:
+        if n.block_id is None:
+            summaries.append((n, recips))
+            continue
+        mailed = by_mail and any((r.channels or {}).get("email") for r in recips)
+        draw = charts == "always" or (charts in ("email", "auto") and mailed)
+        (charted if draw else plain).append((n, recips))
+    with_html = formats + (() if "html" in formats else ("html",))
+    parts = [(summaries, {"outbox_formats": full, "outbox_chart": "auto"}),
+             (charted, {"outbox_formats": with_html, "outbox_chart": True}),
+             (plain, {"outbox_formats": formats, "outbox_chart": "auto" if charts == "auto" else False})]
+    return [(part, kw) for part, kw in parts if part]
+
+
+def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *, sleep=None) -> dict[str, int]:
+    """Deliver stored notices (as returned by :func:`_pending_notices`) in one transaction.
+
+    The rows are attached to the delivery session as they are (no reload); the outbox is written
+    as the settings say (:func:`_outbox_plan`); the other channels follow in one pass, so that the
+    retry pauses are shared by the whole batch.
+    """
     from advisory.notices import deliver as deliver_mod
 
     if not to_send:
@@ -454,31 +893,98 @@ def _deliver(db, to_send: list[tuple[Notice, list]], settings, *, sleep=None) ->
     kw = {} if sleep is None else {"sleep": sleep}
     counts: dict[str, int] = defaultdict(int)
     with db.transaction() as session:
-        batch = [(session.get(Notice, n.id), [session.merge(r) for r in recips]) for n, recips in to_send]
-        rows = deliver_mod.deliver_notices(session, batch, settings, **kw)
+        batch = _attached(session, to_send)
+        wanted = set(deliver_mod.CHANNELS)
+        parts = _outbox_plan(batch, settings, wanted)
+        rows = []
+        if len(parts) == 1 and not parts[0][1]:
+            rows += deliver_mod.deliver_notices(session, batch, settings, **kw)
+        else:
+            for part, opts in parts:
+                rows += deliver_mod.deliver_notices(session, part, settings, channels=("outbox",), **opts, **kw)
+            addressed = [(n, rs) for n, rs in batch if any(r.channels for r in rs)]
+            if addressed:
+                rows += deliver_mod.deliver_notices(session, addressed, settings,
+                                                    channels=sorted(wanted - {"outbox"}), **kw)
         for r in rows:
             counts[f"{r.channel} {r.status}"] += 1
     return dict(counts)
 
 
-def _pending_notices(db, night: dt.date, kind_prefix: str, farm_ids: Sequence[int]) -> list[tuple[Notice, list]]:
-    """A night's notices with no outbox delivery yet (new ones, or left by a crash before delivery)."""
-    from advisory.store.schema import Delivery
+def _attached(session: Session, to_send: list[tuple[Notice, list]]) -> list[tuple[Notice, list]]:
+    """The batch, ready for delivery in ``session`` without reloading anything that is at hand.
+
+    Notices and recipients are only read by the delivery.  Rows detached from an earlier session
+    are re-attached (no query); :class:`StoredNotice` views are used as they are; anything else
+    with an ``id`` is loaded in bulk.
+    """
+    from sqlalchemy import inspect as sa_inspect
+
+    from advisory.store.schema import Recipient
+
+    def usable(obj, model):
+        if model is Notice and isinstance(obj, StoredNotice):
+            return True
+        if not isinstance(obj, model):
+            return False
+        state = sa_inspect(obj)
+        if state.detached and session.identity_map.get(state.key) is None:
+            session.add(obj)
+        return True
+
+    want_notices = {n.id for n, _ in to_send if not usable(n, Notice)}
+    want_recips = {r.id for _, rs in to_send for r in rs if not usable(r, Recipient)}
+    notices, recipients = {}, {}
+    for chunk in _chunked(sorted(want_notices)):
+        notices.update({x.id: x for x in session.scalars(select(Notice).where(Notice.id.in_(chunk)))})
+    for chunk in _chunked(sorted(want_recips)):
+        recipients.update({x.id: x for x in session.scalars(select(Recipient).where(Recipient.id.in_(chunk)))})
+    return [(n if isinstance(n, Notice | StoredNotice) else notices[n.id],
+             [r if isinstance(r, Recipient) else recipients[r.id] for r in rs]) for n, rs in to_send]
+
+
+def _pending_notices(db, night: dt.date, kind_prefix: str, farm_ids: Sequence[int], *,
+                     known: Mapping[int, dict] | None = None) -> list[tuple[StoredNotice, list]]:
+    """A night's notices with no outbox delivery yet (new ones, or left by a crash before delivery).
+
+    Each comes with its recipients: the block's for a block notice, the farm's for a farm summary
+    (read in bulk, ordered by id).  The notices are :class:`StoredNotice` views of the rows;
+    ``known`` maps notice ids to their stored ``content`` when the caller has it at hand (the run
+    that just stored them), so that it is not read back.
+    """
+    from advisory.store.schema import BlockRecipient, Delivery, Recipient
 
     out = []
     if not farm_ids:
         return out
+    known = known or {}
     with db.transaction() as session:
         delivered = select(Delivery.notice_id).where(Delivery.channel == "outbox", Delivery.status == "sent")
-        rows = session.scalars(select(Notice).where(Notice.night == night, Notice.kind.like(f"{kind_prefix}%"),
-                                                    Notice.farm_id.in_(list(farm_ids)),
-                                                    Notice.id.not_in(delivered)).order_by(Notice.id))
-        for n in rows:
-            if n.block_id is not None:
-                recips = list(session.get(Block, n.block_id).recipients)
-            else:
-                recips = list(session.get(Farm, n.farm_id).recipients)
-            out.append((n, recips))
+        rows = session.execute(select(Notice.id, Notice.key, Notice.farm_id, Notice.block_id)
+                               .where(Notice.night == night, Notice.kind.like(f"{kind_prefix}%"),
+                                      Notice.farm_id.in_(list(farm_ids)), Notice.id.not_in(delivered))
+                               .order_by(Notice.id)).all()
+        contents: dict[int, dict] = {}
+        for chunk in _chunked([r.id for r in rows if r.id not in known]):
+            contents.update(session.execute(select(Notice.id, Notice.content).where(Notice.id.in_(chunk))).all())
+        by_block: dict[int, list] = defaultdict(list)
+        for chunk in _chunked(sorted({r.block_id for r in rows if r.block_id is not None})):
+            for bid, rc in session.execute(select(BlockRecipient.block_id, Recipient)
+                                           .join(Recipient, Recipient.id == BlockRecipient.recipient_id)
+                                           .where(BlockRecipient.block_id.in_(chunk))
+                                           .order_by(BlockRecipient.block_id, Recipient.id)):
+                by_block[bid].append(rc)
+        by_farm: dict[int, list] = defaultdict(list)
+        summary_farms = sorted({r.farm_id for r in rows if r.block_id is None})
+        if summary_farms:
+            for rc in session.scalars(select(Recipient).where(Recipient.farm_id.in_(summary_farms))
+                                      .order_by(Recipient.id)):
+                by_farm[rc.farm_id].append(rc)
+        for r in rows:
+            n = StoredNotice(r.id, r.key, r.farm_id, r.block_id,
+                             known[r.id] if r.id in known else contents[r.id])
+            recips = by_block[r.block_id] if r.block_id is not None else by_farm[r.farm_id]
+            out.append((n, list(recips)))
     return out
 
 
@@ -528,10 +1034,29 @@ def finished_run_keys(db, keys: Sequence[str]) -> set[str]:
         return out
 
 
+@contextlib.contextmanager
+def _batch_gc():
+    """Pause Python's cyclic garbage collector for the duration of a batch.
+
+    A run for thousands of blocks keeps hundreds of thousands of small objects
+    alive (assessments, curves, notices); every automatic collection of the
+    oldest generation walks all of them again, which costs a fifth of the run
+    and frees almost nothing.  Reference counting still frees memory as usual;
+    the collector is switched back on afterwards (unless it was off before).
+    """
+    was_enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was_enabled:
+            gc.enable()
+
+
 def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now: dt.datetime | None = None,
               update: bool = False, key: str | None = None, farm: str | None = None,
               names: Sequence[str] | None = None, deliver: bool = True, settings=None,
-              sleep=None) -> RunResult:
+              sleep=None, timings: StageTimes | None = None) -> RunResult:
     """The evening run (or an update) for a night.
 
     Parameters
@@ -554,26 +1079,40 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
     now = now or dt.datetime.now(dt.UTC)
     settings = settings or settings_mod.load(db.url)
     res = RunResult(kind="update" if update else "evening", night=night)
+    timings = timings if timings is not None else StageTimes()
+    known: dict[int, dict] = {}  # contents of the notices stored by this run (not read back for delivery)
     state = _start_run(db, key, res.kind, night, now)
     if state == "finished":
         res.skipped.append(f"run {key} already done")
         return res
-    if state == "new":
-        with db.transaction() as session:
-            blocks = _load_blocks(session, block_ids, farm, names)
-            res.assessments = assess_night(session, blocks, night, as_of=now if update else None, update=update)
-            stored, res.skipped = _store(session, res.assessments,
-                                         revision_mode="update" if update else "evening", now=now)
-            res.notices = [n.id for n, _ in stored]
-            farm_ids = sorted({b.farm_id for b in blocks})
-            _mark_run(session, key, "stored", now)
-    else:  # stored before a crash or a stop: only delivery is left
-        with db.transaction() as session:
-            farm_ids = sorted({b.farm_id for b in _load_blocks(session, block_ids, farm, names)})
-    if deliver:
-        # New notices, and any of this night's notices that a crash left undelivered.
-        res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids), settings, sleep=sleep)
+    with _batch_gc():
+        if state == "new":
+            with db.transaction() as session:
+                timings.lap("start")
+                blocks = _load_blocks(session, block_ids, farm, names, equipment=False)
+                timings.lap("load blocks")
+                res.assessments = assess_night(session, blocks, night, as_of=now if update else None, update=update,
+                                               timings=timings)
+                stored, res.skipped = _store(session, res.assessments,
+                                             revision_mode="update" if update else "evening", now=now,
+                                             timings=timings)
+                res.notices = [n.id for n, _ in stored]
+                known = {n.id: n.content for n, _ in stored}
+                farm_ids = sorted({b.farm_id for b in blocks})
+                _mark_run(session, key, "stored", now)
+            timings.lap("store")
+        else:  # stored before a crash or a stop: only delivery is left
+            with db.transaction() as session:
+                farm_ids = sorted({b.farm_id for b in _load_blocks(session, block_ids, farm, names,
+                                                                   equipment=False)})
+        if deliver:
+            # New notices, and any of this night's notices that a crash left undelivered.
+            res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids, known=known), settings,
+                                      sleep=sleep)
+            timings.lap("outbox delivery")
     _mark_run(db, key, "finished", now)
+    timings.lap("finish")
+    res.timings = dict(timings)
     return res
 
 

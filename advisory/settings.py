@@ -19,6 +19,20 @@ Environment variables
     Key for the HMAC signature on webhook deliveries.
 ``ADVISORY_OUTBOX``
     Folder where every notice is written as a file (default: ``<data folder>/outbox``).
+``ADVISORY_OUTBOX_FORMATS``
+    Comma-separated formats written to the outbox for each block notice, from
+    ``text``, ``markdown``, ``html``, ``json`` and ``sms`` (the short form of at
+    most 160 characters, as ``.sms.txt``); default ``text,markdown,html,json``
+    (settings file: ``[outbox] formats = [...]``).  Farm summaries always get
+    the four full formats.  For thousands of blocks a lean outbox such as
+    ``json,sms`` keeps the nightly run fast; what goes out by e-mail, webhook or
+    text message is not affected.
+``ADVISORY_OUTBOX_CHARTS``
+    When a block notice's chart (PNG, with the HTML page that shows it) is drawn
+    into the outbox: ``auto`` (default: when the notice is at "stand by" or
+    worse, or goes out by e-mail), ``email`` (only when it goes out by e-mail),
+    ``always`` or ``never`` (settings file: ``[outbox] charts = "..."``).  A chart
+    takes a few tenths of a second to draw; e-mails always carry theirs.
 """
 
 from __future__ import annotations
@@ -29,6 +43,13 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from advisory.errors import InputError
+
+#: Formats the outbox can hold for a notice (see :mod:`advisory.notices.render`).
+OUTBOX_FORMAT_CHOICES = ("text", "markdown", "html", "json", "sms")
+#: The outbox's formats unless set otherwise (every notice in full).
+OUTBOX_DEFAULT_FORMATS = ("text", "markdown", "html", "json")
+#: When charts go into the outbox (see ``ADVISORY_OUTBOX_CHARTS``).
+OUTBOX_CHART_CHOICES = ("auto", "email", "always", "never")
 
 
 def data_home() -> Path:
@@ -82,10 +103,38 @@ class Settings:
     outbox: Path
     smtp: SmtpSettings
     webhook_secret: str | None = field(default=None, repr=False)
+    #: Formats written to the outbox for each block notice (farm summaries: all).
+    outbox_formats: tuple[str, ...] = OUTBOX_DEFAULT_FORMATS
+    #: "auto", "email", "always" or "never": when a block notice's chart goes into the outbox.
+    outbox_charts: str = "auto"
 
 
 def _truthy(v) -> bool:
     return str(v).strip().lower() in {"1", "true", "yes", "on"}
+
+
+def _outbox_formats(env_value, file_value) -> tuple[str, ...]:
+    if env_value:
+        where, raw = "ADVISORY_OUTBOX_FORMATS", [v.strip() for v in str(env_value).split(",")]
+    elif file_value is not None:
+        where = "[outbox] formats"
+        raw = [v.strip() for v in (file_value.split(",") if isinstance(file_value, str) else file_value)]
+    else:
+        return OUTBOX_DEFAULT_FORMATS
+    formats = tuple(dict.fromkeys(v.lower() for v in raw if v))
+    bad = [v for v in formats if v not in OUTBOX_FORMAT_CHOICES]
+    if bad or not formats:
+        raise InputError(f"{where}: {', '.join(bad) or 'nothing'} is not an outbox format "
+                         f"(choose from {', '.join(OUTBOX_FORMAT_CHOICES)})", field=where)
+    return formats
+
+
+def _outbox_charts(env_value, file_value) -> str:
+    where = "ADVISORY_OUTBOX_CHARTS" if env_value else "[outbox] charts"
+    value = str(env_value or file_value or "auto").strip().lower()
+    if value not in OUTBOX_CHART_CHOICES:
+        raise InputError(f"{where}: {value!r} is not one of {', '.join(OUTBOX_CHART_CHOICES)}", field=where)
+    return value
 
 
 def load(db_url: str | None = None) -> Settings:
@@ -114,4 +163,6 @@ def load(db_url: str | None = None) -> Settings:
         outbox=Path(env.get("ADVISORY_OUTBOX") or f.get("outbox", {}).get("path") or home / "outbox"),
         smtp=smtp,
         webhook_secret=env.get("ADVISORY_WEBHOOK_SECRET") or f.get("webhook", {}).get("secret"),
+        outbox_formats=_outbox_formats(env.get("ADVISORY_OUTBOX_FORMATS"), f.get("outbox", {}).get("formats")),
+        outbox_charts=_outbox_charts(env.get("ADVISORY_OUTBOX_CHARTS"), f.get("outbox", {}).get("charts")),
     )
