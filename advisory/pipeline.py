@@ -18,6 +18,19 @@ twice:
 Updates through the night re-forecast from the latest observations; a new
 notice goes out only when the change is material (:data:`MATERIAL_START_SHIFT_MIN`,
 a level change, or the set of advised methods changing).
+
+Scale: a run reads what it needs with one query per table (blocks with their
+farm, station, recipients and equipment; previous revisions; the notices
+behind them; recent verifications), never one per block; forecasts and notices
+are written with bulk INSERT statements; the models run on whole arrays, with far
+apart time zones in separate passes so that no block is padded with another
+continent's night; the notices just stored are delivered from memory, not read
+back; Python's cyclic garbage collector is paused during the batch.  Each run
+reports the wall time of its stages in :attr:`RunResult.timings`;
+``benchmarks/bench_night.py`` measures a night of 10,000 blocks.  For such
+numbers of blocks a lean outbox (``ADVISORY_OUTBOX_FORMATS``,
+``ADVISORY_OUTBOX_CHARTS`` in :mod:`advisory.settings`) avoids drawing and
+writing every notice in every format.
 """
 
 from __future__ import annotations
@@ -199,17 +212,23 @@ def _latest_calibrations(session: Session, station_ids: Sequence[int], kind: str
 
 def _recent_verification(session: Session, block_ids: Sequence[int], before: dt.date
                          ) -> dict[int, list[dict]]:
+    """The latest :data:`VERIFICATION_SHOWN` verified nights of each block before ``before``, newest first.
+
+    Only those rows are read (a window function ranks each block's nights in the database), so
+    the cost does not grow with the season's history.
+    """
     out: dict[int, list[dict]] = defaultdict(list)
-    if not block_ids:
-        return out
-    rows = session.scalars(select(Verification)
-                           .where(Verification.block_id.in_(list(block_ids)), Verification.kind == "frost",
-                                  Verification.night < before)
-                           .order_by(Verification.night.desc()))
-    for v in rows:
-        if len(out[v.block_id]) < VERIFICATION_SHOWN:
-            out[v.block_id].append({"night": v.night.isoformat(), "forecast_c": v.forecast_c,
-                                    "observed_c": v.observed_c, "error_c": v.error_c})
+    for chunk in _chunked(block_ids):
+        rank = func.row_number().over(partition_by=Verification.block_id,
+                                      order_by=Verification.night.desc()).label("rank")
+        sub = (select(Verification.block_id, Verification.night, Verification.forecast_c, Verification.observed_c,
+                      Verification.error_c, rank)
+               .where(Verification.block_id.in_(chunk), Verification.kind == "frost", Verification.night < before)
+               .subquery())
+        for r in session.execute(select(sub).where(sub.c.rank <= VERIFICATION_SHOWN)
+                                 .order_by(sub.c.block_id, sub.c.rank)):
+            out[r.block_id].append({"night": r.night.isoformat(), "forecast_c": r.forecast_c,
+                                    "observed_c": r.observed_c, "error_c": r.error_c})
     return out
 
 
@@ -241,7 +260,7 @@ def _curves_on_grid(fc: NightForecast, states: pd.DataFrame, idx: np.ndarray, el
     start = ref.min().floor("15min")
     grid = pd.date_range(start, end.max().ceil("15min"), freq="15min").as_unit("ns")
     hours = (grid.asi8[:, None] - ref.asi8[None, :]) / 3.6e12          # (H, n)
-    sub_phys = _subset_physical(fc, idx)
+    sub_phys = fc.physical.subset(idx)
     tmin = fc.quantile(0.5)[idx]
     t_ref = fc.reference_temp_c[idx]
     from advisory.forecast.cooling import curve_fraction
@@ -258,17 +277,6 @@ def _curves_on_grid(fc: NightForecast, states: pd.DataFrame, idx: np.ndarray, el
         dew_point_c=np.minimum(dew[:, None], np.where(np.isfinite(temps), temps, dew[:, None])),
         wind_speed_ms=wind[:, None], sunrise_utc=fc.sunrise[idx],
         pressure_kpa=np.asarray(moisture.pressure_kpa_from_elevation(elevation_m[idx]), float))
-
-
-def _subset_physical(fc: NightForecast, idx: np.ndarray):
-    """The forecast's physical-night arrays for a subset of blocks."""
-    import copy
-
-    phys = copy.copy(fc.physical)
-    for name, value in vars(fc.physical).items():
-        if isinstance(value, np.ndarray) and value.shape[:1] == (len(fc),):
-            setattr(phys, name, value[idx])
-    return phys
 
 
 #: Blocks whose reference times lie within this span share one risk pass (one time grid) [h].
@@ -331,7 +339,6 @@ def _table_prob_below_sorted(q: np.ndarray, x: np.ndarray) -> np.ndarray:
     p = LEVELS[j - 1] + np.clip(f, 0.0, 1.0) * (LEVELS[j] - LEVELS[j - 1])
     p = np.where(below == 0, 0.0, np.where(below >= k, 1.0, p))
     return np.where(np.isfinite(x), p, np.nan)
-
 
 
 def _critical(b: Block, cache: dict | None):
@@ -563,11 +570,19 @@ def _chunked(values: Sequence, size: int = _IN_CHUNK):
         yield values[k:k + size]
 
 
-def _previous_revisions(session: Session, night: dt.date, kind: str) -> dict[int, int]:
-    """Latest stored forecast revision of every block for a night (one query)."""
-    return dict(session.execute(select(Forecast.block_id, func.max(Forecast.revision))
-                                .where(Forecast.kind == kind, Forecast.night == night)
-                                .group_by(Forecast.block_id)).all())
+def _previous_revisions(session: Session, block_ids: Sequence[int], night: dt.date, kind: str) -> dict[int, int]:
+    """Latest stored forecast revision of each block for a night (blocks without one are absent).
+
+    One query per :data:`_IN_CHUNK` blocks, answered from the unique index on
+    (block, kind, night, revision).
+    """
+    out: dict[int, int] = {}
+    for chunk in _chunked(sorted(set(block_ids))):
+        out.update(session.execute(select(Forecast.block_id, func.max(Forecast.revision))
+                                   .where(Forecast.block_id.in_(chunk), Forecast.kind == kind,
+                                          Forecast.night == night)
+                                   .group_by(Forecast.block_id)).all())
+    return out
 
 
 def _last_noticed_many(session: Session, block_ids: Sequence[int], night: dt.date, kind: str
@@ -705,7 +720,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
            ) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
     """Store forecasts and notices; returns (notices to deliver, skipped messages).
 
-    The rows are written with a few bulk ``INSERT``\\ s (the database hands back
+    The rows are written with a few bulk INSERT statements (the database hands back
     the new ids in order); what was stored before is read with one query per
     table, not one per block.
 
@@ -726,10 +741,12 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         return [], skipped
     kinds = {a.kind for a in assessments}
     nights = {a.night for a in assessments}
-    prev: dict[int, int] = {}
+    prev: dict[tuple, int] = {}
     for kind in kinds:
         for night in nights:
-            prev.update({(bid, kind, night): rev for bid, rev in _previous_revisions(session, night, kind).items()})
+            ids = [a.block_id for a in assessments if a.kind == kind and a.night == night]
+            prev.update({(bid, kind, night): rev
+                         for bid, rev in _previous_revisions(session, ids, night, kind).items()})
     todo: list[asm.Assessment] = []
     for a in assessments:
         p = prev.get((a.block_id, a.kind, a.night))
@@ -751,7 +768,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
                                 for bid, v in _last_noticed_many(session, ids, night, kind).items()})
     blocks = {a.block_id: session.get(Block, a.block_id) for a in todo}
     payloads = []
-    composed: list[tuple[asm.Assessment, compose.BlockNotice] | None] = []
+    composed: list[tuple[str, str, dict] | None] = []  # (key, subject, content) of each block's notice
     for a in todo:
         payload = assessment_payload(a)
         previous_noticed = noticed.get((a.block_id, a.kind, a.night)) if a.is_update else None
@@ -763,7 +780,8 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
                 a.details = {**a.details, "update_reasons": why}
                 payload = {**payload, "details": {**(payload.get("details") or {}), "update_reasons": list(why)}}
         if not a.is_update or why:
-            notice = compose.compose_block(a, previous_noticed, data=payload)
+            n = compose.compose_block(a, previous_noticed, data=payload)
+            notice = (n.key, n.subject, n.to_dict())
         payloads.append(payload)
         composed.append(notice)
     _lap(timings, "compose")
@@ -781,10 +799,10 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         if notice is None:
             continue
         block = blocks[a.block_id]
-        rows.append({"key": notice.key,
-                     "farm_id": block.farm_id, "block_id": a.block_id, "forecast_id": fid, "kind": a.kind,
-                     "night": a.night, "revision": a.revision, "is_update": a.is_update, "level": a.level,
-                     "subject": notice.subject, "created_at": now, "content": notice.to_dict()})
+        key, subject, content = notice
+        rows.append({"key": key, "farm_id": block.farm_id, "block_id": a.block_id, "forecast_id": fid,
+                     "kind": a.kind, "night": a.night, "revision": a.revision, "is_update": a.is_update,
+                     "level": a.level, "subject": subject, "created_at": now, "content": content})
         by_farm[block.farm_id].append((a, block))
         sent.append(list(block.recipients))
     _lap(timings, "store")
@@ -870,12 +888,14 @@ def _outbox_plan(batch: list[tuple[Notice, list]], settings, wanted: set[str]) -
             summaries.append((n, recips))
             continue
         mailed = by_mail and any((r.channels or {}).get("email") for r in recips)
-        draw = charts == "always" or (charts in ("email", "auto") and mailed)
+        content = n.content or {}
+        serious = content.get("status") == "ok" and (content.get("level_rank") or 0) >= 2
+        draw = charts == "always" or (charts in ("email", "auto") and mailed) or (charts == "auto" and serious)
         (charted if draw else plain).append((n, recips))
     with_html = formats + (() if "html" in formats else ("html",))
     parts = [(summaries, {"outbox_formats": full, "outbox_chart": "auto"}),
              (charted, {"outbox_formats": with_html, "outbox_chart": True}),
-             (plain, {"outbox_formats": formats, "outbox_chart": "auto" if charts == "auto" else False})]
+             (plain, {"outbox_formats": formats, "outbox_chart": False})]
     return [(part, kw) for part, kw in parts if part]
 
 
@@ -1124,10 +1144,11 @@ def record_missed(db, night: dt.date, block_ids: Sequence[int], *, key: str, run
     if _start_run(db, key, "missed", night, now) == "finished":
         return res
     with db.transaction() as session:
-        blocks = _load_blocks(session, block_ids)
+        blocks = _load_blocks(session, block_ids, equipment=False)
         out = []
+        crit: dict = {}
         for b in blocks:
-            a = _base_assessment(b, night)
+            a = _base_assessment(b, night, critical=crit)
             a.status = asm.STATUS_MISSED
             local = run_at.astimezone(pd.Timestamp(run_at).tz_convert(b.farm.timezone).tzinfo)
             a.reason = (f"the evening run due at {local:%H:%M %Z} was missed (the scheduler was not running "
@@ -1137,10 +1158,11 @@ def record_missed(db, night: dt.date, block_ids: Sequence[int], *, key: str, run
             out.append(a)
         stored, res.skipped = _store(session, out, revision_mode="missed", now=now)
         res.notices = [n.id for n, _ in stored]
+        known = {n.id: n.content for n, _ in stored}
         farm_ids = sorted({b.farm_id for b in blocks})
         res.assessments = out
         _mark_run(session, key, "stored", now)
-    res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids), settings)
+    res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids, known=known), settings)
     _mark_run(db, key, "finished", now)
     return res
 
@@ -1239,32 +1261,21 @@ def refit_calibrations(session: Session, station_ids: Sequence[int], now: dt.dat
             continue
         cal = calib.fit_calibration(history)
         session.add(Calibration(station_id=sid, kind="night_min", fitted_at=now,
-                                training_nights=int(cal.to_dict().get("n_nights", len(history))),
+                                training_nights=int(cal.training_nights),
                                 params=cal.to_dict()))
         out[sid] = len(history)
     return out
 
 
 def night_history(frame: pd.DataFrame, lat: float, lon: float, tz: str, now: dt.datetime) -> pd.DataFrame:
-    """Evening states and observed minima of every complete past night in ``frame``."""
-    first = sun.night_of(frame.index.min(), tz)
-    last = sun.night_of(pd.Timestamp(now) - pd.Timedelta(hours=12), tz)
-    nights = pd.date_range(first, last, freq="D").date
-    if len(nights) == 0:
-        return pd.DataFrame()
-    table = sun.sun_times_batch(lat, lon, nights, tz).assign(night=nights)
-    table = table[table["status"] == sun.NORMAL].reset_index(drop=True)
-    states = evening_states(frame, table)
-    ok = states["status"].to_numpy(dtype=object) == "ok"
-    mins = np.full(len(states), np.nan)
-    s = frame["air_temp_c"].dropna()
-    for i in np.flatnonzero(ok):
-        v = observed_minimum(s.to_frame(), states["reference_time"].iat[i],
-                             states["sunrise"].iat[i] + pd.Timedelta(hours=1))
-        if v is not None and states["sunrise"].iat[i] + pd.Timedelta(hours=1) <= pd.Timestamp(now):
-            mins[i] = v
-    states["observed_min_c"] = mins
-    return states[ok & np.isfinite(mins)].reset_index(drop=True)
+    """Evening states and observed minima of every complete past night in ``frame``.
+
+    Exactly the hindcast's definition (:func:`advisory.forecast.hindcast.verified_nights`): nights whose
+    window is broken or not yet closed at ``now`` are left out.
+    """
+    from advisory.forecast.hindcast import verified_nights
+
+    return verified_nights(frame, lat, lon, tz, until=now)
 
 
 def run_planned(db, kind: str, night: dt.date, block_ids: list[int], *, run_at: dt.datetime, key: str) -> None:

@@ -1,0 +1,113 @@
+"""The pipeline's bulk paths give the same results as the plain ones; the outbox settings."""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from advisory import assessment as asm
+from advisory import pipeline
+from advisory import settings as settings_mod
+from advisory.errors import InputError
+from advisory.forecast.result import LEVELS, table_prob_below
+
+NIGHT = dt.date(2026, 4, 8)      # a radiation-frost night of the demo week
+NOW = dt.datetime(2026, 4, 9, 5, 0, tzinfo=dt.UTC)
+
+
+def test_fast_payload_equals_to_dict(spring_db):
+    res = pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False)
+    odd = dataclasses.replace(res.assessments[0], details={
+        "np_nan": np.float64("nan"), "nan": float("nan"), "n": np.int64(3), "pair": (1, 2.5),
+        "day": dt.date(2026, 1, 2), "when": dt.datetime(2026, 1, 2, 3, tzinfo=dt.timezone(dt.timedelta(hours=2))),
+        "nested": [{"x": float("inf")}, None, True]})
+    for a in [*res.assessments, odd]:
+        # compared as JSON text: NaN != NaN as Python values
+        assert json.dumps(pipeline.assessment_payload(a), sort_keys=True) == json.dumps(asm.to_dict(a), sort_keys=True)
+
+
+def test_cdf_equals_column_by_column_table_lookup():
+    rng = np.random.default_rng(3)
+    n, k = 40, len(LEVELS)
+    q = np.sort(rng.normal(0, 2, (n, k)), axis=1)
+    q[5, 10:20] = q[5, 10]                      # ties inside a table
+    x = rng.normal(0, 4, (n, 31))
+    x[:, 0] = q[:, 0] - 1                       # below the table
+    x[:, 1] = q[:, -1] + 1                      # above it
+    x[:, 2] = q[:, 10]                          # exactly on a level
+    x[3, 4] = np.nan
+    fc = type("F", (), {"quantiles_c": q})()
+    got = pipeline._cdf(fc, np.arange(n))(x)
+    want = np.stack([table_prob_below(q, x[:, j]) for j in range(x.shape[1])], axis=1)
+    np.testing.assert_array_equal(got, want)
+
+
+def test_night_groups_split_far_apart_reference_times():
+    ref = pd.DatetimeIndex(["2026-04-08 09:00", "2026-04-09 03:00", "2026-04-08 10:30", "2026-04-09 05:00",
+                            "2026-04-09 08:30"], tz="UTC")
+    fc = type("F", (), {"reference_time": ref})()
+    groups = pipeline._night_groups(fc, np.arange(5), span_h=4.0)
+    assert [g.tolist() for g in groups] == [[0, 2], [1, 3], [4]]
+
+
+def test_lean_outbox_setting(spring_db, quiet_channels, monkeypatch):
+    monkeypatch.setenv("ADVISORY_OUTBOX_FORMATS", "json, sms")
+    monkeypatch.setenv("ADVISORY_OUTBOX_CHARTS", "never")
+    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    assert res.deliveries["outbox sent"] == 7
+    files = [p.name for p in quiet_channels.rglob("*") if p.is_file()]
+
+    def endings(names):  # file endings, leaving out the text messages queued per recipient (name.sms.txt)
+        return {f.split(".", 1)[1] for f in names if f.split(".", 1)[1].count(".") <= 1}
+
+    # farm summary: every format and the run sheet; blocks: JSON and the short text only
+    assert endings(f for f in files if "_farm-summary_" in f) == {"txt", "md", "html", "json", "runsheet.csv"}
+    assert endings(f for f in files if "_farm-summary_" not in f) == {"json", "sms.txt"}
+    assert not [f for f in files if f.endswith(".png")]
+
+
+def test_outbox_settings_are_checked(monkeypatch, tmp_path):
+    monkeypatch.setenv("ADVISORY_HOME", str(tmp_path))
+    monkeypatch.delenv("ADVISORY_SETTINGS", raising=False)
+    monkeypatch.delenv("ADVISORY_OUTBOX_CHARTS", raising=False)
+    monkeypatch.delenv("ADVISORY_OUTBOX_FORMATS", raising=False)
+    s = settings_mod.load("sqlite://")
+    assert s.outbox_formats == ("text", "markdown", "html", "json") and s.outbox_charts == "auto"
+    monkeypatch.setenv("ADVISORY_OUTBOX_FORMATS", "json,pdf")
+    with pytest.raises(InputError, match="pdf"):
+        settings_mod.load("sqlite://")
+    monkeypatch.setenv("ADVISORY_OUTBOX_FORMATS", "JSON,text,json")
+    assert settings_mod.load("sqlite://").outbox_formats == ("json", "text")
+    monkeypatch.setenv("ADVISORY_OUTBOX_CHARTS", "sometimes")
+    with pytest.raises(InputError, match="sometimes"):
+        settings_mod.load("sqlite://")
+    monkeypatch.delenv("ADVISORY_OUTBOX_CHARTS")
+    monkeypatch.delenv("ADVISORY_OUTBOX_FORMATS")
+    (tmp_path / "settings.toml").write_text('[outbox]\nformats = ["json", "sms"]\ncharts = "email"\n')
+    s = settings_mod.load("sqlite://")
+    assert s.outbox_formats == ("json", "sms") and s.outbox_charts == "email"
+
+
+def test_crash_before_delivery_is_delivered_by_the_next_run(spring_db, quiet_channels):
+    # stored but not delivered (as if the process died between the two transactions)
+    first = pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False)
+    assert first.notices and not first.deliveries
+    again = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    assert again.notices == [] and again.deliveries["outbox sent"] == len(first.notices)
+    assert pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None).deliveries == {}
+
+
+def test_email_chart_setting_draws_charts_for_mailed_notices(spring_db, quiet_channels, monkeypatch):
+    monkeypatch.setenv("ADVISORY_OUTBOX_FORMATS", "json")
+    monkeypatch.setenv("ADVISORY_OUTBOX_CHARTS", "email")
+    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    blocks = [p.name for p in quiet_channels.rglob("*") if p.is_file() and "_farm-summary_" not in p.name
+              and p.name.split(".", 1)[1].count(".") == 0]
+    # every demo block has a recipient with an e-mail address: its chart and the page showing it are kept
+    assert {f.split(".", 1)[1] for f in blocks} == {"json", "html", "png"}
+    assert len(blocks) == 3 * 6
