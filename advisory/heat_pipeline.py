@@ -1025,16 +1025,9 @@ def run_heat(db, day: dt.date, block_ids: Sequence[int] | None = None, *, now: d
 
 
 def _today(db, farm: str | None, now: dt.datetime | None = None) -> dt.date:
-    now = now or dt.datetime.now(dt.UTC)
-    with db.transaction() as s:
-        q = select(Farm.timezone).order_by(Farm.name)
-        if farm:
-            q = q.where(Farm.name == farm)
-        tz = s.scalar(q)
-    if tz is None:
-        raise InputError("no farm imported yet (use `advisory farm import FARM.toml`)" if not farm
-                         else f"no farm named '{farm}'", field="--farm")
-    return now.astimezone(ZoneInfo(tz)).date()
+    from advisory.reports import farm_zone
+
+    return (now or dt.datetime.now(dt.UTC)).astimezone(ZoneInfo(farm_zone(db, farm))).date()
 
 
 def heat_run_text(db, day: dt.date | None = None, *, farm: str | None = None, names: list[str] | None = None,

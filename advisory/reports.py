@@ -22,9 +22,8 @@ from advisory.store import queries
 from advisory.store.schema import Block, Farm, Forecast, Notice, Verification
 
 
-def _default_night(db, farm: str | None, now: dt.datetime | None = None) -> dt.date:
-    """Tonight (or, before noon, last night) in the zone of the first selected farm."""
-    now = now or dt.datetime.now(dt.UTC)
+def farm_zone(db, farm: str | None) -> str:
+    """The IANA zone of the named farm (or of the first farm)."""
     with db.transaction() as s:
         q = select(Farm.timezone).order_by(Farm.name)
         if farm:
@@ -33,7 +32,12 @@ def _default_night(db, farm: str | None, now: dt.datetime | None = None) -> dt.d
     if tz is None:
         raise InputError("no farm imported yet (use `advisory farm import FARM.toml`)" if not farm
                          else f"no farm named '{farm}'", field="--farm")
-    return sun.night_of(now, tz)
+    return tz
+
+
+def _default_night(db, farm: str | None, now: dt.datetime | None = None) -> dt.date:
+    """Tonight (or, before noon, last night) in the zone of the first selected farm."""
+    return sun.night_of(now or dt.datetime.now(dt.UTC), farm_zone(db, farm))
 
 
 def block_ids_for(db, farm: str | None, names: list[str] | None) -> list[int] | None:

@@ -2,20 +2,9 @@
 
 from __future__ import annotations
 
-import datetime as dt
-
 from advisory import heat_pipeline
-from advisory.errors import InputError
+from advisory.commands.night import _date
 from advisory.store.db import Database
-
-
-def _date(text: str | None, field: str = "--date") -> dt.date | None:
-    if text is None:
-        return None
-    try:
-        return dt.date.fromisoformat(text)
-    except ValueError:
-        raise InputError(f"'{text}' is not a date like 2026-07-15", field=field) from None
 
 
 def register(sub) -> None:
