@@ -280,7 +280,7 @@ def _curves_on_grid(fc: NightForecast, states: pd.DataFrame, idx: np.ndarray, el
 
 
 #: Blocks whose reference times lie within this span share one risk pass (one time grid) [h].
-GROUP_SPAN_H = 4.0
+GROUP_SPAN_H = 1.0
 
 
 def _night_groups(fc: NightForecast, idx: np.ndarray, span_h: float | None = None) -> list[np.ndarray]:
@@ -1056,13 +1056,15 @@ def finished_run_keys(db, keys: Sequence[str]) -> set[str]:
 
 @contextlib.contextmanager
 def _batch_gc():
-    """Pause Python's cyclic garbage collector for the duration of a batch.
+    """Pause Python's cyclic garbage collector while a batch is computed and stored.
 
     A run for thousands of blocks keeps hundreds of thousands of small objects
     alive (assessments, curves, notices); every automatic collection of the
-    oldest generation walks all of them again, which costs a fifth of the run
-    and frees almost nothing.  Reference counting still frees memory as usual;
-    the collector is switched back on afterwards (unless it was off before).
+    oldest generation walks all of them again, which costs a fifth of the
+    computation and frees almost nothing.  Reference counting still frees
+    memory as usual; the collector is switched back on afterwards (unless it
+    was off before).  Not for the delivery: drawing charts leaves reference
+    cycles that only the collector frees.
     """
     was_enabled = gc.isenabled()
     gc.disable()
@@ -1071,6 +1073,23 @@ def _batch_gc():
     finally:
         if was_enabled:
             gc.enable()
+
+
+@contextlib.contextmanager
+def _frozen_heap():
+    """Let the cyclic garbage collector see only the objects made from now on.
+
+    For the delivery: the run's assessments and notices stay alive through it
+    and need not be walked again and again, while the cycles that drawing
+    charts leaves behind are still collected.  (:func:`gc.freeze` moves every
+    object alive now out of the collector's sight; :func:`gc.unfreeze` puts them
+    back afterwards.)
+    """
+    gc.freeze()
+    try:
+        yield
+    finally:
+        gc.unfreeze()
 
 
 def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now: dt.datetime | None = None,
@@ -1105,31 +1124,30 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
     if state == "finished":
         res.skipped.append(f"run {key} already done")
         return res
-    with _batch_gc():
-        if state == "new":
-            with db.transaction() as session:
-                timings.lap("start")
-                blocks = _load_blocks(session, block_ids, farm, names, equipment=False)
-                timings.lap("load blocks")
-                res.assessments = assess_night(session, blocks, night, as_of=now if update else None, update=update,
-                                               timings=timings)
-                stored, res.skipped = _store(session, res.assessments,
-                                             revision_mode="update" if update else "evening", now=now,
-                                             timings=timings)
-                res.notices = [n.id for n, _ in stored]
-                known = {n.id: n.content for n, _ in stored}
-                farm_ids = sorted({b.farm_id for b in blocks})
-                _mark_run(session, key, "stored", now)
-            timings.lap("store")
-        else:  # stored before a crash or a stop: only delivery is left
-            with db.transaction() as session:
-                farm_ids = sorted({b.farm_id for b in _load_blocks(session, block_ids, farm, names,
-                                                                   equipment=False)})
-        if deliver:
-            # New notices, and any of this night's notices that a crash left undelivered.
+    if state == "new":
+        with _batch_gc(), db.transaction() as session:
+            timings.lap("start")
+            blocks = _load_blocks(session, block_ids, farm, names, equipment=False)
+            timings.lap("load blocks")
+            res.assessments = assess_night(session, blocks, night, as_of=now if update else None, update=update,
+                                           timings=timings)
+            stored, res.skipped = _store(session, res.assessments,
+                                         revision_mode="update" if update else "evening", now=now,
+                                         timings=timings)
+            res.notices = [n.id for n, _ in stored]
+            known = {n.id: n.content for n, _ in stored}
+            farm_ids = sorted({b.farm_id for b in blocks})
+            _mark_run(session, key, "stored", now)
+        timings.lap("store")
+    else:  # stored before a crash or a stop: only delivery is left
+        with db.transaction() as session:
+            farm_ids = sorted({b.farm_id for b in _load_blocks(session, block_ids, farm, names, equipment=False)})
+    if deliver:
+        # New notices, and any of this night's notices that a crash left undelivered.
+        with _frozen_heap():
             res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids, known=known), settings,
                                       sleep=sleep)
-            timings.lap("outbox delivery")
+        timings.lap("outbox delivery")
     _mark_run(db, key, "finished", now)
     timings.lap("finish")
     res.timings = dict(timings)
