@@ -43,6 +43,7 @@ import time
 from collections import defaultdict
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -59,6 +60,7 @@ from advisory.ingest.observations import load_observations_many
 from advisory.notices import compose
 from advisory.physics import moisture, sun
 from advisory.risk import frost
+from advisory.store import jsoncodec
 from advisory.store.schema import (
     Block,
     Calibration,
@@ -639,64 +641,12 @@ def material_change(new: asm.Assessment, old: asm.Assessment | None) -> list[str
     return why
 
 
-# The same JSON-able form as :func:`advisory.assessment.to_dict`, several times faster: the
-# encoder of each value type is looked up once per type, not found by a chain of tests per value;
-# plain values are passed inline, and the ISO form of recurring instants is remembered.
-_ENCODERS: dict[type, Callable] = {}
-_PLAIN = frozenset({str, int, bool, type(None)})
-_ISO: dict[dt.datetime, str] = {}
-
-
-def _encode_fast(value):
-    enc = _ENCODERS.get(type(value))
-    if enc is None:
-        enc = _ENCODERS[type(value)] = _encoder_for(type(value))
-    return enc(value)
-
-
-def _identity(value):
-    return value
-
-
-def _iso_utc(v: dt.datetime) -> str:
-    s = _ISO.get(v)
-    if s is None:
-        if len(_ISO) > 50_000:
-            _ISO.clear()
-        s = _ISO[v] = v.astimezone(dt.UTC).isoformat()
-    return s
-
-
-def _encoder_for(t: type) -> Callable:
-    """The encoder of values of type ``t``; mirrors the order of tests in ``advisory.assessment._encode``."""
-    import dataclasses
-
-    plain = _PLAIN
-    enc = _encode_fast
-    if issubclass(t, dt.datetime):
-        return _iso_utc if t is dt.datetime else (lambda v: v.astimezone(dt.UTC).isoformat())
-    if issubclass(t, dt.date):
-        return lambda v: v.isoformat()
-    if dataclasses.is_dataclass(t):
-        names = tuple(f.name for f in dataclasses.fields(t))
-        return lambda v: {n: (x if (tx := type(x := getattr(v, n))) in plain
-                              else ((None if x != x else x) if tx is float else enc(x))) for n in names}
-    if issubclass(t, dict):
-        return lambda v: {k: (x if (tx := type(x)) in plain
-                              else ((None if x != x else x) if tx is float else enc(x))) for k, x in v.items()}
-    if issubclass(t, list | tuple):
-        return lambda v: [(x if (tx := type(x)) in plain
-                           else ((None if x != x else x) if tx is float else enc(x))) for x in v]
-    if hasattr(t, "item"):  # numpy scalar
-        return lambda v: v.item()
-    if issubclass(t, float):
-        return lambda v: None if v != v else v
-    return _identity
-
-
 def assessment_payload(a: asm.Assessment) -> dict:
-    """``advisory.assessment.to_dict(a)`` (the stored forecast payload), computed faster."""
-    return _encode_fast(a)
+    """``advisory.assessment.to_dict(a)`` (the stored forecast payload), computed faster.
+
+    Infinities become ``None`` (JSON has none); see :mod:`advisory.store.jsoncodec`.
+    """
+    return jsoncodec.plain(a)
 
 
 @dataclass(frozen=True)
@@ -711,8 +661,10 @@ class StoredNotice:
     key: str
     farm_id: int
     block_id: int | None
-    #: ``Notice.content`` as stored (the composed notice as plain data).
-    content: dict = field(repr=False, default_factory=dict)
+    #: The composed notice (:class:`~advisory.notices.compose.BlockNotice` or
+    #: :class:`~advisory.notices.compose.FarmSummary`) when the run that stored it
+    #: still has it, else ``Notice.content`` as stored (plain data).
+    content: Any = field(repr=False, default_factory=dict)
 
 
 def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
@@ -781,7 +733,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
                 payload = {**payload, "details": {**(payload.get("details") or {}), "update_reasons": list(why)}}
         if not a.is_update or why:
             n = compose.compose_block(a, previous_noticed, data=payload)
-            notice = (n.key, n.subject, n.to_dict())
+            notice = (n.key, n.subject, n)  # stored as JSON straight from the object
         payloads.append(payload)
         composed.append(notice)
     _lap(timings, "compose")
@@ -793,9 +745,9 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         for a, payload in zip(todo, payloads, strict=True)])
     rows, sent = [], []
     by_farm: dict[int, list[tuple[asm.Assessment, Block]]] = defaultdict(list)
-    batch_payloads: dict[int, dict] = {}
-    for a, payload, notice, fid in zip(todo, payloads, composed, forecast_ids, strict=True):
-        batch_payloads[fid] = payload
+    batch_assessments: dict[int, asm.Assessment] = {}  # this run's, by forecast id
+    for a, notice, fid in zip(todo, composed, forecast_ids, strict=True):
+        batch_assessments[fid] = a
         if notice is None:
             continue
         block = blocks[a.block_id]
@@ -814,7 +766,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         revision = max(a.revision for a in farm_assessments)
         if revision_mode in ("evening", "heat"):
             # the summary gathers every block of the farm assessed for this night, not only this batch
-            farm_assessments = _farm_payloads(session, farm_id, a0.night, a0.kind, batch_payloads) \
+            farm_assessments = _farm_payloads(session, farm_id, a0.night, a0.kind, batch_assessments) \
                 or farm_assessments
         key = compose.notice_key(a0.kind + "-summary", a0.farm, None, a0.night, revision) + f":{_batch_tag(items)}"
         if session.scalar(select(Notice.id).where(Notice.key == key)) is not None:
@@ -824,7 +776,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         rows.append({"key": key, "farm_id": farm_id, "block_id": None, "forecast_id": None,
                      "kind": a0.kind + "-summary", "night": a0.night, "revision": revision,
                      "is_update": revision > 0, "level": summary.level, "subject": summary.subject,
-                     "created_at": now, "content": summary.to_dict()})
+                     "created_at": now, "content": summary})
         summaries.append(list(recips.values()))
     _lap(timings, "compose")
     notice_ids = _insert_returning_ids(session, Notice, rows)
@@ -848,12 +800,12 @@ def _batch_tag(items) -> str:
     return "-".join(str(b.id) for _, b in sorted(items, key=lambda x: x[1].id))[:120]
 
 
-def _farm_payloads(session: Session, farm_id: int, night: dt.date, kind: str, known: dict[int, dict]
-                   ) -> list[dict]:
-    """Payloads of every active block's revision-0 forecast of the farm for the night.
+def _farm_payloads(session: Session, farm_id: int, night: dt.date, kind: str,
+                   known: Mapping[int, asm.Assessment | dict]) -> list[asm.Assessment | dict]:
+    """Every active block's revision-0 forecast of the farm for the night (assessment or payload).
 
-    ``known`` maps forecast ids to payloads already at hand (this run's), which
-    are not read back from the database.
+    ``known`` maps forecast ids to this run's assessments, which are used as they
+    are, not read back from the database.
     """
     ids = list(session.scalars(select(Forecast.id).join(Block).where(
         Block.farm_id == farm_id, Forecast.night == night, Forecast.kind == kind, Forecast.revision == 0,
@@ -889,7 +841,11 @@ def _outbox_plan(batch: list[tuple[Notice, list]], settings, wanted: set[str]) -
             continue
         mailed = by_mail and any((r.channels or {}).get("email") for r in recips)
         content = n.content or {}
-        serious = content.get("status") == "ok" and (content.get("level_rank") or 0) >= 2
+        if isinstance(content, dict):
+            status, rank = content.get("status"), content.get("level_rank")
+        else:
+            status, rank = getattr(content, "status", None), getattr(content, "level_rank", None)
+        serious = status == "ok" and (rank or 0) >= 2
         draw = charts == "always" or (charts in ("email", "auto") and mailed) or (charts == "auto" and serious)
         (charted if draw else plain).append((n, recips))
     with_html = formats + (() if "html" in formats else ("html",))

@@ -1116,7 +1116,14 @@ def _one_line(text):
     return " ".join("".join(ch if ch.isprintable() else " " for ch in str(text)).split())
 
 
+_NAME_FIELDS = ("farm", "block", "station", "variety", "stage", "crop")
+
+
 def _clean_names(a: Assessment) -> Assessment:
+    """``a`` with its names on one line (a copy only when a name needs it)."""
+    if all((v := getattr(a, k)) is None or (v.isprintable() and "  " not in v and v == v.strip())
+           for k in _NAME_FIELDS):
+        return a
     return dataclasses.replace(a, farm=_one_line(a.farm), block=_one_line(a.block), station=_one_line(a.station),
                                variety=_one_line(a.variety), stage=_one_line(a.stage), crop=_one_line(a.crop))
 

@@ -20,12 +20,11 @@ Formats
     ``data:`` URI for a browser) to show the chart.
 ``json``
     The whole notice as data (words and numbers), for other systems; one
-    compact line (the C encoder, several times faster than an indented dump).
+    compact line (:mod:`advisory.store.jsoncodec`, the form stored in the database).
 """
 
 from __future__ import annotations
 
-import json
 import re
 from pathlib import Path
 from typing import Any
@@ -35,6 +34,7 @@ import jinja2
 from advisory.errors import InputError
 from advisory.notices import words as w
 from advisory.notices.compose import BlockNotice, FarmSummary, notice_from_dict
+from advisory.store import jsoncodec
 
 FORMATS = ("sms", "text", "markdown", "html", "json")
 #: File-name endings of each format in the outbox.
@@ -165,7 +165,7 @@ def render(notice: BlockNotice | FarmSummary | dict, fmt: str, *, chart_src: str
     if fmt == "sms":
         return n.sms
     if fmt == "json":
-        return json.dumps(n.to_dict(), ensure_ascii=False, separators=(",", ":")) + "\n"
+        return jsoncodec.dumps(n) + "\n"
     kind = "farm" if isinstance(n, FarmSummary) else "block"
     ext = {"text": "txt", "markdown": "md", "html": "html"}[fmt]
     tpl = environment().get_template(f"{kind}.{ext}.j2")

@@ -16,6 +16,7 @@ from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
 from advisory.errors import InputError, SchemaVersionError
+from advisory.store import jsoncodec
 
 #: Top-level Alembic folder (the package is installed in editable mode from the checkout).
 MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
@@ -39,10 +40,12 @@ def make_engine(url: str) -> Engine:
     if u.get_backend_name() == "sqlite":
         if u.database and u.database != ":memory:":
             Path(u.database).expanduser().parent.mkdir(parents=True, exist_ok=True)
-        engine = create_engine(u, connect_args={"timeout": 30})
+        engine = create_engine(u, connect_args={"timeout": 30}, json_serializer=jsoncodec.dumps,
+                               json_deserializer=jsoncodec.loads)
         event.listen(engine, "connect", _sqlite_pragmas)
         return engine
-    return create_engine(u, pool_pre_ping=True)
+    return create_engine(u, pool_pre_ping=True, json_serializer=jsoncodec.dumps,
+                         json_deserializer=jsoncodec.loads)
 
 
 def alembic_config(url: str, engine: Engine | None = None):

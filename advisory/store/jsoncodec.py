@@ -1,0 +1,69 @@
+"""JSON for stored payloads and notices: one fast encoder used by the database and the outbox.
+
+The stored forms are those of :func:`advisory.assessment.to_dict`: dataclasses
+as objects (fields in declaration order), instants as ISO 8601 in UTC, dates as
+``YYYY-MM-DD``, NaN as ``null``.  :mod:`orjson` writes them directly from the
+objects (dataclasses, ``datetime``, numpy scalars), so a run for thousands of
+blocks does not first copy every assessment and notice into plain dicts and
+then walk the copies again in the standard library's encoder.
+
+Infinities are written as ``null`` (JSON has no infinity).  Anything orjson does not know (``pandas.Timestamp``, numpy types it does not
+cover, sets) goes through :func:`_fallback`, which gives the same form as
+:func:`advisory.assessment.to_dict`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+from typing import Any
+
+import orjson
+
+#: Instants are handed to :func:`_fallback` (orjson would keep their own UTC offset).
+_OPTIONS = orjson.OPT_NON_STR_KEYS | orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_PASSTHROUGH_DATETIME
+_ISO: dict[dt.datetime, str] = {}
+
+
+def _fallback(value: Any):
+    if isinstance(value, dt.datetime):  # also pandas.Timestamp
+        s = _ISO.get(value)
+        if s is None:
+            if len(_ISO) > 50_000:
+                _ISO.clear()
+            s = _ISO[value] = value.astimezone(dt.UTC).isoformat()
+        return s
+    if isinstance(value, dt.date):
+        return value.isoformat()
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        return {f.name: getattr(value, f.name) for f in dataclasses.fields(value)}
+    if hasattr(value, "item"):  # numpy scalar
+        return value.item()
+    if isinstance(value, set | frozenset):
+        return sorted(value)
+    raise TypeError(f"cannot store a value of type {type(value).__name__} as JSON")
+
+
+def dumps_bytes(value: Any) -> bytes:
+    """``value`` as compact UTF-8 JSON bytes (see the module text for the forms)."""
+    return orjson.dumps(value, default=_fallback, option=_OPTIONS)
+
+
+def dumps(value: Any) -> str:
+    """``value`` as compact JSON text (the database's JSON serializer)."""
+    return orjson.dumps(value, default=_fallback, option=_OPTIONS).decode("utf-8")
+
+
+def loads(text: str | bytes) -> Any:
+    """Parse JSON text (the database's JSON deserializer)."""
+    return orjson.loads(text)
+
+
+def plain(value: Any) -> Any:
+    """The plain (JSON-able) form of ``value``: dicts, lists, strings, numbers, ``None``.
+
+    The same result as :func:`advisory.assessment.to_dict` for an assessment,
+    made by encoding and parsing again (several times faster than walking the
+    objects in Python).
+    """
+    return orjson.loads(orjson.dumps(value, default=_fallback, option=_OPTIONS))
