@@ -25,6 +25,11 @@ Two parts, both pure (no database, no network):
    months beat Parton & Logan's published ones on the even months at every
    site (see ``tests/reference/test_daytime_tmy3.py``).
 
+   When the morning's readings are at hand (the heat note is made after
+   sunrise + 2 h), :func:`advisory.forecast.dayshape.anchored_temperature_c`
+   draws the rest of the day through the morning reading instead (daytime
+   RMSE 1.18 °C held out on the same file, against 1.69 here).
+
    Sun times are inputs (from :mod:`advisory.physics.sun`).  Where the sun does
    not rise or set (polar day or night: sunrise or sunset NaN/NaT), the curve
    falls back to a cosine between the minimum and maximum with the maximum
