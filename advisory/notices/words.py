@@ -300,18 +300,36 @@ def local(value, tz: str) -> dt.datetime | None:
     return None if t is None else t.astimezone(zone(tz))
 
 
+def _remembered(fn):
+    """``fn(value, tz)`` remembered for recent (instant, zone) pairs: a night's notices for
+    thousands of blocks repeat the same few dozen instants."""
+    cached = lru_cache(maxsize=16384)(fn)
+
+    def wrapper(value, tz: str) -> str:
+        try:
+            return cached(value, tz)
+        except TypeError:  # an unhashable value
+            return fn(value, tz)
+
+    wrapper.__doc__, wrapper.__name__, wrapper.__wrapped__ = fn.__doc__, fn.__name__, fn
+    return wrapper
+
+
+@_remembered
 def clock(value, tz: str) -> str:
     """``02:40 PDT``."""
     t = local(value, tz)
     return "n/a" if t is None else t.strftime("%H:%M %Z")
 
 
+@_remembered
 def clock_day(value, tz: str) -> str:
     """``Tue 02:40 PDT``."""
     t = local(value, tz)
     return "n/a" if t is None else f"{t:%a} {t:%H:%M %Z}"
 
 
+@_remembered
 def when(value, tz: str) -> str:
     """``Mon 6 Apr 14:05 PDT``."""
     t = local(value, tz)
