@@ -667,30 +667,29 @@ class StoredNotice:
     content: Any = field(repr=False, default_factory=dict)
 
 
-def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
-           now: dt.datetime, timings: StageTimes | None = None
-           ) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
-    """Store forecasts and notices; returns (notices to deliver, skipped messages).
+@dataclass
+class Prepared:
+    """What a batch will store: the assessments to store, their payloads and composed notices."""
 
-    The rows are written with a few bulk INSERT statements (the database hands back
-    the new ids in order); what was stored before is read with one query per
-    table, not one per block.
+    #: Assessments to store (revision set), in the batch's order.
+    todo: list[asm.Assessment]
+    #: The stored payload of each (``advisory.assessment.to_dict`` form).
+    payloads: list[dict]
+    #: ``(key, subject, notice)`` of each block's notice, or None where no notice is due.
+    composed: list[tuple | None]
+    #: Messages for assessments not stored (already assessed).
+    skipped: list[str]
 
-    Parameters
-    ----------
-    session : Session
-        The run's transaction (the caller commits).
-    assessments : list of Assessment
-    revision_mode : {"evening", "heat", "missed", "update"}
-        ``evening``, ``heat`` and ``missed`` store revision 0 of a block-night
-        once (a block already assessed is skipped); ``update`` stores the next
-        revision and a notice only when :func:`material_change` says so.
-    now : datetime
-        The run's clock (``created_at``).
+
+def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
+             timings: StageTimes | None = None) -> Prepared:
+    """Revisions, payloads and notices of a batch (reads the database, writes nothing).
+
+    See :func:`_store` for ``revision_mode``.
     """
     skipped: list[str] = []
     if not assessments:
-        return [], skipped
+        return Prepared([], [], [], skipped)
     kinds = {a.kind for a in assessments}
     nights = {a.night for a in assessments}
     prev: dict[tuple, int] = {}
@@ -718,9 +717,8 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
                 ids = [a.block_id for a in todo if a.is_update and a.kind == kind and a.night == night]
                 noticed.update({(bid, kind, night): v
                                 for bid, v in _last_noticed_many(session, ids, night, kind).items()})
-    blocks = {a.block_id: session.get(Block, a.block_id) for a in todo}
     payloads = []
-    composed: list[tuple[str, str, dict] | None] = []  # (key, subject, content) of each block's notice
+    composed: list[tuple | None] = []
     for a in todo:
         payload = assessment_payload(a)
         previous_noticed = noticed.get((a.block_id, a.kind, a.night)) if a.is_update else None
@@ -737,6 +735,38 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         payloads.append(payload)
         composed.append(notice)
     _lap(timings, "compose")
+    return Prepared(todo, payloads, composed, skipped)
+
+
+def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
+           now: dt.datetime, timings: StageTimes | None = None, prepared: Prepared | None = None
+           ) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
+    """Store forecasts and notices; returns (notices to deliver, skipped messages).
+
+    The rows are written with a few bulk INSERT statements (the database hands back
+    the new ids in order); what was stored before is read with one query per
+    table, not one per block.
+
+    Parameters
+    ----------
+    session : Session
+        The run's transaction (the caller commits).
+    assessments : list of Assessment
+    revision_mode : {"evening", "heat", "missed", "update"}
+        ``evening``, ``heat`` and ``missed`` store revision 0 of a block-night
+        once (a block already assessed is skipped); ``update`` stores the next
+        revision and a notice only when :func:`material_change` says so.
+    now : datetime
+        The run's clock (``created_at``).
+    prepared : Prepared, optional
+        :func:`_prepare` of ``assessments`` when already made (by the run's worker processes).
+    """
+    if prepared is None:
+        prepared = _prepare(session, assessments, revision_mode=revision_mode, timings=timings)
+    todo, payloads, composed, skipped = prepared.todo, prepared.payloads, prepared.composed, prepared.skipped
+    if not todo:
+        return [], skipped
+    blocks = {a.block_id: session.get(Block, a.block_id) for a in todo}
     forecast_ids = _insert_returning_ids(session, Forecast, [
         {"block_id": a.block_id, "kind": a.kind, "night": a.night, "revision": a.revision, "created_at": now,
          "reference_time": a.reference_time_utc, "status": a.status, "reason": a.reason, "model": a.model,
@@ -1048,6 +1078,83 @@ def _frozen_heap():
         gc.unfreeze()
 
 
+#: A run with at least this many blocks shares its forecasting and composing among
+#: ``settings.workers`` processes (see :func:`_assess_prepared`).
+PARALLEL_FROM_BLOCKS = 2000
+
+
+def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, *, now: dt.datetime,
+                     update: bool, workers: int = 1, timings: StageTimes | None = None
+                     ) -> tuple[list[asm.Assessment], Prepared]:
+    """Assess ``blocks`` and prepare what to store (:func:`assess_night`, then :func:`_prepare`).
+
+    A large run (:data:`PARALLEL_FROM_BLOCKS` blocks or more, ``workers`` > 1, a database
+    other processes can open, and no other thread in this process) is cut into
+    ``workers`` consecutive shares of the block list: this process does the first, forked
+    processes the others, each reading the database on its own connection.  Nothing is
+    written until every share is back, and the shares are joined in the order of the
+    blocks, so the result is the one a single process gives.  A share that fails raises
+    here, and the run stores nothing.
+    """
+    mode = "update" if update else "evening"
+    as_of = now if update else None
+    n_workers = min(int(workers or 1), len(blocks) // max(1, PARALLEL_FROM_BLOCKS // 2))
+    if n_workers < 2 or not _can_fork(db):
+        assessments = assess_night(session, blocks, night, as_of=as_of, update=update, timings=timings)
+        return assessments, _prepare(session, assessments, revision_mode=mode, timings=timings)
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    shares = [list(x) for x in np.array_split(np.arange(len(blocks)), n_workers)]
+    ids = [[blocks[i].id for i in share] for share in shares]
+    ctx = multiprocessing.get_context("fork")
+    with ProcessPoolExecutor(max_workers=n_workers - 1, mp_context=ctx) as pool:
+        futures = [pool.submit(_assess_share, db.url, share_ids, night, now, update) for share_ids in ids[1:]]
+        own = assess_night(session, [blocks[i] for i in shares[0]], night, as_of=as_of, update=update,
+                           timings=timings)
+        own_prepared = _prepare(session, own, revision_mode=mode, timings=timings)
+        results = [f.result() for f in futures]
+    _lap(timings, "wait for workers")
+    assessments = list(own)
+    prepared = own_prepared
+    for share_assessments, share_prepared in results:
+        assessments += share_assessments
+        prepared = Prepared(prepared.todo + share_prepared.todo, prepared.payloads + share_prepared.payloads,
+                            prepared.composed + share_prepared.composed, prepared.skipped + share_prepared.skipped)
+    return assessments, prepared
+
+
+def _can_fork(db) -> bool:
+    """Worker processes may be forked: the platform forks, no other thread runs here (a fork
+    would copy its locks mid-use), and the database is one another process can open."""
+    import multiprocessing
+    import threading
+
+    if "fork" not in multiprocessing.get_all_start_methods() or threading.active_count() > 1:
+        return False
+    if multiprocessing.current_process().daemon:  # already a worker
+        return False
+    from sqlalchemy.engine import make_url
+
+    u = make_url(db.url)
+    return u.get_backend_name() != "sqlite" or (bool(u.database) and u.database != ":memory:")
+
+
+def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.datetime, update: bool
+                  ) -> tuple[list[asm.Assessment], Prepared]:
+    """One worker's share of :func:`_assess_prepared` (runs in a forked process; reads only)."""
+    from advisory.store.db import Database
+
+    db = Database(url, check=False)
+    try:
+        with db.transaction() as session:
+            blocks = _load_blocks(session, block_ids, equipment=False)
+            assessments = assess_night(session, blocks, night, as_of=now if update else None, update=update)
+            return assessments, _prepare(session, assessments, revision_mode="update" if update else "evening")
+    finally:
+        db.engine.dispose()
+
+
 def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now: dt.datetime | None = None,
               update: bool = False, key: str | None = None, farm: str | None = None,
               names: Sequence[str] | None = None, deliver: bool = True, settings=None,
@@ -1085,11 +1192,11 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
             timings.lap("start")
             blocks = _load_blocks(session, block_ids, farm, names, equipment=False)
             timings.lap("load blocks")
-            res.assessments = assess_night(session, blocks, night, as_of=now if update else None, update=update,
-                                           timings=timings)
+            res.assessments, prepared = _assess_prepared(db, session, blocks, night, now=now, update=update,
+                                                         workers=getattr(settings, "workers", 1), timings=timings)
             stored, res.skipped = _store(session, res.assessments,
                                          revision_mode="update" if update else "evening", now=now,
-                                         timings=timings)
+                                         timings=timings, prepared=prepared)
             res.notices = [n.id for n, _ in stored]
             known = {n.id: n.content for n, _ in stored}
             farm_ids = sorted({b.farm_id for b in blocks})

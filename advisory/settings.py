@@ -33,6 +33,12 @@ Environment variables
     worse, or goes out by e-mail), ``email`` (only when it goes out by e-mail),
     ``always`` or ``never`` (settings file: ``[outbox] charts = "..."``).  A chart
     takes a few tenths of a second to draw; e-mails always carry theirs.
+``ADVISORY_WORKERS``
+    Processes that share the forecasting and composing of a run with at least
+    :data:`advisory.pipeline.PARALLEL_FROM_BLOCKS` blocks: ``auto`` (default: one
+    per processor, at most 4) or a number; ``1`` keeps every run in one process
+    (settings file: ``[run] workers = ...``).  The extra processes only read the
+    database; the run's own process stores and delivers everything.
 """
 
 from __future__ import annotations
@@ -107,6 +113,27 @@ class Settings:
     outbox_formats: tuple[str, ...] = OUTBOX_DEFAULT_FORMATS
     #: "auto", "email", "always" or "never": when a block notice's chart goes into the outbox.
     outbox_charts: str = "auto"
+    #: Processes that share a large run's forecasting and composing ("auto": one per
+    #: processor this process may use, at most 4; 1: never more than this process).
+    workers: int = 1
+
+
+def _workers(env_value, file_value) -> int:
+    where = "ADVISORY_WORKERS" if env_value else "[run] workers"
+    raw = str(env_value or file_value or "auto").strip().lower()
+    if raw == "auto":
+        try:
+            cpus = len(os.sched_getaffinity(0))
+        except (AttributeError, OSError):
+            cpus = os.cpu_count() or 1
+        return max(1, min(4, cpus))
+    try:
+        n = int(raw)
+    except ValueError:
+        n = 0
+    if not 1 <= n <= 64:
+        raise InputError(f"{where}: {raw!r} is not 'auto' or a number of processes from 1 to 64", field=where)
+    return n
 
 
 def _truthy(v) -> bool:
@@ -165,4 +192,5 @@ def load(db_url: str | None = None) -> Settings:
         webhook_secret=env.get("ADVISORY_WEBHOOK_SECRET") or f.get("webhook", {}).get("secret"),
         outbox_formats=_outbox_formats(env.get("ADVISORY_OUTBOX_FORMATS"), f.get("outbox", {}).get("formats")),
         outbox_charts=_outbox_charts(env.get("ADVISORY_OUTBOX_CHARTS"), f.get("outbox", {}).get("charts")),
+        workers=_workers(env.get("ADVISORY_WORKERS"), f.get("run", {}).get("workers")),
     )

@@ -113,3 +113,49 @@ def test_email_chart_setting_draws_charts_for_mailed_notices(spring_db, quiet_ch
     # every demo block has a recipient with an e-mail address: its chart and the page showing it are kept
     assert {f.split(".", 1)[1] for f in blocks} == {"json", "html", "png"}
     assert len(blocks) == 3 * 6
+
+
+def _stored(db):
+    from sqlalchemy import select
+
+    from advisory.store.schema import Forecast, Notice
+
+    with db.transaction() as s:
+        forecasts = {(f.block_id, f.revision): (f.level, f.payload) for f in s.scalars(select(Forecast))}
+        notices = {n.key: n.content for n in s.scalars(select(Notice))}
+    return forecasts, notices
+
+
+@pytest.mark.parametrize("update", [False, True])
+def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_path, monkeypatch, update):
+    from advisory.ingest.farm_file import import_farm_file
+    from advisory.ingest.observations import import_file
+    from advisory.store.db import Database, upgrade
+
+    url = f"sqlite:///{tmp_path / 'serial.sqlite'}"
+    upgrade(url)
+    serial_db = Database(url)
+    import_farm_file(serial_db, demo_farm / "farm.toml")
+    for code in ("QR-BENCH", "QR-CREEK"):
+        import_file(serial_db, code, demo_farm / "stations" / f"{code}-spring.csv")
+    later = NOW + dt.timedelta(hours=-3)
+    one = settings_mod.load(url)
+    one = dataclasses.replace(one, workers=1)
+    pipeline.run_night(serial_db, NIGHT, now=NOW, deliver=False, settings=one)
+    if update:
+        pipeline.run_night(serial_db, NIGHT, now=later, update=True, deliver=False, settings=one)
+
+    monkeypatch.setattr(pipeline, "PARALLEL_FROM_BLOCKS", 2)  # the demo farm has six blocks
+    three = dataclasses.replace(one, db_url=spring_db.url, workers=3)
+    runs = [pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False, settings=three)]
+    if update:
+        runs.append(pipeline.run_night(spring_db, NIGHT, now=later, update=True, deliver=False, settings=three))
+    assert all("wait for workers" in r.timings for r in runs)  # the shares went to forked processes
+    want, got = _stored(serial_db), _stored(spring_db)
+    serial_db.dispose()
+    # block ids are the same in both databases (same farm file, same order of import)
+    assert got[0].keys() == want[0].keys() and got[1].keys() == want[1].keys()
+    for k in want[0]:
+        assert jsoncodec.dumps(got[0][k]) == jsoncodec.dumps(want[0][k])
+    for k in want[1]:
+        assert jsoncodec.dumps(got[1][k]) == jsoncodec.dumps(want[1][k])

@@ -227,12 +227,21 @@ def outbox_base(outbox: Path, n: BlockNotice | FarmSummary, key: str | None = No
     return Path(outbox) / w.slug(n.night, 10, "undated") / stem
 
 
+def _put(path: Path, data: bytes) -> None:
+    with open(path, "wb") as fh:
+        fh.write(data)
+
+
 def _write(path: Path, data: bytes) -> None:
     """Write a file whole or not at all (a temporary name, then an atomic rename); the folder must exist."""
     tmp = path.with_name(f".{path.name}.{os.getpid()}-{threading.get_ident()}.tmp")
     try:
-        with open(tmp, "wb") as fh:
-            fh.write(data)
+        try:
+            _put(tmp, data)
+        except FileNotFoundError:  # the folder was removed since this process made it
+            _FOLDERS.discard(str(path.parent))
+            _folder(path.parent)
+            _put(tmp, data)
         os.replace(tmp, path)
     except BaseException:
         with _suppress():
@@ -266,9 +275,23 @@ def _scrub(text: str, settings) -> str:
     return text[:2000]
 
 
+#: Outbox folders this process has made (or found) already.
+_FOLDERS: set[str] = set()
+
+
+def _folder(path: Path) -> None:
+    """Make ``path`` (and its parents) unless this process did so already."""
+    key = str(path)
+    if key not in _FOLDERS:
+        path.mkdir(parents=True, exist_ok=True)
+        if len(_FOLDERS) > 4096:
+            _FOLDERS.clear()
+        _FOLDERS.add(key)
+
+
 def _send_outbox(r: _Rendered, settings, formats: Sequence[str], chart: bool) -> str:
     base = outbox_base(settings.outbox, r.n, r.row.key)
-    base.parent.mkdir(parents=True, exist_ok=True)
+    _folder(base.parent)
     png = r.png() if chart else None
     if png:
         _write(base.with_name(base.name + ".png"), png)

@@ -393,6 +393,7 @@ def gsm_safe(text: str) -> str:
     return re.sub(r" {2,}", " ", "".join(out)).strip()
 
 
+@lru_cache(maxsize=8192)
 def slug(text: str, max_len: int = 40, fallback: str = "x") -> str:
     """An ASCII file-name piece: letters, digits and single hyphens."""
     s = unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode()
