@@ -70,7 +70,7 @@ from email.utils import formatdate, make_msgid
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy import insert, select
 from sqlalchemy.orm import Session
 
 from advisory import __version__
@@ -555,7 +555,6 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
             d = Delivery(notice_id=j.rendered.row.id, recipient_id=None if j.recipient is None else j.recipient.id,
                          channel=j.channel, address=str(address)[:500], attempt=j.attempt, status=status,
                          attempted_at=dt.datetime.now(dt.UTC), error=error)
-            session.add(d)
             made.append(d)
             who = "outbox" if j.recipient is None else j.recipient.name
             if status == "failed":
@@ -567,8 +566,26 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
         if not pending or round_index == attempts - 1:
             break
         sleep(retry.delay_s(round_index))
-    session.flush()
+    _insert_deliveries(session, made)
     return made
+
+
+_DELIVERY_COLUMNS = ("notice_id", "recipient_id", "channel", "address", "attempt", "status", "attempted_at", "error")
+
+
+def _insert_deliveries(session: Session, rows: list[Delivery]) -> None:
+    """Write the attempts with bulk INSERTs (one per 2,000 rows) and give each row its new id.
+
+    The rows stay outside the session (nothing else changes them); what the caller
+    added before is flushed first.
+    """
+    session.flush()
+    for k in range(0, len(rows), 2000):
+        chunk = rows[k:k + 2000]
+        ids = session.scalars(insert(Delivery).returning(Delivery.id, sort_by_parameter_order=True),
+                              [{c: getattr(d, c) for c in _DELIVERY_COLUMNS} for d in chunk]).all()
+        for d, new_id in zip(chunk, ids, strict=True):
+            d.id = new_id
 
 
 def save_notice(session: Session, notice: BlockNotice | FarmSummary, *, farm_id: int, block_id: int | None = None,
