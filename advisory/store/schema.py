@@ -333,6 +333,12 @@ class Notice(Base):
     content: Mapped[dict[str, Any]] = mapped_column(default=dict)
 
 
+# A night's notices of a farm (delivery of what a run left), a block's notices; a night's forecasts.
+Index("ix_notices_night_farm_kind", Notice.night, Notice.farm_id, Notice.kind)
+Index("ix_notices_block_id", Notice.block_id)
+Index("ix_forecasts_night_kind_revision", Forecast.night, Forecast.kind, Forecast.revision)
+
+
 class Delivery(Base):
     """One delivery attempt of a notice to a recipient on a channel."""
 
