@@ -39,11 +39,16 @@ How a block's day is assessed (:func:`assess_day`), all blocks as arrays:
    the high minus :data:`ASSUMED_RANGE_C`.  **Dew point**: from the outlook's
    minimum relative humidity at the high; else the morning reading; else the
    latest reading of the last 3 h; else the minimum (FAO-56 eq. 48 [1]_).
-4. **Hourly curve** (:func:`advisory.forecast.daytime.diurnal_temperature_c`)
-   with the station's calibrated coefficients (``Calibration`` kind
-   ``diurnal``, fitted beside the regression when 20 or more days of readings
-   allow) or the published defaults; the 10th and 90th percentile curves use
-   the high's range.
+4. **Hourly curve** (:func:`advisory.forecast.dayshape.anchored_temperature_c`):
+   drawn through this morning's reading (the same one the regression reads),
+   rising to the high after solar noon and falling toward the sunset
+   temperature, with the shapes fitted on the station's own days by cloud class
+   (``day_shapes`` of the ``Calibration`` kind ``diurnal``, fitted beside the
+   regression when 20 or more days of readings allow) or
+   :data:`advisory.forecast.dayshape.DEFAULT_SHAPES`.  Hours already read
+   (nearest reading within 10 min, up to the morning reading) show as read;
+   without a morning reading the curve rises from the minimum at sunrise.
+   The 10th and 90th percentile curves use the high's range.
 5. **Crop heat and crew heat** (:mod:`advisory.risk.heat`): sunburn hours,
    evaporative cooling start, stop and water on blocks with over-tree
    sprinklers, heat index, WBGT estimate, safer hours for heavy work.  The
@@ -76,7 +81,7 @@ from sqlalchemy.orm import Session
 from advisory import assessment as asm
 from advisory import settings as settings_mod
 from advisory.errors import InputError
-from advisory.forecast import daytime
+from advisory.forecast import dayshape, daytime
 from advisory.ingest.observations import load_observations_many
 from advisory.ingest.outlook import read_outlook_csv
 from advisory.notices import words as w
@@ -235,8 +240,13 @@ def fit_station_day_models(frame: pd.DataFrame, latitude: float, longitude: floa
         empty when the history is too short.
     diurnal : dict or None
         :class:`advisory.forecast.daytime.DiurnalParams` as a dict plus
-        ``rmse_c`` (daytime, on the fitting days) and ``n_days``, or None when
-        fewer than 20 days allow a fit.
+        ``rmse_c`` (daytime, on the fitting days) and ``n_days``; and the
+        anchored curve's ``day_shapes``
+        (:meth:`advisory.forecast.dayshape.DayShapes.to_dict`, the defaults
+        when too few days have a morning reading), ``day_shape_rmse_c``
+        (its miss after the morning reading from sunrise to sunset, None for
+        the defaults) and ``day_shape_days`` (days with a morning reading).
+        None when fewer than 20 days allow a fit.
     """
     end = _local_midnight_utc(day, tz)
     start = end - pd.Timedelta(days=history_days)
@@ -302,7 +312,23 @@ def _fit_diurnal(hist: pd.DataFrame, sun_table: pd.DataFrame, tz: str) -> dict |
                                                     ss[keep], noon[keep], next_min_temp_c=nxt[keep])
     if not np.isfinite(rmse):
         return None
-    return {**params.to_dict(), "rmse_c": float(rmse), "n_days": int(keep.sum())}
+    cloud = None
+    if "cloud_cover_pct" in hist:
+        c = hist["cloud_cover_pct"]
+        c = c[~c.index.duplicated(keep="first")].sort_index()
+        cloud = c.reindex(grid, method="nearest", tolerance=pd.Timedelta(minutes=10)).to_numpy(float)
+        cloud = np.where(inside, cloud.reshape(times.shape), np.nan)
+    anc = dayshape.morning_anchor(times[keep], obs[keep], sr[keep], lead_h=MORNING_LEAD_H,
+                                  tolerance_h=MORNING_TOLERANCE_H,
+                                  cloud_cover_pct=None if cloud is None else cloud[keep])
+    shapes, shape_rmse = dayshape.calibrate_day_shapes(
+        times[keep], obs[keep], tmax[keep], sr[keep], ss[keep], noon[keep], anc["anchor_time"],
+        anc["anchor_temp_c"], next_min_temp_c=nxt[keep], min_temp_c=tmin[keep], max_so_far_c=anc["max_so_far_c"],
+        cloud_cover_pct=anc["cloud_cover_pct"])
+    fitted = bool(np.isfinite(shape_rmse))
+    return {**params.to_dict(), "rmse_c": float(rmse), "n_days": int(keep.sum()),
+            "day_shapes": shapes.to_dict(), "day_shape_rmse_c": float(shape_rmse) if fitted else None,
+            "day_shape_days": int(np.isfinite(anc["anchor_time"]).sum()) if fitted else 0}
 
 
 def _usable_rows(session: Session, station_ids: Sequence[int], kind: str, day: dt.date) -> dict[int, Calibration]:
@@ -738,6 +764,13 @@ def assess_day(session: Session, blocks: list[Block], day: dt.date, *, as_of: dt
     tx90 = col(highs[x].p90 for x in sids)[k_of]
     tn, td, tp = s_tn[k_of], s_td[k_of], s_tp[k_of]
     tn_src, td_src = tn_names[tn_k][k_of], td_names[td_k][k_of]
+    # the morning reading each block's curve is drawn through (NaN: none yet)
+    morning = {"anchor_t": daytime.to_hours(pd.DatetimeIndex(ms["issued_at"]))[k_of],
+               "anchor_c": ms["air_temp_c"].to_numpy(float)[k_of],
+               "so_far": ms["max_so_far_c"].to_numpy(float)[k_of],
+               "cloud": ms["cloud_cover_pct"].to_numpy(float)[k_of],
+               "early": ms["early"].to_numpy(bool)[k_of],
+               "station_id": np.array([b.station_id for b in blocks], dtype=np.int64), "obs": obs}
     pressure = np.asarray(moisture.pressure_kpa_from_elevation(elev), float)
 
     ok = np.isfinite(tx50) & np.isfinite(tn) & np.isfinite(td) & ~table["no_sun"].to_numpy(bool)
@@ -782,7 +815,7 @@ def assess_day(session: Session, blocks: list[Block], day: dt.date, *, as_of: dt
         groups[str(tzs[i])].append(int(i))
     for tz, members in groups.items():   # one pass per time zone (a shared local-hour grid)
         _assess_group(blocks, out, np.array(members), tz, day, table, tx10, tx50, tx90, tn, td, tp, pressure,
-                      highs, diurnal_params, tn_src, td_src)
+                      highs, diurnal_params, tn_src, td_src, morning)
     return out
 
 
@@ -803,33 +836,110 @@ def _first_finite(stack: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return vals, k
 
 
-def _curve_params(params: dict | None) -> daytime.DiurnalParams:
-    if not params:
-        return daytime.DEFAULT_PARAMS
-    return daytime.DiurnalParams.from_dict(params)
+def _day_shapes(params: dict | None) -> dayshape.DayShapes:
+    """A station's fitted day shapes from its ``diurnal`` calibration, else the defaults."""
+    shapes = (params or {}).get("day_shapes")
+    return dayshape.DayShapes.from_dict(shapes) if shapes else dayshape.DEFAULT_SHAPES
+
+
+#: Readings within this of an hour of the curve show as that hour's value.
+GRID_TOLERANCE = pd.Timedelta(minutes=10)
+
+
+def readings_on_grid(obs: dict[int, pd.DataFrame], station_ids, times: pd.DatetimeIndex,
+                     tolerance: pd.Timedelta = GRID_TOLERANCE) -> np.ndarray:
+    """Air temperature readings of stations on a shared time grid (nearest reading within ``tolerance``).
+
+    Parameters
+    ----------
+    obs : dict of int to DataFrame
+        Readings per station id (aware UTC index, ``air_temp_c``).
+    station_ids : array_like of int
+        One station per output row (repeats allowed).
+    times : pandas.DatetimeIndex
+        The grid (aware).
+    tolerance : Timedelta
+
+    Returns
+    -------
+    ndarray
+        Shape ``(len(station_ids), len(times))`` [°C], NaN where no reading is near.
+    """
+    ids = np.asarray(station_ids, dtype=np.int64)
+    uniq, inv = np.unique(ids, return_inverse=True)
+    h = len(times)
+    grid = np.full((len(uniq), h), np.nan)
+    parts_t, parts_k, parts_v = [], [], []
+    for k, sid in enumerate(uniq.tolist()):      # gathering arrays only; the matching is one merge
+        f = obs.get(sid)
+        if f is None or not len(f) or "air_temp_c" not in f:
+            continue
+        v = f["air_temp_c"].to_numpy(dtype=float, na_value=np.nan)
+        m = np.isfinite(v)
+        parts_t.append(f.index.tz_convert("UTC").as_unit("ns").asi8[m])
+        parts_k.append(np.full(int(m.sum()), k, dtype=np.int64))
+        parts_v.append(v[m])
+    if parts_t and h:
+        right = pd.DataFrame({"time": pd.DatetimeIndex(np.concatenate(parts_t)).tz_localize("UTC"),
+                              "k": np.concatenate(parts_k), "v": np.concatenate(parts_v)}).sort_values("time")
+        t_ns = pd.DatetimeIndex(times).tz_convert("UTC").as_unit("ns")
+        left = pd.DataFrame({"time": np.tile(t_ns, len(uniq)), "k": np.repeat(np.arange(len(uniq)), h),
+                             "row": np.arange(len(uniq) * h)}).sort_values("time", kind="stable")
+        got = pd.merge_asof(left, right, on="time", by="k", direction="nearest", tolerance=tolerance)
+        grid.ravel()[got["row"].to_numpy()] = got["v"].to_numpy(float)
+    return grid[inv]
+
+
+def _curve_model_text(dp: dict | None, anchor: pd.Timestamp | None, early: bool, spent: bool, units: str) -> str:
+    """How the hourly curve was drawn, for the notice."""
+    fall = "then down toward the sunset temperature of Cesaraccio et al. (2001)"
+    if anchor is None:
+        s = f"No morning reading: curve drawn from the minimum at sunrise up to the day's high after solar noon, {fall}"
+    else:
+        s = f"Curve drawn through this morning's {anchor:%H:%M} reading"
+        if early:
+            s += " (taken before sunrise + 2 h)"
+        s += (f"; the day's high was already read before it, so the afternoon rises only a little, {fall}"
+              if spent else f", rising to the day's high after solar noon, {fall}")
+    shapes = (dp or {}).get("day_shapes")
+    miss = (dp or {}).get("day_shape_rmse_c")
+    if shapes and miss is not None and math.isfinite(miss):
+        n = int(dp.get("day_shape_days") or dp.get("n_days") or 0)
+        return (s + f"; its shape fitted on {n} days of this station (typical daytime miss "
+                f"{w.temp_delta(miss, units)})")
+    if dp and not shapes:
+        return s + "; default shapes (this station's own are fitted at its next refit)"
+    return s + "; default shapes (this station has too few days of readings to fit its own)"
 
 
 def _assess_group(blocks, out, idx, tz, day, table, tx10, tx50, tx90, tn, td, tp, pressure, highs,
-                  diurnal_params, tn_src, td_src) -> None:
+                  diurnal_params, tn_src, td_src, morning) -> None:
     times = daytime.local_day_hours(day, tz)
     h = len(times)
     sr = pd.DatetimeIndex(table["sunrise"].iloc[idx])
     ss = pd.DatetimeIndex(table["sunset"].iloc[idx])
     noon = pd.DatetimeIndex(table["solar_noon"].iloc[idx])
     nsr = pd.DatetimeIndex(table["next_sunrise"].iloc[idx])
+    anchor_t, anchor_c = morning["anchor_t"], morning["anchor_c"]
+    so_far, cloud = morning["so_far"], morning["cloud"]
+    obs_grid = np.full((len(blocks), h), np.nan)
+    obs_grid[idx] = readings_on_grid(morning["obs"], morning["station_id"][idx], times)
     temps = {q: np.full((len(idx), h), np.nan) for q in (10, 50, 90)}
-    by_params: dict[tuple, list[int]] = defaultdict(list)
+    by_shapes: dict[str, list[int]] = defaultdict(list)
+    shape_of: dict[str, dayshape.DayShapes] = {}
     for k, i in enumerate(idx):
-        p = _curve_params(diurnal_params.get(blocks[i].station_id))
-        by_params[(p.max_anchor, p.max_offset_h, p.sunset_fall_fraction)].append(k)
-    for (anchor, offset, frac), ks in by_params.items():   # one evaluation per distinct coefficient set
+        shapes = _day_shapes(diurnal_params.get(blocks[i].station_id))
+        key = repr(shapes)
+        shape_of[key] = shapes
+        by_shapes[key].append(k)
+    for key, ks in by_shapes.items():   # one evaluation per distinct set of shapes
         ks = np.array(ks)
         ii = idx[ks]
-        p = daytime.DiurnalParams(anchor, offset, frac)
         for q, tx in ((10, tx10), (50, tx50), (90, tx90)):
-            temps[q][ks] = daytime.diurnal_temperature_c(
-                times, tn[ii], np.maximum(tx[ii], tn[ii]), sr[ks], ss[ks], noon[ks],
-                next_min_temp_c=tp[ii], next_sunrise=nsr[ks], params=p)
+            temps[q][ks] = dayshape.anchored_temperature_c(
+                times, tn[ii], np.maximum(tx[ii], tn[ii]), sr[ks], ss[ks], noon[ks], anchor_t[ii], anchor_c[ii],
+                next_min_temp_c=tp[ii], next_sunrise=nsr[ks], max_so_far_c=so_far[ii], cloud_cover_pct=cloud[ii],
+                shapes=shape_of[key], observed_c=obs_grid[ii])
     t50 = temps[50]
     sub = [blocks[i] for i in idx]
     cooling = [_cooling_equipment(b) for b in sub]
@@ -869,12 +979,11 @@ def _assess_group(blocks, out, idx, tz, day, table, tx10, tx50, tx90, tn, td, tp
                    for j in range(h) if np.isfinite(t50[k, j])]
         hit = np.flatnonzero(sb_mask[k])
         sb_hours = float(crop.hours_above_c[k, 0])
-        dp = diurnal_params.get(b.station_id)
-        curve_model = ("Cesaraccio et al. (2001) curve with this station's coefficients "
-                       f"(maximum {dp['max_offset_h']:.2f} h after solar noon, sunset fraction "
-                       f"{dp['sunset_fall_fraction']:.2f}; fitted on {dp['n_days']} days, daytime miss "
-                       f"{w.temp_delta(dp['rmse_c'], units)})" if dp else
-                       "Cesaraccio et al. (2001) curve with its published coefficients")
+        anchor = (pd.Timestamp(anchor_t[i] * 3600.0, unit="s", tz="UTC").round("s").tz_convert(tz)
+                  if np.isfinite(anchor_t[i]) and np.isfinite(anchor_c[i]) else None)
+        curve_model = _curve_model_text(
+            diurnal_params.get(b.station_id), anchor, bool(morning["early"][i]),
+            bool(np.isfinite(so_far[i]) and so_far[i] >= tx50[i] - 0.05), units)
         peak_j = int(np.nanargmax(np.where(np.isfinite(t50[k]), t50[k], -np.inf)))
         what = crop.what[k]
         d = {

@@ -13,7 +13,7 @@ from sqlalchemy import func, select
 from advisory import assessment as asm
 from advisory import heat_pipeline as hp
 from advisory import pipeline
-from advisory.forecast import daytime
+from advisory.forecast import dayshape, daytime
 from advisory.ingest.farm_file import import_farm_file
 from advisory.ingest.observations import import_file, load_observations_many
 from advisory.notices import compose
@@ -267,7 +267,27 @@ def test_regression_is_fitted_stored_and_used_on_real_hourly_history(tmp_path, d
     assert 0.5 <= rows["diurnal"].params["max_offset_h"] <= 4.5 and rows["diurnal"].params["n_days"] >= 150
     assert a.model == "ridge-rise-v1" and a.training_nights == params["n_days"]
     assert a.details["max_estimated"] and "own regression" in a.data_quality["flags"][0]
-    assert "this station's coefficients" in a.details["curve_model"]
+    assert "fitted on" in a.details["curve_model"] and "days of this station" in a.details["curve_model"]
+    # the anchored curve's shapes are stored beside the old coefficients, with their daytime miss (the
+    # reference test on this file measured about 1.2 °C with the hours read shown as read, 1.4 without)
+    diurnal = rows["diurnal"].params
+    shapes = dayshape.DayShapes.from_dict(diurnal["day_shapes"])
+    assert shapes.to_dict() == diurnal["day_shapes"] and shapes != dayshape.DEFAULT_SHAPES
+    assert 0.5 <= shapes.any_sky.max_lag_h <= 4.5
+    assert 0.5 < diurnal["day_shape_rmse_c"] < 2.5 and 150 <= diurnal["day_shape_days"] <= diurnal["n_days"]
+    assert f"typical daytime miss {diurnal['day_shape_rmse_c']:.1f} °C" in a.details["curve_model"]
+    # the curve goes through the morning reading (hourly readings: it lies on the curve's own grid) ...
+    anchor = pd.Timestamp(a.reference_time_utc)
+    curve = pd.Series([p.p50_c for p in a.curve], index=pd.DatetimeIndex([p.time_utc for p in a.curve]))
+    assert curve[anchor] == pytest.approx(frame["air_temp_c"][anchor]) == a.data_quality["air_temp_c"]
+    today = frame[(frame.index >= curve.index[0]) & (frame.index <= anchor)]["air_temp_c"]
+    np.testing.assert_allclose(curve[curve.index <= anchor].to_numpy(), today.to_numpy())
+    assert f"this morning's {anchor.tz_convert('Etc/GMT+5'):%H:%M} reading" in a.details["curve_model"]
+    # ... and its top is the estimated high, after solar noon
+    assert today.max() < a.p50_c
+    assert curve.max() == pytest.approx(a.p50_c, abs=0.5) and curve.max() <= a.p50_c + 1e-9
+    noon = hp.sun_by_date(36.1, -79.95, "Etc/GMT+5", [day])["solar_noon"].iat[0]
+    assert noon <= curve.idxmax() < noon + pd.Timedelta(hours=5)
     # the same numbers as the model's own functions on the same readings
     hist = frame[frame.index < pd.Timestamp(day).tz_localize("Etc/GMT+5")]
     sun_t = hp._station_sun(36.1, -79.95, "Etc/GMT+5", pd.date_range("2001-01-01", day, freq="D").date)
@@ -472,3 +492,101 @@ def test_curve_daylight_hours_are_finite_and_levels_match_risk_model(summer_db):
         temps = np.array([p.p50_c for p in a.curve])
         assert np.isfinite(temps).all()
         assert a.details["sunburn"]["hours"] == a.details["hours_above_c"]["elevated"]
+
+
+# --------------------------------------------------------------------------- the curve through the morning reading
+
+def _station_readings(db, station_id, day):
+    with db.transaction() as s:
+        f = load_observations_many(s, [station_id], pd.Timestamp(day, tz="UTC") - pd.Timedelta(days=1),
+                                   pd.Timestamp(day, tz="UTC") + pd.Timedelta(days=2))[station_id]
+    return f["air_temp_c"].dropna()
+
+
+@pytest.mark.parametrize("day", [OUTLOOK_DAY, ESTIMATE_DAY])
+def test_heat_curve_passes_through_the_morning_reading_and_peaks_at_the_high(summer_db, day):
+    s, blocks = _blocks(summer_db)
+    try:
+        out = hp.assess_day(s, blocks, day, as_of=_clock(day))
+        station_of = {b.name: b.station_id for b in blocks}
+    finally:
+        s.rollback()
+        s.close()
+    for a in out:
+        assert a.status == asm.STATUS_OK
+        readings = _station_readings(summer_db, station_of[a.block], day)
+        anchor = pd.Timestamp(a.reference_time_utc)
+        anchor_c = a.data_quality["air_temp_c"]
+        assert readings[anchor] == pytest.approx(anchor_c)
+        times = pd.DatetimeIndex([p.time_utc for p in a.curve])
+        p50 = np.array([p.p50_c for p in a.curve])
+        # the hours up to the morning reading are this morning's readings, in all three curves
+        read = times <= anchor
+        assert read.sum() >= 6
+        for q in ("p10_c", "p50_c", "p90_c"):
+            np.testing.assert_allclose([getattr(p, q) for p in a.curve if p.time_utc <= anchor],
+                                       readings.reindex(times[read]).to_numpy(), atol=1e-9)
+        # the curve leaves the morning reading from that reading: the next hour (under an hour later) is
+        # between it and the day's high, at most 1 °C above it per 15 min (a steep morning warming rate of
+        # about 4 °C/h; from memory, unverified)
+        j = int(np.argmax(~read))
+        gap_h = (times[j] - anchor) / pd.Timedelta(hours=1)
+        assert 0 < gap_h <= 1
+        assert anchor_c - 1e-9 <= p50[j] <= min(a.p50_c, anchor_c + 4.0 * gap_h) + 1e-9
+        # the curve's maximum is the stated high (the hourly grid can miss the peak by a little)
+        so_far = readings[(readings.index >= times[0]) & (readings.index <= anchor)].max()
+        if so_far < a.p50_c:
+            assert p50.max() == pytest.approx(a.p50_c, abs=0.5)
+            assert p50.max() <= a.p50_c + 1e-9
+        assert f"this morning's {anchor.tz_convert(a.farm_tz):%H:%M} reading" in a.details["curve_model"]
+
+
+def test_a_station_without_enough_history_uses_the_default_shapes(summer_db, monkeypatch):
+    def run():
+        s, blocks = _blocks(summer_db, ["Bench Gala"])
+        try:
+            (a,) = hp.assess_day(s, blocks, OUTLOOK_DAY, as_of=_clock(OUTLOOK_DAY))
+            kinds = set(s.scalars(select(Calibration.kind)))
+        finally:
+            s.rollback()
+            s.close()
+        return a, kinds
+
+    a, kinds = run()
+    # a week of readings: too few days to fit the station's own shapes
+    assert "diurnal" not in kinds
+    assert hp._day_shapes(None) is dayshape.DEFAULT_SHAPES
+    assert "default shapes" in a.details["curve_model"]
+    # the curve follows DEFAULT_SHAPES: other defaults (an early peak) give another afternoon
+    early = dayshape.DayShape(max_lag_h=0.5, rise_exponent=1.0, sunset_fall_fraction=0.6, fall_exponent=1.0)
+    monkeypatch.setattr(dayshape, "DEFAULT_SHAPES", dayshape.DayShapes(early, early, early, early))
+    b, _ = run()
+    before = [p for p in a.curve if p.time_utc <= a.reference_time_utc]
+    assert [p.p50_c for p in b.curve[:len(before)]] == [p.p50_c for p in before]
+    assert b.details["max_time_utc"] < a.details["max_time_utc"]
+
+
+def test_readings_on_grid_takes_the_nearest_reading_within_ten_minutes():
+    t0 = pd.Timestamp("2026-07-16 12:00", tz="UTC")
+    grid = pd.date_range(t0, periods=4, freq="h")
+    obs = {1: pd.DataFrame({"air_temp_c": [10.0, 11.0, np.nan, 14.0]},
+                           index=t0 + pd.to_timedelta([-5, 62, 120, 185], unit="min")),
+           2: pd.DataFrame({"air_temp_c": [20.0]}, index=[t0 + pd.Timedelta(minutes=11)])}
+    got = hp.readings_on_grid(obs, [1, 2, 1, 3], grid)
+    nan = np.nan
+    np.testing.assert_array_equal(got, [[10.0, 11.0, nan, 14.0], [nan] * 4, [10.0, 11.0, nan, 14.0], [nan] * 4])
+
+
+def test_curve_model_text_names_the_reading_the_shapes_and_their_miss():
+    at = pd.Timestamp("2026-07-16 07:30", tz="America/Los_Angeles")
+    fitted = {"n_days": 200, "day_shapes": dayshape.DEFAULT_SHAPES.to_dict(), "day_shape_rmse_c": 1.234,
+              "day_shape_days": 190}
+    text = hp._curve_model_text(fitted, at, False, False, "metric")
+    assert text.startswith("Curve drawn through this morning's 07:30 reading, rising to the day's high")
+    assert "fitted on 190 days of this station (typical daytime miss 1.2 °C)" in text
+    assert "already read" in hp._curve_model_text(fitted, at, False, True, "metric")
+    assert "before sunrise + 2 h" in hp._curve_model_text(fitted, at, True, False, "metric")
+    none = hp._curve_model_text(None, None, False, False, "metric")
+    assert none.startswith("No morning reading") and "default shapes" in none and "too few days" in none
+    old = hp._curve_model_text({"n_days": 200, "rmse_c": 1.5}, at, False, False, "metric")
+    assert "default shapes" in old and "next refit" in old
