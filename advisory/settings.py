@@ -25,8 +25,9 @@ Environment variables
     most 160 characters, as ``.sms.txt``); default ``text,markdown,html,json``
     (settings file: ``[outbox] formats = [...]``).  Farm summaries always get
     the four full formats.  For thousands of blocks a lean outbox such as
-    ``json,sms`` keeps the nightly run fast; what goes out by e-mail, webhook or
-    text message is not affected.
+    ``json`` (the notice as data, its short text included) or ``json,sms``
+    keeps the nightly run fast; what goes out by e-mail, webhook or text message
+    is not affected.
 ``ADVISORY_OUTBOX_CHARTS``
     When a block notice's chart (PNG, with the HTML page that shows it) is drawn
     into the outbox: ``auto`` (default: when the notice is at "stand by" or

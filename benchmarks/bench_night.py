@@ -30,7 +30,8 @@ this machine; planner at most 5 s.
 The outbox is written as the settings say (``ADVISORY_OUTBOX_FORMATS`` and
 ``ADVISORY_OUTBOX_CHARTS``, see :mod:`advisory.settings`); ``--outbox full``
 forces every format and the charts ("auto"), ``--outbox lean`` JSON and the
-short text per block, charts only for notices that go out by e-mail (none
+short text per block, ``--outbox json`` one JSON file per block (the short text
+is inside it), both with charts only for notices that go out by e-mail (none
 here); farm summaries always get every format.
 
 ``--history-nights N`` first stores N earlier nights for every block (a
@@ -40,7 +41,7 @@ middle of a season; ``--runs`` picks the measurements.
 Usage::
 
     .venv/bin/python benchmarks/bench_night.py [--blocks 10000] [--stations 200] [--seed 11]
-        [--outbox settings|lean|full] [--history-nights 0] [--runs evening,rerun,update,planner]
+        [--outbox settings|lean|json|full] [--history-nights 0] [--runs evening,rerun,update,planner]
         [--keep DIR] [--profile FILE.prof]
 """
 
@@ -273,8 +274,8 @@ def child(args) -> None:
     from advisory.store.db import Database
 
     os.environ["ADVISORY_OUTBOX"] = args.outbox_dir
-    if args.outbox == "lean":
-        os.environ["ADVISORY_OUTBOX_FORMATS"] = "json,sms"
+    if args.outbox in ("lean", "json"):
+        os.environ["ADVISORY_OUTBOX_FORMATS"] = "json,sms" if args.outbox == "lean" else "json"
         os.environ["ADVISORY_OUTBOX_CHARTS"] = "email"
     elif args.outbox == "full":
         os.environ["ADVISORY_OUTBOX_FORMATS"] = "text,markdown,html,json"
@@ -357,8 +358,8 @@ def _run_child(what: str, args, db_url: str, outbox: Path, profile: str | None =
     return json.loads(proc.stdout.strip().splitlines()[-1])
 
 
-STAGES = ("load blocks", "load observations", "sun+evening state", "forecast", "risk/plan", "compose", "store",
-          "outbox delivery")
+STAGES = ("load blocks", "load observations", "sun+evening state", "forecast", "risk/plan", "compose",
+          "wait for workers", "store forecasts", "compose summaries", "store notices", "commit", "outbox delivery")
 
 
 def _print_run(r: dict) -> None:
@@ -383,7 +384,7 @@ def main() -> None:
     ap.add_argument("--seed", type=int, default=11)
     ap.add_argument("--history-nights", type=int, default=0,
                     help="earlier nights already stored per block (forecast, notice, delivery, verification)")
-    ap.add_argument("--outbox", choices=("settings", "lean", "full"), default="settings")
+    ap.add_argument("--outbox", choices=("settings", "lean", "json", "full"), default="settings")
     ap.add_argument("--runs", default="evening,rerun,update,planner",
                     help="which measurements, comma-separated (default: evening,rerun,update,planner)")
     ap.add_argument("--keep", help="keep the database and outbox in this folder")

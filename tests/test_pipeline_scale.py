@@ -127,7 +127,8 @@ def _stored(db):
 
 
 @pytest.mark.parametrize("update", [False, True])
-def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_path, monkeypatch, update):
+def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_path, monkeypatch, update,
+                                                      caplog):
     from advisory.ingest.farm_file import import_farm_file
     from advisory.ingest.observations import import_file
     from advisory.store.db import Database, upgrade
@@ -139,18 +140,27 @@ def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_
     for code in ("QR-BENCH", "QR-CREEK"):
         import_file(serial_db, code, demo_farm / "stations" / f"{code}-spring.csv")
     later = NOW + dt.timedelta(hours=-3)
-    one = settings_mod.load(url)
-    one = dataclasses.replace(one, workers=1)
-    pipeline.run_night(serial_db, NIGHT, now=NOW, deliver=False, settings=one)
+    one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
+    pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
     if update:
-        pipeline.run_night(serial_db, NIGHT, now=later, update=True, deliver=False, settings=one)
+        pipeline.run_night(serial_db, NIGHT, now=later, update=True, settings=one, sleep=lambda s: None)
+
+    from advisory.notices import deliver
 
     monkeypatch.setattr(pipeline, "PARALLEL_FROM_BLOCKS", 2)  # the demo farm has six blocks
-    three = dataclasses.replace(one, db_url=spring_db.url, workers=3)
-    runs = [pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False, settings=three)]
+    monkeypatch.setattr(deliver, "FORK_OUTBOX_FROM", 2)
+    three = dataclasses.replace(one, db_url=spring_db.url, workers=3, outbox=tmp_path / "outbox-three")
+    caplog.set_level("INFO", logger="advisory.notices.deliver")
+    runs = [pipeline.run_night(spring_db, NIGHT, now=NOW, settings=three, sleep=lambda s: None)]
+    assert "with 3 processes" in caplog.text
     if update:
-        runs.append(pipeline.run_night(spring_db, NIGHT, now=later, update=True, deliver=False, settings=three))
+        runs.append(pipeline.run_night(spring_db, NIGHT, now=later, update=True, settings=three,
+                                       sleep=lambda s: None))
     assert all("wait for workers" in r.timings for r in runs)  # the shares went to forked processes
+    # the same outbox, file for file (written by three processes here, by one there)
+    files = {p.relative_to(one.outbox): p.read_bytes() for p in one.outbox.rglob("*") if p.is_file()}
+    assert len(files) > 10
+    assert {p.relative_to(three.outbox): p.read_bytes() for p in three.outbox.rglob("*") if p.is_file()} == files
     want, got = _stored(serial_db), _stored(spring_db)
     serial_db.dispose()
     # block ids are the same in both databases (same farm file, same order of import)
