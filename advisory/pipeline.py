@@ -39,6 +39,7 @@ import contextlib
 import datetime as dt
 import gc
 import logging
+import os
 import time
 from collections import defaultdict
 from collections.abc import Callable, Mapping, Sequence
@@ -741,8 +742,8 @@ def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mo
 
 
 def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
-           now: dt.datetime, timings: StageTimes | None = None, prepared: Prepared | None = None
-           ) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
+           now: dt.datetime, timings: StageTimes | None = None, prepared: Prepared | None = None,
+           workers: int = 1) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
     """Store forecasts and notices; returns (notices to deliver, skipped messages).
 
     The rows are written with a few bulk INSERT statements (the database hands back
@@ -762,6 +763,8 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         The run's clock (``created_at``).
     prepared : Prepared, optional
         :func:`_prepare` of ``assessments`` when already made (by the run's worker processes).
+    workers : int
+        Processes that may compose the farm summaries of a large run (see :mod:`advisory.forking`).
     """
     if prepared is None:
         prepared = _prepare(session, assessments, revision_mode=revision_mode, timings=timings)
@@ -792,6 +795,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         sent.append(list(block.recipients))
     # One farm summary per farm and run (only for the evening and heat runs and for updates with news).
     summaries = []
+    wanted = []  # (farm id, its assessments, revision, key, recipients) of each summary to compose
     for farm_id, items in by_farm.items():
         farm_assessments = [a for a, _ in items]
         a0 = farm_assessments[0]
@@ -803,13 +807,19 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         key = compose.notice_key(a0.kind + "-summary", a0.farm, None, a0.night, revision) + f":{_batch_tag(items)}"
         if session.scalar(select(Notice.id).where(Notice.key == key)) is not None:
             continue
-        summary = compose.compose_farm(farm_assessments, revision=revision)
         recips = {r.id: r for _, b in items for r in b.recipients}
+        wanted.append((farm_id, farm_assessments, revision, key, list(recips.values())))
+    # Large farms' summaries are composed by several processes (each a farm at a time).
+    from advisory import forking
+
+    share = workers if sum(len(x[1]) for x in wanted) >= PARALLEL_FROM_BLOCKS else 1
+    composed_summaries = forking.fork_map(lambda x: compose.compose_farm(x[1], revision=x[2]), wanted, share)
+    for (farm_id, _, revision, key, recips), summary in zip(wanted, composed_summaries, strict=True):
         rows.append({"key": key, "farm_id": farm_id, "block_id": None, "forecast_id": None,
-                     "kind": a0.kind + "-summary", "night": a0.night, "revision": revision,
-                     "is_update": revision > 0, "level": summary.level, "subject": summary.subject,
-                     "created_at": now, "content": summary})
-        summaries.append(list(recips.values()))
+                     "kind": summary.kind + "-summary", "night": dt.date.fromisoformat(summary.night),
+                     "revision": revision, "is_update": revision > 0, "level": summary.level,
+                     "subject": summary.subject, "created_at": now, "content": summary})
+        summaries.append(recips)
     _lap(timings, "compose summaries")
     notice_ids = _insert_returning_ids(session, Notice, rows)
     to_send = [(StoredNotice(nid, r["key"], r["farm_id"], r["block_id"], r["content"]), recips)
@@ -1100,48 +1110,37 @@ def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, 
     blocks, so the result is the one a single process gives.  A share that fails raises
     here, and the run stores nothing.
     """
+    from advisory import forking
+
     mode = "update" if update else "evening"
     as_of = now if update else None
     n_workers = min(int(workers or 1), len(blocks) // max(1, PARALLEL_FROM_BLOCKS // 2))
-    if n_workers < 2 or not _can_fork(db):
+    if n_workers < 2 or not _shared_database(db) or not forking.can_fork():
         assessments = assess_night(session, blocks, night, as_of=as_of, update=update, timings=timings)
         return assessments, _prepare(session, assessments, revision_mode=mode, timings=timings)
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor
+    bounds = forking.share_bounds(len(blocks), n_workers, OWN_SHARE_WEIGHT)
+    home = os.getpid()
 
-    # This process's share is larger: a worker also loads its blocks again and sends its results
-    # back (pickled), which this process does not (measured: about 1.5 times the work per block).
-    weights = np.array([OWN_SHARE_WEIGHT] + [1.0] * (n_workers - 1))
-    cuts = np.round(np.cumsum(weights)[:-1] / weights.sum() * len(blocks)).astype(int)
-    shares = [list(x) for x in np.split(np.arange(len(blocks)), cuts)]
-    ids = [[blocks[i].id for i in share] for share in shares]
-    ctx = multiprocessing.get_context("fork")
-    with ProcessPoolExecutor(max_workers=n_workers - 1, mp_context=ctx) as pool:
-        futures = [pool.submit(_assess_share, db.url, share_ids, night, now, update) for share_ids in ids[1:]]
-        own = assess_night(session, [blocks[i] for i in shares[0]], night, as_of=as_of, update=update,
-                           timings=timings)
-        own_prepared = _prepare(session, own, revision_mode=mode, timings=timings)
-        results = [f.result() for f in futures]
+    def share(k: int) -> tuple[list[asm.Assessment], Prepared]:
+        a, b = bounds[k]
+        if os.getpid() == home:  # this process: its own session and blocks
+            own = assess_night(session, blocks[a:b], night, as_of=as_of, update=update, timings=timings)
+            return own, _prepare(session, own, revision_mode=mode, timings=timings)
+        return _assess_share(db.url, [x.id for x in blocks[a:b]], night, now, update)
+
+    results = forking.fork_map(share, list(range(n_workers)), n_workers, own_weight=1.0 + 1e-9)
     _lap(timings, "wait for workers")
-    assessments = list(own)
-    prepared = own_prepared
-    for share_assessments, share_prepared in results:
+    assessments: list[asm.Assessment] = []
+    prepared = Prepared([], [], [], [])
+    for share_assessments, p in results:
         assessments += share_assessments
-        prepared = Prepared(prepared.todo + share_prepared.todo, prepared.payloads + share_prepared.payloads,
-                            prepared.composed + share_prepared.composed, prepared.skipped + share_prepared.skipped)
+        prepared = Prepared(prepared.todo + p.todo, prepared.payloads + p.payloads,
+                            prepared.composed + p.composed, prepared.skipped + p.skipped)
     return assessments, prepared
 
 
-def _can_fork(db) -> bool:
-    """Worker processes may be forked: the platform forks, no other thread runs here (a fork
-    would copy its locks mid-use), and the database is one another process can open."""
-    import multiprocessing
-    import threading
-
-    if "fork" not in multiprocessing.get_all_start_methods() or threading.active_count() > 1:
-        return False
-    if multiprocessing.current_process().daemon:  # already a worker
-        return False
+def _shared_database(db) -> bool:
+    """Whether another process can open the run's database (not an in-memory SQLite)."""
     from sqlalchemy.engine import make_url
 
     u = make_url(db.url)
@@ -1204,7 +1203,8 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
                                                          workers=getattr(settings, "workers", 1), timings=timings)
             stored, res.skipped = _store(session, res.assessments,
                                          revision_mode="update" if update else "evening", now=now,
-                                         timings=timings, prepared=prepared)
+                                         timings=timings, prepared=prepared,
+                                         workers=getattr(settings, "workers", 1))
             res.notices = [n.id for n, _ in stored]
             known = {n.id: n.content for n, _ in stored}
             farm_ids = sorted({b.farm_id for b in blocks})

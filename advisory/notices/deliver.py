@@ -70,7 +70,6 @@ from email.utils import formatdate, make_msgid
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 from sqlalchemy import insert, select
 from sqlalchemy.orm import Session
 
@@ -563,89 +562,48 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
     return made
 
 
-def _attempt(j: _Job, settings) -> tuple[str, str, str, bool]:
-    """One delivery attempt: (status, error, address, retry?)."""
-    j.attempt += 1
+def _attempt(j: _Job, settings) -> tuple[str, str, str, bool, int]:
+    """One delivery attempt: (status, error, address, retry?, attempt number)."""
+    attempt = j.attempt + 1
     try:
         address = j.send() or j.address
-        return ("queued" if j.channel == "sms" else "sent"), "", address, False
+        return ("queued" if j.channel == "sms" else "sent"), "", address, False, attempt
     except PermanentError as exc:
-        return "failed", _scrub(str(exc), settings), j.address, False
+        return "failed", _scrub(str(exc), settings), j.address, False, attempt
     except Exception as exc:
-        return "failed", _scrub(f"{type(exc).__name__}: {exc}", settings), j.address, True
+        return "failed", _scrub(f"{type(exc).__name__}: {exc}", settings), j.address, True, attempt
 
 
 #: A delivery with at least this many outbox files to write shares the writing among
 #: ``settings.workers`` processes (see :func:`_attempt_all`).
 FORK_OUTBOX_FROM = 1000
 
-# The jobs a forked outbox writer works on (set just before forking; the writers see it
-# in their copy of this process's memory, so the notices need not be sent to them).
-_FORKED_JOBS: list[_Job] = []
-
-
-def _outbox_share(start: int, stop: int) -> list[tuple[str, str, str, bool]]:
-    """A forked writer's share of :data:`_FORKED_JOBS` (outbox jobs only)."""
-    jobs = _FORKED_JOBS[start:stop]
-    return [_attempt(j, _FORKED_SETTINGS[0]) for j in jobs]
-
-
-_FORKED_SETTINGS: list = [None]
-
-
-def _can_fork() -> bool:
-    import multiprocessing
-
-    return ("fork" in multiprocessing.get_all_start_methods() and threading.active_count() == 1
-            and not multiprocessing.current_process().daemon)
-
 
 def _attempt_all(jobs: list[_Job], settings) -> list[tuple[str, str, str, bool]]:
-    """One attempt for each job, results in the order of the jobs.
+    """One attempt for each job (its attempt count raised), results in the order of the jobs.
 
     The outbox files of a large batch (:data:`FORK_OUTBOX_FROM` or more) are rendered
-    and written by ``settings.workers`` processes at once: this one and forked copies
-    of it, each writing its own consecutive share (file names never clash: each notice
-    has its own).  Only the outcomes come back; the delivery rows are written here.
-    If a writer dies, its share is written again here (an outbox write is atomic and
-    idempotent).  Mail, webhooks and text messages always go from this process, in order.
+    and written by ``settings.workers`` processes at once (:func:`advisory.forking.fork_map`),
+    each its own consecutive share; file names never clash (each notice has its own) and
+    a write is atomic, so a share done again after a worker died changes nothing.  Mail,
+    webhooks and text messages always go from this process, in order.
     """
-    out: list[tuple[str, str, str, bool] | None] = [None] * len(jobs)
+    from advisory import forking
+
+    out: list[tuple | None] = [None] * len(jobs)
     boxed = [k for k, j in enumerate(jobs) if j.channel == "outbox"]
     workers = int(getattr(settings, "workers", 1) or 1)
-    if workers > 1 and len(boxed) >= FORK_OUTBOX_FROM and _can_fork():
-        import multiprocessing
-        from concurrent.futures import ProcessPoolExecutor
-        from concurrent.futures.process import BrokenProcessPool
-
-        _FORKED_JOBS[:] = [jobs[k] for k in boxed]
-        _FORKED_SETTINGS[0] = settings
-        cuts = np.linspace(0, len(boxed), workers + 1).round().astype(int)
+    if workers > 1 and len(boxed) >= FORK_OUTBOX_FROM and forking.can_fork():
         log.info("writing %d outbox notices with %d processes", len(boxed), workers)
-        try:
-            with ProcessPoolExecutor(max_workers=workers - 1, mp_context=multiprocessing.get_context("fork")) as pool:
-                futures = [(a, b, pool.submit(_outbox_share, int(a), int(b)))
-                           for a, b in zip(cuts[1:-1], cuts[2:], strict=True)]
-                for k in boxed[:cuts[1]]:
-                    out[k] = _attempt(jobs[k], settings)
-                for a, b, fut in futures:
-                    try:
-                        results = fut.result()
-                    except BrokenProcessPool:
-                        log.warning("an outbox writer stopped; writing its share here")
-                        results = [_attempt(jobs[k], settings) for k in boxed[a:b]]
-                    else:
-                        for k in boxed[a:b]:
-                            jobs[k].attempt += 1  # counted in the writer's copy only
-                    for k, res in zip(boxed[a:b], results, strict=True):
-                        out[k] = res
-        finally:
-            _FORKED_JOBS.clear()
-            _FORKED_SETTINGS[0] = None
+        results = forking.fork_map(lambda j: _attempt(j, settings), [jobs[k] for k in boxed], workers)
+        for k, res in zip(boxed, results, strict=True):
+            out[k] = res
     for k, j in enumerate(jobs):
         if out[k] is None:
             out[k] = _attempt(j, settings)
-    return out
+    for j, res in zip(jobs, out, strict=True):
+        j.attempt = res[4]
+    return [res[:4] for res in out]
 
 
 _DELIVERY_COLUMNS = ("notice_id", "recipient_id", "channel", "address", "attempt", "status", "attempted_at", "error")

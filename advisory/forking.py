@@ -1,0 +1,98 @@
+"""Share the CPU-bound part of a large run among forked copies of this process.
+
+A nightly run for thousands of blocks is pure Python for most of its time
+(forecast arrays, then one notice per block), so one process uses one core.
+:func:`fork_map` cuts a list of work items into consecutive shares: this process
+does the first, forked copies of it the others.  A fork sees this process's
+memory as it was, so the items and the function are not sent anywhere; only
+the results come back (pickled).  The copies never write to the database; the
+caller stores the results, so a run stays one transaction.
+
+Forking is used only where it is safe: the platform forks, no other thread runs
+in this process (a fork would copy the locks another thread holds), and this
+process is not itself a worker.  Otherwise, or for a single worker, the work is
+done here, in order, with the same results.
+"""
+
+from __future__ import annotations
+
+import logging
+import multiprocessing
+import threading
+from collections.abc import Callable, Sequence
+from typing import Any
+
+log = logging.getLogger(__name__)
+
+#: (function, items) of the fork_map now running; the forked copies read it from their memory.
+_WORK: list[tuple[Callable[[Any], Any], Sequence[Any]]] = []
+
+
+def can_fork() -> bool:
+    """Whether worker processes may be forked from this process now."""
+    return ("fork" in multiprocessing.get_all_start_methods() and threading.active_count() == 1
+            and not multiprocessing.current_process().daemon and not _WORK)
+
+
+def share_bounds(n: int, workers: int, own_weight: float = 1.0) -> list[tuple[int, int]]:
+    """Consecutive ``(start, stop)`` shares of ``n`` items; the first is ``own_weight`` times the others."""
+    weights = [float(own_weight)] + [1.0] * (workers - 1)
+    total = sum(weights)
+    cuts, acc = [0], 0.0
+    for w in weights[:-1]:
+        acc += w
+        cuts.append(round(acc / total * n))
+    cuts.append(n)
+    return [(a, b) for a, b in zip(cuts[:-1], cuts[1:], strict=True)]
+
+
+def _run_share(start: int, stop: int) -> list:
+    fn, items = _WORK[0]
+    return [fn(x) for x in items[start:stop]]
+
+
+def fork_map(fn: Callable[[Any], Any], items: Sequence[Any], workers: int, *, own_weight: float = 1.0) -> list:
+    """``[fn(x) for x in items]``, computed by ``workers`` processes (this one and forked copies).
+
+    Parameters
+    ----------
+    fn : callable
+        Called once per item; in a copy its side effects stay in that copy, so it
+        must return everything the caller needs (results must pickle).
+    items : sequence
+    workers : int
+        Processes in all, this one included; 1 (or a process that may not fork)
+        computes everything here.
+    own_weight : float
+        This process's share relative to a copy's (a copy also pays for sending
+        its results back).
+
+    Returns
+    -------
+    list
+        The results, in the order of ``items``.  An exception in a copy is raised
+        here; a copy that dies has its share computed again here.
+    """
+    n = len(items)
+    workers = min(int(workers or 1), n)
+    if workers < 2 or not can_fork():
+        return [fn(x) for x in items]
+    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures.process import BrokenProcessPool
+
+    bounds = share_bounds(n, workers, own_weight)
+    _WORK.append((fn, items))
+    try:
+        with ProcessPoolExecutor(max_workers=workers - 1, mp_context=multiprocessing.get_context("fork")) as pool:
+            futures = [(a, b, pool.submit(_run_share, a, b)) for a, b in bounds[1:]]
+            a0, b0 = bounds[0]
+            out = [fn(x) for x in items[a0:b0]]
+            for a, b, future in futures:
+                try:
+                    out += future.result()
+                except BrokenProcessPool:
+                    log.warning("a worker process stopped; doing its share (%d items) here", b - a)
+                    out += [fn(x) for x in items[a:b]]
+    finally:
+        _WORK.clear()
+    return out
