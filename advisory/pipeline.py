@@ -325,6 +325,22 @@ def _cdf(fc: NightForecast, idx: np.ndarray) -> Callable[[np.ndarray], np.ndarra
     return cdf
 
 
+def _table_quantiles(fc: NightForecast, idx: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    """Quantiles at probabilities q (k,) from the forecast's quantile table, shape (n, k): the exact
+    inverse of :func:`_cdf` (linear between the table's levels; q within the table's levels)."""
+    from advisory.forecast.result import LEVELS
+
+    table = np.asarray(fc.quantiles_c[idx], float)
+
+    def quantile(q):
+        q = np.clip(np.asarray(q, float), LEVELS[0], LEVELS[-1])
+        j = np.clip(np.searchsorted(LEVELS, q, side="right") - 1, 0, len(LEVELS) - 2)
+        f = (q - LEVELS[j]) / (LEVELS[j + 1] - LEVELS[j])
+        return table[:, j] * (1.0 - f) + table[:, j + 1] * f
+
+    return quantile
+
+
 def _table_prob_below_sorted(q: np.ndarray, x: np.ndarray) -> np.ndarray:
     """:func:`~advisory.forecast.result.table_prob_below` for rows of finite, sorted quantiles ``q`` (n, k)
     at thresholds ``x`` (n, g); returns (n, g)."""
@@ -539,7 +555,8 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
         for group in _night_groups(fc, idx):
             curves = _curves_on_grid(fc, states, group, elev)
             forecast = frost.MinTempForecast(fc.quantile(0.1)[group], fc.quantile(0.5)[group],
-                                             fc.quantile(0.9)[group], cdf=_cdf(fc, group))
+                                             fc.quantile(0.9)[group], cdf=_cdf(fc, group),
+                                             quantile=_table_quantiles(fc, group))
             setups = []
             for i in group:
                 b = blocks[i]

@@ -218,12 +218,16 @@ class MinTempForecast:
         ``cdf(x) -> P(min <= x)`` for ``x`` of shape (n, k) [°C], returning the
         same shape, non-decreasing along the last axis.  When absent, a
         two-piece normal through the three quantiles is used.
+    quantile : callable, optional
+        ``quantile(q) -> (n, k)``: the inverse of ``cdf`` at probabilities ``q``
+        (k,) [°C], when known exactly; otherwise ``cdf`` is inverted numerically.
     """
 
     p10_c: np.ndarray
     p50_c: np.ndarray
     p90_c: np.ndarray
     cdf: Callable[[np.ndarray], np.ndarray] | None = None
+    quantile: Callable[[np.ndarray], np.ndarray] | None = None
 
     def __post_init__(self):
         for name in ("p10_c", "p50_c", "p90_c"):
@@ -264,6 +268,8 @@ class MinTempForecast:
             z = ndtri(q)[None, :]
             sig = np.where(z < 0, lo[:, None], hi[:, None])
             return self.p50_c[:, None] + sig * z
+        if self.quantile is not None:
+            return np.asarray(self.quantile(q), dtype=float)
         # Invert a user CDF on a grid spanning well beyond the quantiles.
         spread = np.maximum(self.p90_c - self.p10_c, 0.5)
         x = np.linspace(self.p10_c - 4 * spread, self.p90_c + 4 * spread, 401, axis=1)  # (n, g)
