@@ -591,6 +591,9 @@ def _data_section(a: Assessment, f: _Fmt) -> Section:
         if a.training_nights:
             s += f", fitted on {a.training_nights} {'nights' if a.kind != 'heat' else 'days'} at this station"
         sec.items.append(s)
+    curve_model = (a.details or {}).get("curve_model") if a.kind == "heat" else None
+    if isinstance(curve_model, str) and curve_model.strip():
+        sec.items.append("Hourly curve: " + _one_line(curve_model))
     if a.sunset_utc or a.sunrise_utc:
         parts = []
         if a.sunset_utc:

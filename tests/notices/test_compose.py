@@ -212,6 +212,15 @@ def test_heat_estimated_maximum_is_said():
     assert "Estimated from this morning's readings" in n.lead[0]
 
 
+def test_heat_note_says_how_the_curve_was_drawn():
+    a = samples.heat_assessment()
+    a.details = {**a.details, "curve_model": "Curve drawn through\nthis morning's 07:30 reading"}
+    data = next(s for s in compose_block(a).sections if s.key == "data")
+    assert "Hourly curve: Curve drawn through this morning's 07:30 reading" in data.items
+    assert not any(i.startswith("Hourly curve") for s in compose_block(samples.heat_assessment()).sections
+                   for i in s.items)
+
+
 def test_unknown_level_key_is_shown_tidily():
     n = compose_block(samples.frost_assessment(level="very_odd", level_rank=9))
     assert n.level_name == "Very odd"
