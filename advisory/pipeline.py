@@ -1215,6 +1215,13 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
         with _batch_gc(), db.transaction() as session:
             timings.lap("start")
             blocks = _load_blocks(session, block_ids, farm, names, equipment=False)
+            farm_ids = sorted({b.farm_id for b in blocks})
+            done_before: list[str] = []
+            if not update:  # a block already assessed tonight is not assessed again (a rerun)
+                before = _previous_revisions(session, [b.id for b in blocks], night, "frost")
+                done_before = [f"{b.name}: frost {night} already assessed (revision {before[b.id]})"
+                               for b in blocks if b.id in before]
+                blocks = [b for b in blocks if b.id not in before]
             timings.lap("load blocks")
             res.assessments, prepared = _assess_prepared(db, session, blocks, night, now=now, update=update,
                                                          workers=getattr(settings, "workers", 1), timings=timings)
@@ -1222,9 +1229,9 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
                                          revision_mode="update" if update else "evening", now=now,
                                          timings=timings, prepared=prepared,
                                          workers=getattr(settings, "workers", 1))
+            res.skipped = done_before + res.skipped
             res.notices = [n.id for n, _ in stored]
             known = {n.id: n.content for n, _ in stored}
-            farm_ids = sorted({b.farm_id for b in blocks})
             _mark_run(session, key, "stored", now)
         timings.lap("commit")
     else:  # stored before a crash or a stop: only delivery is left
