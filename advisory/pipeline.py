@@ -48,7 +48,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import func, insert, select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session, selectinload
 
 from advisory import assessment as asm
@@ -61,7 +61,7 @@ from advisory.ingest.observations import load_observations_many
 from advisory.notices import compose
 from advisory.physics import moisture, sun
 from advisory.risk import frost
-from advisory.store import jsoncodec
+from advisory.store import bulk, jsoncodec
 from advisory.store.schema import (
     Block,
     Calibration,
@@ -850,46 +850,8 @@ _ROW_KEYS = {"forecasts": ("block_id", "kind", "night", "revision"), "notices": 
 
 
 def _insert_returning_ids(session: Session, model, rows: list[dict]) -> list[int]:
-    """Bulk ``INSERT`` of ``rows`` (column defaults and types applied); the new ids in the order of ``rows``.
-
-    On SQLite, rows that give every column are written with one ``executemany`` of the
-    driver (values converted by the columns' own SQLAlchemy types, so they are stored
-    exactly as the ORM stores them; several times faster than SQLAlchemy's per-row
-    statement building), and the ids are then read back by the table's unique key.
-    """
-    if not rows:
-        return []
-    table = model.__table__
-    cols = [c for c in table.columns if not c.primary_key]
-    conn = session.connection()
-    keys = _ROW_KEYS.get(table.name)
-    if (conn.dialect.name == "sqlite" and keys is not None
-            and all(len(r) == len(cols) for r in rows) and all(c.key in rows[0] for c in cols)):
-        procs = [c.type._cached_bind_processor(conn.dialect) for c in cols]
-        sql = (f"INSERT INTO {table.name} ({', '.join(c.name for c in cols)}) "
-               f"VALUES ({', '.join('?' * len(cols))})")
-        names = [c.key for c in cols]
-        conn.exec_driver_sql(sql, [tuple(v if p is None else p(v) for v, p in zip(
-            (r[n] for n in names), procs, strict=True)) for r in rows])
-        return _ids_by_key(session, table, keys, rows)
-    ids: list[int] = []
-    for chunk in _chunked(rows, 2000):
-        ids += session.scalars(insert(model).returning(model.id, sort_by_parameter_order=True), chunk).all()
-    return ids
-
-
-def _ids_by_key(session: Session, table, keys: tuple[str, ...], rows: list[dict]) -> list[int]:
-    """Ids of ``rows`` (just inserted) found by their unique ``keys``, in the order of ``rows``."""
-    first = table.c[keys[0]]
-    found: dict[tuple, int] = {}
-    for chunk in _chunked(sorted({r[keys[0]] for r in rows})):
-        q = select(table.c.id, *(table.c[k] for k in keys)).where(first.in_(chunk))
-        if len(keys) > 1:  # narrow to this batch's nights and kinds
-            for k in keys[1:3]:
-                q = q.where(table.c[k].in_(sorted({r[k] for r in rows})))
-        for row in session.execute(q):
-            found[tuple(row[1:])] = row[0]
-    return [found[tuple(r[k] for k in keys)] for r in rows]
+    """Bulk ``INSERT`` of ``rows``; the new ids in the order of ``rows`` (see :func:`advisory.store.bulk.insert_rows`)."""
+    return bulk.insert_rows(session, model, rows, _ROW_KEYS.get(model.__table__.name))
 
 
 def _batch_tag(items) -> str:

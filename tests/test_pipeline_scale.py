@@ -231,8 +231,10 @@ def test_driver_level_inserts_store_what_the_orm_stores(spring_db, demo_farm, tm
         m.setattr(pipeline, "_ROW_KEYS", {})  # no key to find the ids by: the ORM's bulk insert
         pipeline.run_night(orm_db, NIGHT, now=NOW, deliver=False)
     looked_up = []
-    real = pipeline._ids_by_key
-    monkeypatch.setattr(pipeline, "_ids_by_key", lambda s, t, k, r: looked_up.append(t.name) or real(s, t, k, r))
+    from advisory.store import bulk
+
+    real = bulk.ids_by_key
+    monkeypatch.setattr(bulk, "ids_by_key", lambda s, t, k, r: looked_up.append(t.name) or real(s, t, k, r))
     pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False)
     assert looked_up == ["forecasts", "notices"]  # the driver-level path was taken
     orm_db.dispose()

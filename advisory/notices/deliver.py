@@ -70,7 +70,7 @@ from email.utils import formatdate, make_msgid
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import insert, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from advisory import __version__
@@ -610,18 +610,19 @@ _DELIVERY_COLUMNS = ("notice_id", "recipient_id", "channel", "address", "attempt
 
 
 def _insert_deliveries(session: Session, rows: list[Delivery]) -> None:
-    """Write the attempts with bulk INSERTs (one per 2,000 rows) and give each row its new id.
+    """Write the attempts in bulk (:func:`advisory.store.bulk.insert_rows`) and give each row its new id.
 
     The rows stay outside the session (nothing else changes them); what the caller
-    added before is flushed first.
+    added before is flushed first.  A notice, recipient, channel and attempt number
+    identify an attempt.
     """
+    from advisory.store import bulk
+
     session.flush()
-    for k in range(0, len(rows), 2000):
-        chunk = rows[k:k + 2000]
-        ids = session.scalars(insert(Delivery).returning(Delivery.id, sort_by_parameter_order=True),
-                              [{c: getattr(d, c) for c in _DELIVERY_COLUMNS} for d in chunk]).all()
-        for d, new_id in zip(chunk, ids, strict=True):
-            d.id = new_id
+    ids = bulk.insert_rows(session, Delivery, [{c: getattr(d, c) for c in _DELIVERY_COLUMNS} for d in rows],
+                           key=("notice_id", "recipient_id", "channel", "attempt"))
+    for d, new_id in zip(rows, ids, strict=True):
+        d.id = new_id
 
 
 def save_notice(session: Session, notice: BlockNotice | FarmSummary, *, farm_id: int, block_id: int | None = None,
