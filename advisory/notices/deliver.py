@@ -595,8 +595,10 @@ def _attempt_all(jobs: list[_Job], settings) -> list[tuple[str, str, str, bool]]
     workers = int(getattr(settings, "workers", 1) or 1)
     if workers > 1 and len(boxed) >= FORK_OUTBOX_FROM and forking.can_fork():
         log.info("writing %d outbox notices with %d processes", len(boxed), workers)
-        results = forking.fork_map(lambda j: _attempt(j, settings), [jobs[k] for k in boxed], workers)
-        for k, res in zip(boxed, results, strict=True):
+        # dealt out like cards, so that the few large farm summaries do not all fall in one share
+        dealt = [k for s in range(workers) for k in boxed[s::workers]]
+        results = forking.fork_map(lambda j: _attempt(j, settings), [jobs[k] for k in dealt], workers)
+        for k, res in zip(dealt, results, strict=True):
             out[k] = res
     for k, j in enumerate(jobs):
         if out[k] is None:
