@@ -54,6 +54,12 @@ How a block's day is assessed (:func:`assess_day`), all blocks as arrays:
    sprinklers, heat index, WBGT estimate, safer hours for heavy work.  The
    block's level is the higher of the crop's and the crew's.
 
+Each morning run first checks the forecasts of the days before
+(:func:`check_heat_days`, by hand :func:`verify_day`): the forecast high
+against the highest reading of the block's station from sunrise to sunset,
+stored once as a ``Verification`` of kind ``heat``; ``advisory verify report``
+turns these into the skill to date.
+
 References
 ----------
 .. [1] Allen, R. G., Pereira, L. S., Raes, D. & Smith, M. (1998) Crop
@@ -75,8 +81,8 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import select
-from sqlalchemy.orm import Session
+from sqlalchemy import exists, func, select
+from sqlalchemy.orm import Session, selectinload
 
 from advisory import assessment as asm
 from advisory import settings as settings_mod
@@ -88,6 +94,7 @@ from advisory.notices import words as w
 from advisory.physics import moisture, sun
 from advisory.pipeline import (
     RunResult,
+    _chunked,
     _deliver,
     _load_blocks,
     _mark_run,
@@ -96,7 +103,7 @@ from advisory.pipeline import (
     _store,
 )
 from advisory.risk import heat as risk_heat
-from advisory.store.schema import Block, Calibration, Farm, Forecast, Notice, Outlook, Station
+from advisory.store.schema import Block, Calibration, Farm, Forecast, Notice, Outlook, Station, Verification
 
 log = logging.getLogger("advisory.heat_pipeline")
 
@@ -1076,8 +1083,14 @@ def _cooling_step(crop, k: int, cool: dict, b: Block, estimated: bool, units: st
 
 def run_heat(db, day: dt.date, block_ids: Sequence[int] | None = None, *, now: dt.datetime | None = None,
              key: str | None = None, farm: str | None = None, names: Sequence[str] | None = None,
-             deliver: bool = True, settings=None, sleep: Callable[[float], object] | None = None) -> RunResult:
-    """The morning heat run for a day: assess, store, notify.
+             deliver: bool = True, settings=None, sleep: Callable[[float], object] | None = None,
+             check_days: int | None = None) -> RunResult:
+    """The morning heat run for a day: check the past days, assess, store, notify.
+
+    Before the day is assessed, the heat forecasts of the selected blocks for
+    the :data:`CHECK_LOOKBACK_DAYS` days before it that have no check yet are
+    checked against the observed high (:func:`check_heat_days`), in the same
+    transaction as the new forecasts.
 
     Parameters
     ----------
@@ -1096,11 +1109,15 @@ def run_heat(db, day: dt.date, block_ids: Sequence[int] | None = None, *, now: d
     settings : advisory.settings.Settings, optional
     sleep : callable, optional
         Pause between delivery retries (a no-op in tests and the demo).
+    check_days : int, optional
+        Days before ``day`` whose unchecked forecasts are checked first
+        (default :data:`CHECK_LOOKBACK_DAYS`; 0 checks none).
 
     Returns
     -------
     advisory.pipeline.RunResult
-        ``kind`` "heat", ``night`` the day.
+        ``kind`` "heat", ``night`` the day; ``verified`` lists the earlier
+        forecasts checked by this run (see :func:`check_heat_days`).
     """
     now = now or dt.datetime.now(dt.UTC)
     settings = settings or settings_mod.load(db.url)
@@ -1113,6 +1130,12 @@ def run_heat(db, day: dt.date, block_ids: Sequence[int] | None = None, *, now: d
         with db.transaction() as session:
             blocks = _load_blocks(session, block_ids, farm, names)
             farm_ids = sorted({b.farm_id for b in blocks})
+            lookback = CHECK_LOOKBACK_DAYS if check_days is None else int(check_days)
+            if blocks and lookback > 0:      # each morning: how did the last days' forecasts do?
+                past = [day - dt.timedelta(days=k) for k in range(1, lookback + 1)]
+                res.verified, not_checked = check_heat_days(session, past, [b.id for b in blocks], now=now)
+                for msg in not_checked:
+                    log.info("heat check: %s", msg)
             done = dict(session.execute(select(Forecast.block_id, Forecast.revision).where(
                 Forecast.kind == "heat", Forecast.night == day,
                 Forecast.block_id.in_([b.id for b in blocks]))).all()) if blocks else {}
@@ -1131,6 +1154,236 @@ def run_heat(db, day: dt.date, block_ids: Sequence[int] | None = None, *, now: d
         res.deliveries = _deliver(db, _pending_notices(db, day, "heat", farm_ids), settings, sleep=sleep)
     _mark_run(db, key, "finished", now)
     return res
+
+
+# --------------------------------------------------------------------------- the morning check
+
+#: Days before a heat run's day whose forecasts the run checks first, if not checked yet [days].
+CHECK_LOOKBACK_DAYS = 7
+#: The daylight window counts as read when readings come within this of both ends and no gap
+#: between them is longer [min] (the rule of :func:`advisory.pipeline.observed_minimum`).
+CHECK_MAX_GAP_MIN = 90.0
+#: A day is checked from its sunset + this on [h].
+CHECK_AFTER_SUNSET_H = 1.0
+
+
+def observed_maximum(frame: pd.DataFrame | None, start: pd.Timestamp, end: pd.Timestamp, *,
+                     max_gap_min: float = CHECK_MAX_GAP_MIN) -> float | None:
+    """Highest QC-passed air temperature in [start, end], or None if the window is not covered.
+
+    The counterpart of :func:`advisory.pipeline.observed_minimum`, with the
+    same coverage rule.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame or None
+        A station's readings (aware UTC index, ``air_temp_c`` [°C], QC-failed
+        values already NaN as :func:`advisory.ingest.observations.load_observations_many`
+        returns them).
+    start, end : pandas.Timestamp
+        The window (aware), both ends included.
+    max_gap_min : float
+        The window counts as covered when a reading lies within this of
+        each end [min] and no two successive readings are further apart.
+
+    Returns
+    -------
+    float or None
+        The highest reading in the window [°C]; None when the window is not covered.
+    """
+    if frame is None or not len(frame) or "air_temp_c" not in frame:
+        return None
+    gap = pd.Timedelta(minutes=max_gap_min)
+    s = frame["air_temp_c"].dropna()
+    s = s[(s.index >= start - gap) & (s.index <= end + pd.Timedelta(minutes=1))]
+    inside = s[(s.index >= start) & (s.index <= end)]
+    if len(inside) == 0:
+        return None
+    times = s.index.as_unit("ns")
+    if times.min() > start + gap or times.max() < end - gap:
+        return None
+    steps_min = np.diff(times.asi8) / 6e10
+    if len(steps_min) and steps_min.max() > max_gap_min:
+        return None
+    return float(inside.max())
+
+
+def daylight_window(payload: dict) -> tuple[pd.Timestamp, pd.Timestamp]:
+    """The daylight of a stored heat forecast: its sunrise to its sunset (aware UTC).
+
+    Where the sun does not rise or set that day (polar day), the missing end is
+    the local midnight that starts or ends the day.
+    """
+    day = dt.date.fromisoformat(str(payload["night"]))
+    tz = payload.get("farm_tz") or "UTC"
+    rise, down = _ts(payload.get("sunrise_utc")), _ts(payload.get("sunset_utc"))
+    start = rise if rise is not None else _local_midnight_utc(day, tz)
+    end = down if down is not None else _local_midnight_utc(day + dt.timedelta(days=1), tz)
+    return start, end
+
+
+def heat_flags(payload: dict) -> dict:
+    """What a stored heat note told the grower, for the check.
+
+    Returns
+    -------
+    dict
+        ``warned``: the note flagged fruit sunburn risk (crop level above
+        quiet) or advised evaporative cooling -- the warning scored against the
+        sunburn event; ``crew_warned``: the crew level was above quiet;
+        ``threshold_c``: the crop's sunburn air temperature [°C] (None if the
+        note has none); ``estimated``: the high was estimated from the morning
+        readings (no outlook).
+    """
+    details = payload.get("details") or {}
+    crop_level = details.get("crop_level", "quiet")
+    cooling = any(bool(step.get("advised")) for step in payload.get("plan") or []
+                  if step.get("method") == "evaporative_cooling")
+    return {"warned": bool(crop_level != "quiet" or cooling),
+            "crew_warned": details.get("crew_level", "quiet") != "quiet",
+            "threshold_c": _f((details.get("sunburn") or {}).get("threshold_c")),
+            "estimated": bool(details.get("max_estimated"))}
+
+
+def check_heat_days(session: Session, days: Sequence[dt.date], block_ids: Sequence[int] | None = None, *,
+                    now: dt.datetime) -> tuple[list[dict], list[str]]:
+    """Check the unchecked heat forecasts of ``days`` against the observed high; add the rows to the session.
+
+    Every revision-0 heat forecast with status ok, no ``Verification`` yet and
+    a day that is over (sunset + :data:`CHECK_AFTER_SUNSET_H` before ``now``)
+    gets a ``Verification`` of kind ``"heat"``: the forecast high (median),
+    the observed maximum over the day's daylight (:func:`observed_maximum`,
+    sunrise to sunset) and their difference, with ``detail`` holding the
+    80 % range (``p10_c``, ``p90_c``), ``level``, ``warned`` and
+    ``crew_warned`` (:func:`heat_flags`), ``threshold_c``, ``event`` (the
+    observed high reached the crop's sunburn air temperature), ``estimated``
+    and ``model``.  Checked forecasts are never checked again.
+
+    Parameters
+    ----------
+    session : Session
+        The caller commits.
+    days : sequence of date
+        Local dates of the days to check.
+    block_ids : sequence of int, optional
+        Only these blocks (default all).
+    now : datetime
+        The clock: days not over by then are left for later; readings from
+        then on are not used.
+
+    Returns
+    -------
+    checked : list of dict
+        One per new row: ``block``, ``day``, ``forecast_c``, ``p10_c``,
+        ``p90_c``, ``observed_c``, ``error_c``, ``event``, ``warned``,
+        ``estimated``.
+    not_checked : list of str
+        Why a forecast was left unchecked (day not over, readings missing).
+    """
+    days = sorted(set(days))
+    if not days:
+        return [], []
+    now_ts = _ts(now)
+    base = (select(Forecast).options(selectinload(Forecast.block))
+            .where(Forecast.kind == "heat", Forecast.night.in_(days), Forecast.revision == 0,
+                   Forecast.status == asm.STATUS_OK,
+                   ~exists().where(Verification.forecast_id == Forecast.id)))
+    if block_ids is None:
+        forecasts = list(session.scalars(base))
+    else:
+        forecasts = [f for chunk in _chunked(list(block_ids)) for f in session.scalars(
+            base.where(Forecast.block_id.in_(chunk)))]
+    forecasts.sort(key=lambda f: (f.night, f.block.name, f.id))
+    todo, not_checked = [], []
+    for f in forecasts:
+        p = f.payload or {}
+        start, end = daylight_window(p)
+        ready = end + pd.Timedelta(hours=CHECK_AFTER_SUNSET_H)
+        if ready > now_ts:
+            local = ready.tz_convert(p.get("farm_tz") or "UTC")
+            not_checked.append(f"{f.block.name}: heat {f.night}: the day is not over yet "
+                               f"(checked from {local:%Y-%m-%d %H:%M %Z})")
+            continue
+        todo.append((f, p, start, end))
+    if not todo:
+        return [], not_checked
+    gap = pd.Timedelta(minutes=CHECK_MAX_GAP_MIN + 1)
+    t0 = min(x[2] for x in todo) - gap
+    t1 = min(max(x[3] for x in todo) + pd.Timedelta(minutes=2), now_ts)
+    obs = load_observations_many(session, sorted({f.block.station_id for f, *_ in todo}), t0, t1,
+                                 columns=("air_temp_c",))
+    highs: dict[tuple, float | None] = {}
+    checked = []
+    for f, p, start, end in todo:
+        where = (f.block.station_id, start, end)
+        if where not in highs:    # blocks of a station share the day's reading
+            highs[where] = observed_maximum(obs.get(f.block.station_id), start, end)
+        obs_max = highs[where]
+        if obs_max is None:
+            tz = p.get("farm_tz") or "UTC"
+            not_checked.append(f"{f.block.name}: heat {f.night}: the readings do not cover the daylight hours "
+                               f"({start.tz_convert(tz):%H:%M} to {end.tz_convert(tz):%H:%M}; no gap over "
+                               f"{CHECK_MAX_GAP_MIN:.0f} min allowed)")
+            continue
+        flags = heat_flags(p)
+        thr = flags["threshold_c"]
+        event = thr is not None and obs_max >= thr
+        err = None if f.min_p50_c is None else f.min_p50_c - obs_max
+        session.add(Verification(
+            forecast_id=f.id, block_id=f.block_id, kind="heat", night=f.night, observed_c=obs_max,
+            forecast_c=f.min_p50_c, error_c=err, verified_at=now,
+            detail={"p10_c": f.min_p10_c, "p90_c": f.min_p90_c, "level": f.level, "warned": flags["warned"],
+                    "crew_warned": flags["crew_warned"], "threshold_c": thr, "event": bool(event),
+                    "estimated": flags["estimated"], "model": f.model}))
+        checked.append({"block": f.block.name, "day": f.night, "forecast_c": f.min_p50_c, "p10_c": f.min_p10_c,
+                        "p90_c": f.min_p90_c, "observed_c": obs_max, "error_c": err, "event": bool(event),
+                        "warned": flags["warned"], "estimated": flags["estimated"]})
+    session.flush()
+    return checked, not_checked
+
+
+def verify_day(db, day: dt.date, block_ids: Sequence[int] | None = None, *, now: dt.datetime | None = None,
+               key: str | None = None) -> RunResult:
+    """Check a day's heat forecasts against the observed high (see :func:`check_heat_days`).
+
+    Parameters
+    ----------
+    db : Database
+    day : date
+        Local date of the day.
+    block_ids : sequence of int, optional
+        Only these blocks (default all).
+    now : datetime, optional
+        The clock (default the real time).
+    key : str, optional
+        A run key: a finished keyed run is not run again.
+
+    Returns
+    -------
+    advisory.pipeline.RunResult
+        ``kind`` "heat-check", ``verified`` the new rows (dicts as
+        :func:`check_heat_days` returns them), ``skipped`` why forecasts were
+        left unchecked.  A rerun adds nothing.
+    """
+    now = now or dt.datetime.now(dt.UTC)
+    res = RunResult(kind="heat-check", night=day)
+    if _start_run(db, key, "heat-check", day, now) == "finished":
+        res.skipped.append(f"run {key} already done")
+        return res
+    with db.transaction() as session:
+        res.verified, res.skipped = check_heat_days(session, [day], block_ids, now=now)
+        _mark_run(session, key, "finished", now)
+    return res
+
+
+def checked_count(db, day: dt.date, block_ids: Sequence[int] | None = None) -> int:
+    """How many of the day's heat forecasts already have their check."""
+    with db.transaction() as s:
+        q = (select(func.count()).select_from(Verification)
+             .where(Verification.kind == "heat", Verification.night == day))
+        if block_ids is not None:
+            q = q.where(Verification.block_id.in_(list(block_ids)))
+        return int(s.scalar(q) or 0)
 
 
 def _today(db, farm: str | None, now: dt.datetime | None = None) -> dt.date:
@@ -1158,10 +1411,25 @@ def heat_run_text(db, day: dt.date | None = None, *, farm: str | None = None, na
                      f"{', '.join(estimated)}: the high there is an estimate (see each block's note)")
     for msg in res.skipped:
         lines.append(f"skipped: {msg}")
+    if res.verified:
+        lines.append(check_summary_line(res.verified))
     if res.deliveries:
         lines.append("deliveries: " + ", ".join(f"{k} {v}" for k, v in sorted(res.deliveries.items())))
         lines.append(f"outbox: {settings.outbox}")
     return "\n".join(lines)
+
+
+def check_summary_line(checked: list[dict]) -> str:
+    """One line on forecasts just checked against the observed high (``checked`` from :func:`check_heat_days`)."""
+    days = sorted({c["day"] for c in checked})
+    span = f"{days[0]}" if len(days) == 1 else f"{days[0]} to {days[-1]}"
+    err = np.array([c["error_c"] for c in checked if c["error_c"] is not None], float)
+    inside = sum(1 for c in checked if c["p10_c"] is not None and c["p90_c"] is not None
+                 and c["p10_c"] <= c["observed_c"] <= c["p90_c"])
+    miss = f"typical miss {np.mean(np.abs(err)):.1f} °C, mean {np.mean(err):+.1f} °C" if len(err) else "no high"
+    return (f"checked heat day {span}: {len(checked)} forecast high{'s' if len(checked) != 1 else ''} against "
+            f"the observed high ({miss} (forecast - observed); {inside} of {len(checked)} inside the "
+            "8-in-10 range)")
 
 
 # --------------------------------------------------------------------------- outlooks
@@ -1341,7 +1609,8 @@ def demo_heat(paths, db, echo=print, *, demo_farm: Path | None = None) -> str:
     str
         One line per day (highs and where they came from, levels, cooling),
         then the farm summary of the day without an outlook and one block's
-        full note that day, ready to print.
+        full note that day, then the morning checks of the week (one line per
+        day) and the heat skill report, ready to print.
     """
     from advisory import reports
     from advisory.ingest.observations import import_file
@@ -1376,8 +1645,54 @@ def demo_heat(paths, db, echo=print, *, demo_farm: Path | None = None) -> str:
                                                   Notice.night == day))
                 lines.append(f"\n{a.block}'s note that day (text; the outbox has it with its chart):")
                 lines.append(render.render(n.content, "text"))
+    last = DEMO_HEAT_DAYS[-1]
+    next_morning = pd.Timestamp(dt.datetime.combine(last + dt.timedelta(days=1), DEMO_RUN_LOCAL),
+                                tz=tz).tz_convert("UTC").to_pydatetime()
+    verify_day(db, last, now=next_morning)       # the last day's check falls on the morning after the week
+    lines.append("\nEach morning the heat run first checks the days before against what the stations read "
+                 "(forecast high against the highest reading from sunrise to sunset):")
+    lines.extend(_demo_check_lines(db, DEMO_HEAT_DAYS))
+    lines.append("\nHeat skill to date (advisory verify report --kind heat):")
+    lines.append(reports.format_verification(reports.verification_report(db, kind="heat")))
     lines.append(f"outbox: {settings.outbox}")
     return "\n".join(lines)
+
+
+def _demo_check_lines(db, days: Sequence[dt.date]) -> list[str]:
+    """One line per checked demo day: forecast and observed highs, misses, range, sunburn event and warning."""
+    with db.transaction() as s:
+        rows = list(s.scalars(select(Verification).where(Verification.kind == "heat",
+                                                         Verification.night.in_(list(days)))))
+    per: dict[dt.date, list[Verification]] = defaultdict(list)
+    for v in rows:
+        per[v.night].append(v)
+    out = []
+    for day in days:
+        vs = per.get(day)
+        if not vs:
+            out.append(f"  {day:%a %d %b}: not checked")
+            continue
+        fc = [v.forecast_c for v in vs if v.forecast_c is not None]
+        ob = [v.observed_c for v in vs]
+        err = [v.error_c for v in vs if v.error_c is not None]
+        inside = sum(1 for v in vs if v.detail.get("p10_c") is not None
+                     and v.detail["p10_c"] <= v.observed_c <= v.detail["p90_c"])
+        event = sum(1 for v in vs if v.detail.get("event"))
+        hits = sum(1 for v in vs if v.detail.get("event") and v.detail.get("warned"))
+        false = sum(1 for v in vs if v.detail.get("warned") and not v.detail.get("event"))
+        est = " (estimated high)" if any(v.detail.get("estimated") for v in vs) else ""
+        out.append(f"  {day:%a %d %b}{est}: forecast {min(fc):.1f}-{max(fc):.1f} °C, observed {min(ob):.1f}-"
+                   f"{max(ob):.1f} °C ({_ran(float(np.mean(err)))}); {inside} of {len(vs)} blocks inside "
+                   f"the 8-in-10 range; sunburn temperature reached at {event}, flagged at {hits} of them"
+                   + (f"; {false} more flagged but not reached" if false else ""))
+    return out
+
+
+def _ran(mean_error_c: float) -> str:
+    """How a mean error (forecast - observed) reads to a grower."""
+    if abs(mean_error_c) < 0.05:
+        return "spot on on average"
+    return f"the forecast ran {abs(mean_error_c):.1f} °C {'high' if mean_error_c > 0 else 'low'} on average"
 
 
 def _demo_day_line(res: RunResult) -> str:

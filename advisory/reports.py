@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import datetime as dt
 from collections import defaultdict
+from zoneinfo import ZoneInfo
 
 import numpy as np
 from sqlalchemy import select
@@ -121,46 +122,193 @@ def run_sheet(db, farm: str, night: dt.date, fmt: str = "text") -> str:
             "csv": runsheet.render_csv}[fmt](sheet)
 
 
-def verification_report(db, *, block: str | None = None, farm: str | None = None) -> dict:
-    """Skill to date per block: MAE, bias, hits, misses, false alarms (event: minimum at or below T10)."""
+def heat_verify(db, day: dt.date | None, *, names: list[str] | None = None,
+                now: dt.datetime | None = None) -> str:
+    """Check a heat day's forecasts against the observed high and say what was found."""
+    from advisory import heat_pipeline
+
+    now = now or dt.datetime.now(dt.UTC)
+    # default: yesterday in the farm's zone (today is not over before sunset)
+    day = day or (now.astimezone(ZoneInfo(farm_zone(db, None))).date() - dt.timedelta(days=1))
+    ids = block_ids_for(db, None, names)
+    res = heat_pipeline.verify_day(db, day, ids, now=now)
+    lines = [f"heat day {day}: {len(res.verified)} forecast high{'s' if len(res.verified) != 1 else ''} checked"]
+    for v in res.verified:
+        rng = ("" if v["p10_c"] is None or v["p90_c"] is None else
+               f"  (8-in-10 range {v['p10_c']:.1f} to {v['p90_c']:.1f}"
+               f"{', inside' if v['p10_c'] <= v['observed_c'] <= v['p90_c'] else ', outside'})")
+        err = "" if v["error_c"] is None else f"  error {v['error_c']:+.1f} °C"
+        est = "  [estimated high]" if v["estimated"] else ""
+        fc = "-" if v["forecast_c"] is None else f"{v['forecast_c']:.1f}"
+        lines.append(f"  {v['block']:<24} forecast {fc:>5} °C  observed {v['observed_c']:5.1f} °C{err}{rng}{est}")
+    already = heat_pipeline.checked_count(db, day, ids) - len(res.verified)
+    if already > 0:
+        lines.append(f"  {already} checked before (a check is stored once)")
+    for m in res.skipped:
+        lines.append(f"  skipped: {m}")
+    return "\n".join(lines)
+
+
+#: What ``advisory verify report`` covers, in its order.
+REPORT_KINDS = ("frost", "heat")
+
+_FROST_EVENT = "observed minimum at or below the stage's T10"
+_FROST_WARNED = "the block was put on the run sheet (level at or above the farm's protect level)"
+_HEAT_EVENT = "observed high (sunrise to sunset) at or above the crop's sunburn air temperature"
+_HEAT_WARNED = "the note flagged fruit sunburn risk or advised evaporative cooling"
+
+
+def _skill(vs: list[Verification]) -> dict:
+    """MAE, bias, range coverage and the 2x2 table of warnings against events over some checks."""
+    err = np.array([v.error_c for v in vs if v.error_c is not None], float)
+    warned = np.array([bool((v.detail or {}).get("warned")) for v in vs], bool)
+    event = np.array([bool((v.detail or {}).get("event")) for v in vs], bool)
+    ranged = [(v.detail["p10_c"], v.detail["p90_c"], v.observed_c) for v in vs
+              if (v.detail or {}).get("p10_c") is not None and (v.detail or {}).get("p90_c") is not None
+              and v.observed_c is not None]
+    inside = sum(1 for lo, hi, o in ranged if lo <= o <= hi)
+    return {"count": len(vs),
+            "mae_c": float(np.mean(np.abs(err))) if len(err) else None,
+            "bias_c": float(np.mean(err)) if len(err) else None,
+            "in_range": inside, "with_range": len(ranged),
+            "range_coverage": inside / len(ranged) if ranged else None,
+            "hits": int((warned & event).sum()), "misses": int((~warned & event).sum()),
+            "false_alarms": int((warned & ~event).sum()), "quiet": int((~warned & ~event).sum())}
+
+
+def verification_report(db, *, block: str | None = None, farm: str | None = None, kind: str = "all") -> dict:
+    """Skill to date per block, for frost nights and heat days.
+
+    Parameters
+    ----------
+    db : Database
+    block, farm : str, optional
+        Only this block / farm.
+    kind : {"all", "frost", "heat"}
+        Which checks to report.
+
+    Returns
+    -------
+    dict
+        One section per kind asked (``"frost"``, ``"heat"``), each with
+        ``blocks`` (per block: ``block``, ``count``, ``mae_c``, ``bias_c``
+        (forecast - observed), ``in_range``/``with_range``/``range_coverage``
+        (observed inside the 10th-90th percentile range), ``hits``,
+        ``misses``, ``false_alarms``, ``quiet`` and ``last``), ``all`` (the
+        same over every block), ``event`` and ``warned`` (what is counted).
+        Frost blocks also carry ``nights``, ``quiet_nights`` and ``last_night``;
+        the heat section adds ``by_source`` (outlook or estimated high).
+    """
+    if kind not in ("all", *REPORT_KINDS):
+        raise InputError(f"unknown kind '{kind}' (all, frost or heat)", field="--kind")
+    kinds = REPORT_KINDS if kind == "all" else (kind,)
     with db.transaction() as s:
-        q = select(Verification).join(Block).join(Farm).where(Verification.kind == "frost")
+        q = select(Verification).join(Block).join(Farm).where(Verification.kind.in_(kinds))
         if farm:
             q = q.where(Farm.name == farm)
         if block:
             q = q.where(Block.id == queries.find_block(s, block, farm).id)
-        per: dict[str, list[Verification]] = defaultdict(list)
+        per: dict[str, dict[int, list[Verification]]] = {k: defaultdict(list) for k in kinds}
         names = {}
-        for v in s.scalars(q.order_by(Verification.night)):
-            b = s.get(Block, v.block_id)
-            names[v.block_id] = f"{b.farm.name} / {b.name}"
-            per[v.block_id].append(v)
-        out = {"blocks": [], "event": "observed minimum at or below the stage's T10",
-               "warned": "the block was put on the run sheet (level at or above the farm's protect level)"}
-        for bid, vs in per.items():
-            err = np.array([v.error_c for v in vs if v.error_c is not None], float)
-            warned = np.array([bool(v.detail.get("warned")) for v in vs])
-            event = np.array([bool(v.detail.get("event")) for v in vs])
-            out["blocks"].append({
-                "block": names[bid], "nights": len(vs),
-                "mae_c": float(np.mean(np.abs(err))) if len(err) else None,
-                "bias_c": float(np.mean(err)) if len(err) else None,
-                "hits": int((warned & event).sum()), "misses": int((~warned & event).sum()),
-                "false_alarms": int((warned & ~event).sum()), "quiet_nights": int((~warned & ~event).sum()),
-                "last_night": vs[-1].night.isoformat(),
-            })
+        for v in s.scalars(q.order_by(Verification.night, Verification.block_id)):
+            if v.block_id not in names:
+                b = s.get(Block, v.block_id)
+                names[v.block_id] = f"{b.farm.name} / {b.name}"
+            per[v.kind][v.block_id].append(v)
+        out = {}
+        for k in kinds:
+            rows = []
+            for bid, vs in sorted(per[k].items(), key=lambda item: names[item[0]]):
+                row = {"block": names[bid], **_skill(vs), "last": vs[-1].night.isoformat()}
+                if k == "frost":
+                    row.update(nights=row["count"], quiet_nights=row["quiet"], last_night=row["last"])
+                rows.append(row)
+            every = [v for vs in per[k].values() for v in vs]
+            section = {"blocks": rows, "all": _skill(every) if every else None,
+                       "event": _FROST_EVENT if k == "frost" else _HEAT_EVENT,
+                       "warned": _FROST_WARNED if k == "frost" else _HEAT_WARNED}
+            if k == "heat":
+                est = [bool((v.detail or {}).get("estimated")) for v in every]
+                section["by_source"] = {"outlook": _skill([v for v, e in zip(every, est, strict=True) if not e]),
+                                        "estimated": _skill([v for v, e in zip(every, est, strict=True) if e])}
+            out[k] = section
         return out
 
 
-def format_verification(data: dict) -> str:
-    if not data["blocks"]:
-        return "no verified nights yet (the morning step `advisory night verify` stores them)"
-    lines = [f"{'block':<44} {'nights':>6} {'MAE °C':>7} {'bias °C':>8} {'hits':>5} {'misses':>6} "
+def _num(v, fmt: str) -> str:
+    return "-" if v is None else format(v, fmt)
+
+
+def _name_width(data: dict) -> int:
+    return max([44, *(len(b["block"]) + 1 for b in data["blocks"])])
+
+
+def _format_frost(data: dict) -> list[str]:
+    wd = _name_width(data)
+    lines = [f"{'block':<{wd}} {'nights':>6} {'MAE °C':>7} {'bias °C':>8} {'hits':>5} {'misses':>6} "
              f"{'false alarms':>12}"]
     for b in data["blocks"]:
-        mae = "-" if b["mae_c"] is None else f"{b['mae_c']:.2f}"
-        bias = "-" if b["bias_c"] is None else f"{b['bias_c']:+.2f}"
-        lines.append(f"{b['block']:<44} {b['nights']:>6} {mae:>7} {bias:>8} {b['hits']:>5} {b['misses']:>6} "
-                     f"{b['false_alarms']:>12}")
+        lines.append(f"{b['block']:<{wd}} {b['count']:>6} {_num(b['mae_c'], '.2f'):>7} {_num(b['bias_c'], '+.2f'):>8} "
+                     f"{b['hits']:>5} {b['misses']:>6} {b['false_alarms']:>12}")
     lines.append(f"event: {data['event']}; warned: {data['warned']}; bias = forecast - observed")
+    return lines
+
+
+def _coverage(r: dict) -> str:
+    if not r["with_range"]:
+        return "-"
+    return f"{r['in_range']}/{r['with_range']} ({100.0 * r['range_coverage']:.0f} %)"
+
+
+def _format_heat(data: dict) -> list[str]:
+    wd = _name_width(data)
+    head = (f"{'block':<{wd}} {'days':>5} {'MAE °C':>7} {'bias °C':>8} {'in 8-in-10 range':>17} {'hits':>5} "
+            f"{'misses':>6} {'false alarms':>12}")
+    lines = [head]
+
+    def row(name: str, r: dict) -> str:
+        return (f"{name:<{wd}} {r['count']:>5} {_num(r['mae_c'], '.2f'):>7} {_num(r['bias_c'], '+.2f'):>8} "
+                f"{_coverage(r):>17} {r['hits']:>5} {r['misses']:>6} {r['false_alarms']:>12}")
+
+    for b in data["blocks"]:
+        lines.append(row(b["block"], b))
+    if len(data["blocks"]) > 1:
+        lines.append(row("all blocks", data["all"]))
+    src = data.get("by_source") or {}
+    parts = [f"{label} {r['count']} day{'s' if r['count'] != 1 else ''}, MAE {_num(r['mae_c'], '.2f')} °C, "
+             f"{_coverage(r)} in range"
+             for label, r in (("from the outlook", src.get("outlook")), ("estimated from readings",
+                                                                        src.get("estimated")))
+             if r and r["count"]]
+    if parts:
+        lines.append("by source of the high: " + "; ".join(parts))
+    lines.append(f"event: {data['event']}; warned: {data['warned']}; bias = forecast - observed; "
+                 "8-in-10 range: between the 10th and 90th percentile of the forecast high "
+                 "(about 8 days in 10 should fall inside)")
+    return lines
+
+
+def format_verification(data: dict) -> str:
+    """The text of :func:`verification_report`: frost first, then heat."""
+    frost, heat = data.get("frost"), data.get("heat")
+    has_frost = bool(frost and frost["blocks"])
+    has_heat = bool(heat and heat["blocks"])
+    if not has_frost and not has_heat:
+        if frost is not None and heat is not None:
+            return ("no verified nights or heat days yet (the morning steps `advisory night verify` and "
+                    "`advisory heat verify` store them)")
+        if heat is not None:
+            return "no verified heat days yet (the morning heat run or `advisory heat verify` stores them)"
+        return "no verified nights yet (the morning step `advisory night verify` stores them)"
+    both = has_frost and has_heat
+    lines: list[str] = []
+    if has_frost:
+        if both:
+            lines.append("Frost nights: the forecast minimum against the observed minimum")
+        lines.extend(_format_frost(frost))
+    if has_heat:
+        if both:
+            lines.append("")
+        lines.append("Heat days: the forecast high against the observed high (sunrise to sunset)")
+        lines.extend(_format_heat(heat))
     return "\n".join(lines)

@@ -1,8 +1,8 @@
-"""`advisory heat run`: the morning heat note for a day."""
+"""`advisory heat run|verify`: the morning heat note for a day, and its check against the observed high."""
 
 from __future__ import annotations
 
-from advisory import heat_pipeline
+from advisory import heat_pipeline, reports
 from advisory.commands.night import _date
 from advisory.store.db import Database
 
@@ -23,10 +23,24 @@ def register(sub) -> None:
     run.add_argument("--no-deliver", action="store_true", help="store the notes but deliver nothing")
     run.add_argument("--format", choices=("text", "markdown"), default="text", help="how to print the summary")
     run.set_defaults(func=do_run)
+    ver = hsub.add_parser(
+        "verify", help="check a day's forecast highs against the observed high",
+        description="Compare each block's forecast high with the highest reading of its station from sunrise "
+                    "to sunset, and store the check (once). The morning heat run does this for the past days "
+                    "by itself; this is for a check by hand. See the skill with `advisory verify report`.")
+    ver.add_argument("--date", help="local date of the day (default: yesterday)")
+    ver.add_argument("--block", action="append", metavar="NAME", help="only this block (repeatable)")
+    ver.set_defaults(func=do_verify)
 
 
 def do_run(args) -> int:
     db = Database(args.db)
     print(heat_pipeline.heat_run_text(db, _date(args.date), farm=args.farm, names=args.block,
                                       deliver=not args.no_deliver, fmt=args.format))
+    return 0
+
+
+def do_verify(args) -> int:
+    db = Database(args.db)
+    print(reports.heat_verify(db, _date(args.date), names=args.block))
     return 0

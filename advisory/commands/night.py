@@ -45,9 +45,14 @@ def register(sub) -> None:
     v = sub.add_parser("verify", help="forecast skill to date")
     vsub = v.add_subparsers(dest="verify_command", metavar="ACTION")
     vsub.required = True
-    rep = vsub.add_parser("report", help="MAE, bias, hits, misses and false alarms per block")
+    rep = vsub.add_parser("report", help="MAE, bias, hits, misses and false alarms per block",
+                          description="Skill to date per block: frost nights (forecast against observed "
+                                      "minimum) and heat days (forecast against observed high, with the share "
+                                      "of days inside the 8-in-10 range).")
     rep.add_argument("--block", help="only this block")
     rep.add_argument("--farm")
+    rep.add_argument("--kind", choices=("all", "frost", "heat"), default="all",
+                     help="which checks to show (default all: frost nights first, then heat days)")
     rep.add_argument("--json", action="store_true")
     rep.set_defaults(func=do_verify_report)
 
@@ -74,6 +79,6 @@ def do_sheet(args) -> int:
 
 def do_verify_report(args) -> int:
     db = Database(args.db)
-    data = reports.verification_report(db, block=args.block, farm=args.farm)
+    data = reports.verification_report(db, block=args.block, farm=args.farm, kind=args.kind)
     print(json.dumps(data, indent=2) if args.json else reports.format_verification(data))
     return 0
