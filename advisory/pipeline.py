@@ -1348,9 +1348,45 @@ def verify_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, 
             session.add(v)
             res.verified.append({"block": f.block.name, "forecast_c": f.min_p50_c, "observed_c": obs_min})
         if refit and station_ids:
-            refit_calibrations(session, station_ids, now)
+            refit_calibrations(session, stations_due_for_refit(session, station_ids, now), now)
         _mark_run(session, key, "finished", now)
     return res
+
+
+#: A station's night calibration is refitted in the morning when it is this many days old ...
+REFIT_EVERY_DAYS = 7
+#: ... or every morning while it rests on fewer nights than this (a young station learns fast).
+REFIT_DAILY_BELOW_NIGHTS = 60
+#: Stations whose history is loaded at once by a refit (bounds the memory of a large set-up).
+REFIT_STATIONS_AT_ONCE = 16
+
+
+def stations_due_for_refit(session: Session, station_ids: Sequence[int], now: dt.datetime) -> list[int]:
+    """The stations whose night calibration is due for a refit this morning.
+
+    Due: no calibration yet; one fitted :data:`REFIT_EVERY_DAYS` days ago or more
+    (one more night barely moves a fit on years of history, and a refit reads all of
+    it); or one fitted on fewer than :data:`REFIT_DAILY_BELOW_NIGHTS` nights and not
+    yet today.
+    """
+    if not station_ids:
+        return []
+    latest = (select(Calibration.station_id, func.max(Calibration.id).label("id"))
+              .where(Calibration.kind == "night_min", Calibration.station_id.in_(list(station_ids)))
+              .group_by(Calibration.station_id).subquery())
+    last = {sid: (fitted, nights) for sid, fitted, nights in session.execute(
+        select(Calibration.station_id, Calibration.fitted_at, Calibration.training_nights)
+        .join(latest, Calibration.id == latest.c.id))}
+    due = []
+    for sid in station_ids:
+        if sid not in last:
+            due.append(sid)
+            continue
+        fitted, nights = last[sid]
+        age_h = (now - fitted).total_seconds() / 3600.0
+        if age_h >= REFIT_EVERY_DAYS * 24 - 1 or ((nights or 0) < REFIT_DAILY_BELOW_NIGHTS and age_h >= 12):
+            due.append(sid)
+    return due
 
 
 def refit_calibrations(session: Session, station_ids: Sequence[int], now: dt.datetime) -> dict[int, int]:
@@ -1362,6 +1398,14 @@ def refit_calibrations(session: Session, station_ids: Sequence[int], now: dt.dat
     """
     out = {}
     start = now - dt.timedelta(days=CALIBRATION_HISTORY_DAYS)
+    station_ids = list(station_ids)
+    for k in range(0, len(station_ids), REFIT_STATIONS_AT_ONCE):
+        out.update(_refit_some(session, station_ids[k:k + REFIT_STATIONS_AT_ONCE], start, now))
+    return out
+
+
+def _refit_some(session: Session, station_ids: list[int], start: dt.datetime, now: dt.datetime) -> dict[int, int]:
+    out = {}
     obs = load_observations_many(session, station_ids, start, now)
     for sid in station_ids:
         frame = obs.get(sid)

@@ -110,6 +110,26 @@ def test_morning_verification_stores_observed_minimum(spring_db):
     assert again.verified == []
 
 
+def test_calibrations_are_refitted_on_a_schedule(spring_db):
+    from sqlalchemy import select
+
+    from advisory.store.schema import Calibration, Station
+
+    with spring_db.transaction() as s:
+        ids = list(s.scalars(select(Station.id).order_by(Station.id)))
+        t0 = dt.datetime(2026, 4, 9, 15, tzinfo=dt.UTC)
+        assert pipeline.stations_due_for_refit(s, ids, t0) == ids  # none fitted yet
+        s.add(Calibration(station_id=ids[0], kind="night_min", fitted_at=t0, training_nights=400, params={}))
+        s.add(Calibration(station_id=ids[1], kind="night_min", fitted_at=t0, training_nights=20, params={}))
+        s.flush()
+        day = dt.timedelta(days=1)
+        # next morning: the young fit (20 nights) again, the seasoned one (400 nights) not yet
+        assert pipeline.stations_due_for_refit(s, ids, t0 + day) == [ids[1]]
+        assert pipeline.stations_due_for_refit(s, ids, t0 + 6 * day) == [ids[1]]
+        # a week on, both
+        assert pipeline.stations_due_for_refit(s, ids, t0 + pipeline.REFIT_EVERY_DAYS * day) == ids
+
+
 def test_observed_minimum_needs_a_covered_window():
     import pandas as pd
 
