@@ -1110,7 +1110,7 @@ def _frozen_heap():
 #: ``settings.workers`` processes (see :func:`_assess_prepared`).
 PARALLEL_FROM_BLOCKS = 2000
 #: The run's own process takes this many times a worker's share of the blocks.
-OWN_SHARE_WEIGHT = 1.6
+OWN_SHARE_WEIGHT = 1.9
 
 
 def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, *, now: dt.datetime,

@@ -579,10 +579,17 @@ def _attempt(j: _Job, settings) -> tuple[str, str, str, bool, int]:
 FORK_OUTBOX_FROM = 1000
 
 
+def _outbox_weight(j: _Job) -> int:
+    """Rough work of writing a notice to the outbox: one per block notice, one per row of a farm summary."""
+    n = j.rendered.n
+    return max(1, len(n.rows)) if isinstance(n, FarmSummary) else 1
+
+
 def _attempt_all(jobs: list[_Job], settings) -> list[tuple[str, str, str, bool]]:
     """One attempt for each job (its attempt count raised), results in the order of the jobs.
 
-    The outbox files of a large batch (:data:`FORK_OUTBOX_FROM` or more) are rendered
+    The outbox files of a large batch (:data:`FORK_OUTBOX_FROM` block notices or farm-summary
+    rows or more) are rendered
     and written by ``settings.workers`` processes at once (:func:`advisory.forking.fork_map`),
     each its own consecutive share; file names never clash (each notice has its own) and
     a write is atomic, so a share done again after a worker died changes nothing.  Mail,
@@ -593,10 +600,12 @@ def _attempt_all(jobs: list[_Job], settings) -> list[tuple[str, str, str, bool]]
     out: list[tuple | None] = [None] * len(jobs)
     boxed = [k for k, j in enumerate(jobs) if j.channel == "outbox"]
     workers = int(getattr(settings, "workers", 1) or 1)
-    if workers > 1 and len(boxed) >= FORK_OUTBOX_FROM and forking.can_fork():
+    weight = {k: _outbox_weight(jobs[k]) for k in boxed}
+    if workers > 1 and len(boxed) > 1 and sum(weight.values()) >= FORK_OUTBOX_FROM and forking.can_fork():
         log.info("writing %d outbox notices with %d processes", len(boxed), workers)
-        # dealt out like cards, so that the few large farm summaries do not all fall in one share
-        dealt = [k for s in range(workers) for k in boxed[s::workers]]
+        # heaviest first, dealt out like cards: each share gets its part of the large farm summaries
+        heavy_first = sorted(boxed, key=lambda k: -weight[k])
+        dealt = [k for s in range(workers) for k in heavy_first[s::workers]]
         results = forking.fork_map(lambda j: _attempt(j, settings), [jobs[k] for k in dealt], workers)
         for k, res in zip(dealt, results, strict=True):
             out[k] = res
