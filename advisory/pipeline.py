@@ -1109,7 +1109,9 @@ def _frozen_heap():
 #: A run with at least this many blocks shares its forecasting and composing among
 #: ``settings.workers`` processes (see :func:`_assess_prepared`).
 PARALLEL_FROM_BLOCKS = 2000
-#: The run's own process takes this many times a worker's share of the blocks.
+#: The run's own process takes this many times a worker's share of the blocks: a worker
+#: also loads its blocks again, touches memory shared with this process (which the system
+#: then copies) and sends its results back; measured, close to twice the time per block.
 OWN_SHARE_WEIGHT = 1.9
 
 
