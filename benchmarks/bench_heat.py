@@ -1,6 +1,7 @@
 """Speed and memory of the daytime heat path for many blocks at once.
 
-Daytime curve (Cesaraccio form), humidity from a conserved dew point, crop heat
+Daytime curve (drawn through each block's morning reading, as the heat note
+draws it), humidity from a conserved dew point, crop heat
 (sunburn hours, cooling run and water) and crew heat (heat index, WBGT estimate,
 levels, safer hours) for N invented blocks over one local day, hourly.
 
@@ -16,7 +17,7 @@ import tracemalloc
 import numpy as np
 import pandas as pd
 
-from advisory.forecast import daytime
+from advisory.forecast import dayshape, daytime
 from advisory.risk import heat as heat_risk
 
 
@@ -39,10 +40,15 @@ def main(argv=None) -> int:
     min_rh = rng.uniform(15, 45, n)
     crops = rng.choice(["apple", "grape", "cherry"], n)
     cooling = rng.random(n) < 0.3
+    anchor_t = sunrise + 2.0                          # the morning reading, sunrise + 2 h
+    anchor_c = tmin + rng.uniform(3, 7, n)
+    cloud = rng.uniform(0, 100, n)
 
     def run():
         t0 = time.perf_counter()
-        temp = daytime.diurnal_temperature_c(times, tmin, tmax, sunrise, sunset, noon, next_min_temp_c=tmin + 1)
+        temp = dayshape.anchored_temperature_c(times, tmin, tmax, sunrise, sunset, noon, anchor_t, anchor_c,
+                                               next_min_temp_c=tmin + 1, max_so_far_c=anchor_c,
+                                               cloud_cover_pct=cloud)
         dew = np.asarray(daytime.dew_point_from_min_rh_c(tmax, min_rh))
         rh = daytime.hourly_rel_humidity_pct(temp, dew[:, None])
         t1 = time.perf_counter()
