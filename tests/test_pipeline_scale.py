@@ -126,19 +126,25 @@ def _stored(db):
     return forecasts, notices
 
 
-@pytest.mark.parametrize("update", [False, True])
-def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_path, monkeypatch, update,
-                                                      caplog):
+def _second_spring_db(path, demo_farm):
+    """Another database like the ``spring_db`` fixture (same farm, readings and block ids)."""
     from advisory.ingest.farm_file import import_farm_file
     from advisory.ingest.observations import import_file
     from advisory.store.db import Database, upgrade
 
-    url = f"sqlite:///{tmp_path / 'serial.sqlite'}"
+    url = f"sqlite:///{path}"
     upgrade(url)
-    serial_db = Database(url)
-    import_farm_file(serial_db, demo_farm / "farm.toml")
+    db = Database(url)
+    import_farm_file(db, demo_farm / "farm.toml")
     for code in ("QR-BENCH", "QR-CREEK"):
-        import_file(serial_db, code, demo_farm / "stations" / f"{code}-spring.csv")
+        import_file(db, code, demo_farm / "stations" / f"{code}-spring.csv")
+    return url, db
+
+
+@pytest.mark.parametrize("update", [False, True])
+def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_path, monkeypatch, update,
+                                                      caplog):
+    url, serial_db = _second_spring_db(tmp_path / "serial.sqlite", demo_farm)
     later = NOW + dt.timedelta(hours=-3)
     one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
     pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
@@ -217,16 +223,7 @@ def _raw_rows(url, table):
 
 
 def test_driver_level_inserts_store_what_the_orm_stores(spring_db, demo_farm, tmp_path, monkeypatch):
-    from advisory.ingest.farm_file import import_farm_file
-    from advisory.ingest.observations import import_file
-    from advisory.store.db import Database, upgrade
-
-    url = f"sqlite:///{tmp_path / 'orm.sqlite'}"
-    upgrade(url)
-    orm_db = Database(url)
-    import_farm_file(orm_db, demo_farm / "farm.toml")
-    for code in ("QR-BENCH", "QR-CREEK"):
-        import_file(orm_db, code, demo_farm / "stations" / f"{code}-spring.csv")
+    url, orm_db = _second_spring_db(tmp_path / "orm.sqlite", demo_farm)
     with monkeypatch.context() as m:
         m.setattr(pipeline, "_ROW_KEYS", {})  # no key to find the ids by: the ORM's bulk insert
         pipeline.run_night(orm_db, NIGHT, now=NOW, deliver=False)
