@@ -933,9 +933,10 @@ def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *,
         rows = []
         if len(parts) == 1 and not parts[0][1]:
             rows += deliver_mod.deliver_notices(session, batch, settings, **kw)
-        else:
-            for part, opts in parts:
-                rows += deliver_mod.deliver_notices(session, part, settings, channels=("outbox",), **opts, **kw)
+        else:  # one call for the whole outbox (its writers share all of it), each part in its own form
+            form = {id(n): (opts["outbox_formats"], opts["outbox_chart"]) for part, opts in parts for n, _ in part}
+            rows += deliver_mod.deliver_notices(session, [x for part, _ in parts for x in part], settings,
+                                                channels=("outbox",), outbox_options=lambda n: form[id(n)], **kw)
             addressed = [(n, rs) for n, rs in batch if any(r.channels for r in rs)]
             if addressed:
                 rows += deliver_mod.deliver_notices(session, addressed, settings,

@@ -178,7 +178,14 @@ class _Rendered:
         self.row = notice_row
         self.n: BlockNotice | FarmSummary = as_notice(notice_row.content)
         self._cache: dict[str, Any] = {}
-        self.cid = make_msgid(idstring="chart", domain="advisory.local")[1:-1]
+        self._cid: str | None = None
+
+    @property
+    def cid(self) -> str:
+        """Content-ID of the chart in an e-mail (made on first use)."""
+        if self._cid is None:
+            self._cid = make_msgid(idstring="chart", domain="advisory.local")[1:-1]
+        return self._cid
 
     def get(self, fmt: str, chart_src: str | None = None) -> str:
         k = (fmt, chart_src)
@@ -449,6 +456,7 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
                     sleep: Callable[[float], Any] = time.sleep, channels: Iterable[str] | None = None,
                     force: bool = False, retry: RetryPolicy = RetryPolicy(),
                     outbox_formats: Sequence[str] = OUTBOX_FORMATS, outbox_chart: bool | str = "auto",
+                    outbox_options: Callable[[Any], tuple[Sequence[str], bool | str]] | None = None,
                     smtp_factory=smtplib.SMTP, ssl_context: ssl.SSLContext | None = None,
                     urlopen=urllib.request.urlopen, clock: Callable[[], float] = time.time,
                     timeout_s: float = 20.0) -> list[Delivery]:
@@ -474,6 +482,10 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
     outbox_chart : bool or "auto"
         Draw the chart PNG into the outbox: always, never, or ("auto") when the
         notice is at "stand by" or worse or goes out by e-mail in this call.
+    outbox_options : callable, optional
+        ``outbox_options(notice_row) -> (formats, chart)``: per notice, in place of
+        ``outbox_formats`` and ``outbox_chart`` (one call for a batch whose notices
+        get different outbox forms).
     smtp_factory, ssl_context, urlopen, clock, timeout_s
         Injection points for tests and special set-ups.
 
@@ -500,15 +512,17 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
             return None
         return _Job(r, channel, recipient, address, count)
 
+    box = str(Path(settings.outbox))
     for row, recips in batch:
         r = _Rendered(row)
         by_mail = "email" in wanted and any((rc.channels or {}).get("email") for rc in recips)
         if "outbox" in wanted:
-            j = job(r, "outbox", None, str(Path(settings.outbox)))
+            j = job(r, "outbox", None, box)
             if j:
+                formats, chart_opt = outbox_options(row) if outbox_options else (outbox_formats, outbox_chart)
                 rank_ok = isinstance(r.n, BlockNotice) and r.n.status == "ok" and r.n.level_rank >= 2
-                chart = outbox_chart is True or (outbox_chart == "auto" and (rank_ok or by_mail))
-                j.send = (lambda r=r, chart=chart: _send_outbox(r, settings, outbox_formats, chart))
+                chart = chart_opt is True or (chart_opt == "auto" and (rank_ok or by_mail))
+                j.send = (lambda r=r, chart=chart, formats=formats: _send_outbox(r, settings, formats, chart))
                 jobs.append(j)
         for rc in recips:
             ch_map = rc.channels or {}
