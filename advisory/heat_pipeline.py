@@ -99,6 +99,7 @@ from advisory.pipeline import (
     _load_blocks,
     _mark_run,
     _pending_notices,
+    _recent_verification,
     _start_run,
     _store,
 )
@@ -784,8 +785,10 @@ def assess_day(session: Session, blocks: list[Block], day: dt.date, *, as_of: dt
     out: list[asm.Assessment] = []
     issued = pd.DatetimeIndex(ms["issued_at"])
     latest_obs = pd.DatetimeIndex(ms["latest_obs"])
+    checked = _recent_verification(session, [b.id for b in blocks], day, kind="heat")
     for i, b in enumerate(blocks):
         a = _heat_base(b, day)
+        a.verification = checked.get(b.id, [])
         a.sunrise_utc = _py(sunrise[i])
         a.sunset_utc = _py(sunset[i])
         k = k_of[i]

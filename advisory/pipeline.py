@@ -213,9 +213,10 @@ def _latest_calibrations(session: Session, station_ids: Sequence[int], kind: str
     return {r.station_id: calib.Calibration.from_dict(r.params) for r in rows}
 
 
-def _recent_verification(session: Session, block_ids: Sequence[int], before: dt.date
+def _recent_verification(session: Session, block_ids: Sequence[int], before: dt.date, kind: str = "frost"
                          ) -> dict[int, list[dict]]:
-    """The latest :data:`VERIFICATION_SHOWN` verified nights of each block before ``before``, newest first.
+    """The latest :data:`VERIFICATION_SHOWN` verified nights (or heat days, ``kind="heat"``) of each
+    block before ``before``, newest first.
 
     Only those rows are read (a window function ranks each block's nights in the database), so
     the cost does not grow with the season's history.
@@ -226,7 +227,7 @@ def _recent_verification(session: Session, block_ids: Sequence[int], before: dt.
                                       order_by=Verification.night.desc()).label("rank")
         sub = (select(Verification.block_id, Verification.night, Verification.forecast_c, Verification.observed_c,
                       Verification.error_c, rank)
-               .where(Verification.block_id.in_(chunk), Verification.kind == "frost", Verification.night < before)
+               .where(Verification.block_id.in_(chunk), Verification.kind == kind, Verification.night < before)
                .subquery())
         for r in session.execute(select(sub).where(sub.c.rank <= VERIFICATION_SHOWN)
                                  .order_by(sub.c.block_id, sub.c.rank)):

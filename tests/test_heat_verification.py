@@ -134,6 +134,17 @@ def test_the_morning_heat_run_checks_yesterday_first(summer_db):
     assert f"checked heat day {nxt}: 6 forecast highs" in text and "8-in-10 range" in text
 
 
+def test_the_next_heat_note_shows_the_check(summer_db):
+    from advisory.notices.compose import compose_block
+
+    nxt = DAY + dt.timedelta(days=1)
+    res = hp.run_heat(summer_db, nxt, now=_clock(nxt), deliver=False)
+    a = res.assessments[0]
+    assert [r["night"] for r in a.verification] == [DAY.isoformat()]
+    section = next(s for s in compose_block(a).sections if s.key == "verification")
+    assert section.table["header"][:2] == ["Day", "Forecast high"] and len(section.table["rows"]) == 1
+
+
 def test_a_day_not_over_is_left_for_later_with_a_reason(summer_db):
     res = hp.verify_day(summer_db, DAY, now=_clock(DAY, hour=15))
     assert res.verified == [] and _count(summer_db) == 0
