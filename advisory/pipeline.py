@@ -202,13 +202,18 @@ def _equipment_of(session: Session, blocks: list[Block]) -> dict[int, list[dict]
     return out
 
 
-def _latest_calibrations(session: Session, station_ids: Sequence[int], kind: str = "night_min"
-                         ) -> dict[int, calib.Calibration]:
+def _latest_calibrations(session: Session, station_ids: Sequence[int], kind: str = "night_min",
+                         before: dt.datetime | None = None) -> dict[int, calib.Calibration]:
+    """Each station's newest calibration of ``kind`` (fitted at or before ``before`` when given,
+    so that a past night run again is forecast only with what was known that evening)."""
     if not station_ids:
         return {}
     latest = (select(Calibration.station_id, func.max(Calibration.id).label("id"))
               .where(Calibration.kind == kind, Calibration.station_id.in_(list(station_ids)))
-              .group_by(Calibration.station_id).subquery())
+              .group_by(Calibration.station_id))
+    if before is not None:
+        latest = latest.where(Calibration.fitted_at <= before)
+    latest = latest.subquery()
     rows = session.scalars(select(Calibration).join(latest, Calibration.id == latest.c.id))
     return {r.station_id: calib.Calibration.from_dict(r.params) for r in rows}
 
@@ -536,7 +541,7 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
     states = evening_states(obs, sun_rows, station=station_keys, reference_offset_h=offset_h)
     states["station"] = station_keys
     _lap(timings, "sun+evening state")
-    cals = _latest_calibrations(session, station_ids)
+    cals = _latest_calibrations(session, station_ids, before=pd.Timestamp(ref_max).to_pydatetime())
     fc = calib.forecast_night(states, {k: v for k, v in cals.items()}, block=[b.id for b in blocks])
     ok = fc.ok & (table["status"].to_numpy(dtype=object) == sun.NORMAL)
     verif = _recent_verification(session, [b.id for b in blocks], night)

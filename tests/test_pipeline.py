@@ -130,6 +130,22 @@ def test_calibrations_are_refitted_on_a_schedule(spring_db):
         assert pipeline.stations_due_for_refit(s, ids, t0 + pipeline.REFIT_EVERY_DAYS * day) == ids
 
 
+def test_a_past_night_run_again_uses_only_calibrations_fitted_by_then(spring_db):
+    from sqlalchemy import select
+
+    from advisory.store.schema import Calibration, Station
+
+    pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False)
+    morning = dt.datetime(2026, 4, 9, 15, tzinfo=dt.UTC)
+    pipeline.verify_night(spring_db, NIGHT, now=morning)  # fits the stations' calibrations
+    with spring_db.transaction() as s:
+        ids = list(s.scalars(select(Station.id).order_by(Station.id)))
+        fitted = set(s.scalars(select(Calibration.station_id).where(Calibration.kind == "night_min")))
+        assert fitted
+        assert pipeline._latest_calibrations(s, ids, before=NOW) == {}  # the evening before: not yet known
+        assert set(pipeline._latest_calibrations(s, ids, before=morning)) == fitted
+
+
 def test_observed_minimum_needs_a_covered_window():
     import pandas as pd
 
