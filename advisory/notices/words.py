@@ -375,6 +375,10 @@ _GSM7_BASIC = set(
     "ÄÖÑÜ§¿abcdefghijklmnopqrstuvwxyzäöñüà")
 
 
+_SPACES = re.compile(r" {2,}")
+
+
+@lru_cache(maxsize=16384)
 def gsm_safe(text: str) -> str:
     """Text reduced to the GSM 03.38 basic character set, so 160 characters fit one text message.
 
@@ -383,6 +387,8 @@ def gsm_safe(text: str) -> str:
     """
     text = text.replace("°", "").replace("−", "-").replace("–", "-").replace("—", "-").replace("…", "...")
     text = text.replace("\r", " ").replace("\n", " ").replace("\t", " ")
+    if _GSM7_BASIC.issuperset(text):
+        return _SPACES.sub(" ", text).strip()
     out = []
     for ch in text:
         if ch in _GSM7_BASIC:
@@ -390,7 +396,7 @@ def gsm_safe(text: str) -> str:
             continue
         base = unicodedata.normalize("NFKD", ch).encode("ascii", "ignore").decode()
         out.append(base if base and all(c in _GSM7_BASIC for c in base) else "?")
-    return re.sub(r" {2,}", " ", "".join(out)).strip()
+    return _SPACES.sub(" ", "".join(out)).strip()
 
 
 @lru_cache(maxsize=8192)

@@ -828,6 +828,10 @@ def _ns(times) -> np.ndarray:
 
 def _round_ns(t_ns, minutes, up):
     q = minutes * 60e9
+    if isinstance(t_ns, float):  # one instant (per block in a plan): plain Python is much faster
+        if not math.isfinite(t_ns):
+            return math.nan
+        return (math.ceil(t_ns / q) if up else math.floor(t_ns / q)) * q
     f = np.ceil if up else np.floor
     return np.where(np.isfinite(t_ns), f(t_ns / q) * q, np.nan)
 
@@ -1124,10 +1128,10 @@ def _method_plan(method, params, i, b, st, fams, crit, margin, s_margin, area, w
     use_wb = method in ("overtree_sprinkler", "undertree_sprinkler")
     (cs, cf, ci, ct, csf), (ks, kf, _, kt, ksf) = fams[use_wb]
     rnd = st.round_minutes
-    start = _round_ns(np.array([cs[i]]), rnd, up=False)[0] if cf[i] else np.nan
-    ready = _round_ns(np.array([ks[i]]), rnd, up=False)[0] if kf[i] else np.nan
-    stop = _round_ns(np.array([ct[i]]), rnd, up=True)[0] if cf[i] else np.nan
-    stop_k = _round_ns(np.array([kt[i]]), rnd, up=True)[0] if kf[i] else np.nan
+    start = _round_ns(float(cs[i]), rnd, up=False) if cf[i] else np.nan
+    ready = _round_ns(float(ks[i]), rnd, up=False) if kf[i] else np.nan
+    stop = _round_ns(float(ct[i]), rnd, up=True) if cf[i] else np.nan
+    stop_k = _round_ns(float(kt[i]), rnd, up=True) if kf[i] else np.nan
     run_h = (stop - start) / 3.6e12 if cf[i] else None
     run_k = (stop_k - ready) / 3.6e12 if kf[i] else None
     stop_open = bool(cf[i] and not csf[i])
