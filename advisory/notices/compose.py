@@ -587,10 +587,7 @@ def _data_section(a: Assessment, f: _Fmt) -> Section:
         sec.items.append(("Evening readings: " if a.kind != "heat" else "Morning readings: ")
                          + ", ".join(f"{w.quantity_label(k)} {w.quantity(k, v, f.units)}" for k, v in state.items()))
     if a.model:
-        s = f"Model: {a.model}"
-        if a.training_nights:
-            s += f", fitted on {a.training_nights} {'nights' if a.kind != 'heat' else 'days'} at this station"
-        sec.items.append(s)
+        sec.items.append(_model_line(a))
     curve_model = (a.details or {}).get("curve_model") if a.kind == "heat" else None
     if isinstance(curve_model, str) and curve_model.strip():
         sec.items.append("Hourly curve: " + _one_line(curve_model))
@@ -602,6 +599,20 @@ def _data_section(a: Assessment, f: _Fmt) -> Section:
             parts.append(f"sunrise {f.clock(a.sunrise_utc)}")
         sec.items.append("Sun: " + ", ".join(parts))
     return sec
+
+
+def _model_line(a: Assessment) -> str:
+    """What the forecast rests on, in words (a physical model is not "fitted")."""
+    n = int(a.training_nights or 0)
+    unit = "days" if a.kind == "heat" else "nights"
+    if a.kind != "heat" and a.model == "physical":
+        if n:
+            return (f"Model: physical cooling model, its spread learned from {n} {unit} at this station "
+                    "(too few yet for a calibration of its own)")
+        return "Model: physical cooling model (no checked nights at this station yet)"
+    if a.kind != "heat" and a.model == "calibrated":
+        return f"Model: calibrated on {n} {unit} at this station"
+    return f"Model: {a.model}" + (f", fitted on {n} {unit} at this station" if n else "")
 
 
 def _verification_section(a: Assessment, f: _Fmt) -> Section | None:

@@ -1276,13 +1276,18 @@ def _recommend(plans: list[MethodPlan], needs: bool, min_p50_c: float, crit_c: f
         chosen = ["undertree_sprinkler"]
     if not chosen:
         # Nothing usable: say so on the sheet with a "none" line, keep the per-method reasons.
-        reasons = "; ".join(f"{p.method.replace('_', ' ')}: {p.notes[-1] if p.notes else 'not usable'}"
+        reasons = "; ".join(f"{_METHOD_LABELS.get(p.method, p.method)}: {p.notes[-1] if p.notes else 'not usable'}"
                             for p in plans)
         none = MethodPlan("none", usable=False, recommended=True,
                           notes=("No usable protection tonight. " + reasons,),
                           caution_keys=cautions.cautions_for_method("none"))
         return plans + [none]
     return [_replace(p, recommended=p.method in chosen) for p in plans]
+
+
+#: Method names in the plan's own notes (the notices have their own, in advisory.notices.words).
+_METHOD_LABELS = {"wind_machine": "Wind machines", "overtree_sprinkler": "Over-tree sprinklers",
+                  "undertree_sprinkler": "Under-tree sprinklers", "heater": "Heaters"}
 
 
 def _replace(p: MethodPlan, **kw) -> MethodPlan:

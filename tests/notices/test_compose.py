@@ -221,6 +221,18 @@ def test_heat_note_says_how_the_curve_was_drawn():
                    for i in s.items)
 
 
+@pytest.mark.parametrize(("model", "nights", "want"), [
+    ("physical", 2, "Model: physical cooling model, its spread learned from 2 nights at this station"),
+    ("physical", 0, "Model: physical cooling model (no checked nights at this station yet)"),
+    ("calibrated", 120, "Model: calibrated on 120 nights at this station"),
+])
+def test_data_section_says_what_the_forecast_rests_on(model, nights, want):
+    a = samples.frost_assessment(model=model, training_nights=nights)
+    data = next(s for s in compose_block(a).sections if s.key == "data")
+    assert any(i.startswith(want) for i in data.items)
+    assert not any("physical, fitted" in i for i in data.items)
+
+
 def test_unknown_level_key_is_shown_tidily():
     n = compose_block(samples.frost_assessment(level="very_odd", level_rank=9))
     assert n.level_name == "Very odd"
