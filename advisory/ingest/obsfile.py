@@ -606,6 +606,27 @@ def _derive_moisture(vals: dict[str, np.ndarray], n: int) -> dict[str, int]:
     rh = vals.get("rel_humidity_pct")
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         if rh is not None:
+            _fill(vals, derived, "dew_point_c", dew, rh, (rh > 0), air, dew_point_c_from_rh, n)
+        if dew is not None:
+            _fill(vals, derived, "rel_humidity_pct", rh, dew, True, air, rel_humidity_pct_from_dew_point, n)
+    return derived
+
+
+def _fill(vals, derived, name, target, source, usable, air, fn, n) -> None:
+    """Where ``target`` is missing (or absent) and air and ``source`` are known, set it to ``fn(air, source)``."""
+    need = ~np.isnan(air) & ~np.isnan(source) & (np.isnan(target) if target is not None else True) & usable
+    if not need.any():
+        return
+    v = np.asarray(fn(air[need], source[need]), dtype=float)
+    v = np.where(np.isfinite(v), v, np.nan)
+    new = target.copy() if target is not None else np.full(n, np.nan)
+    new[need] = v
+    vals[name] = new
+    derived[name] = int(np.count_nonzero(~np.isnan(v)))
+    dew = vals.get("dew_point_c")
+    rh = vals.get("rel_humidity_pct")
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        if rh is not None:
             need = ~np.isnan(air) & ~np.isnan(rh) & (np.isnan(dew) if dew is not None else True)
             need &= rh > 0
             if need.any():
