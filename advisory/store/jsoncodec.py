@@ -44,11 +44,6 @@ def _fallback(value: Any):
     raise TypeError(f"cannot store a value of type {type(value).__name__} as JSON")
 
 
-def dumps_bytes(value: Any) -> bytes:
-    """``value`` as compact UTF-8 JSON bytes (see the module text for the forms)."""
-    return orjson.dumps(value, default=_fallback, option=_OPTIONS)
-
-
 def dumps(value: Any) -> str:
     """``value`` as compact JSON text (the database's JSON serializer)."""
     return orjson.dumps(value, default=_fallback, option=_OPTIONS).decode("utf-8")
