@@ -1647,7 +1647,7 @@ def demo_heat(paths, db, echo=print, *, demo_farm: Path | None = None) -> str:
                 n = s.scalar(select(Notice).where(Notice.block_id == a.block_id, Notice.kind == "heat",
                                                   Notice.night == day))
                 lines.append(f"\n{a.block}'s note that day (text; the outbox has it with its chart):")
-                lines.append(render.render(n.content, "text"))
+                lines.append(render.render(n.full_content, "text"))
     last = DEMO_HEAT_DAYS[-1]
     next_morning = pd.Timestamp(dt.datetime.combine(last + dt.timedelta(days=1), DEMO_RUN_LOCAL),
                                 tz=tz).tz_convert("UTC").to_pydatetime()

@@ -71,6 +71,7 @@ from advisory.store.schema import (
     RunRecord,
     Station,
     Verification,
+    with_data,
 )
 
 log = logging.getLogger("advisory.pipeline")
@@ -699,8 +700,8 @@ class Prepared:
 
     #: Assessments to store (revision set), in the batch's order.
     todo: list[asm.Assessment]
-    #: The stored payload of each (``advisory.assessment.to_dict`` form).
-    payloads: list[dict]
+    #: The stored payload of each (``advisory.assessment.to_dict`` form), as encoded JSON.
+    payloads: list[bytes]
     #: ``(key, subject, notice)`` of each block's notice, or None where no notice is due.
     composed: list[tuple | None]
     #: Messages for assessments not stored (already assessed).
@@ -743,10 +744,11 @@ def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mo
                 ids = [a.block_id for a in todo if a.is_update and a.kind == kind and a.night == night]
                 noticed.update({(bid, kind, night): v
                                 for bid, v in _last_noticed_many(session, ids, night, kind).items()})
-    payloads = []
+    payloads: list[bytes] = []
     composed: list[tuple | None] = []
     for a in todo:
-        payload = assessment_payload(a)
+        encoded = jsoncodec.encode(a)
+        payload = jsoncodec.loads(encoded)  # advisory.assessment.to_dict(a), made faster
         previous_noticed = noticed.get((a.block_id, a.kind, a.night)) if a.is_update else None
         notice = None
         why: list[str] = []
@@ -755,10 +757,12 @@ def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mo
             if why:
                 a.details = {**a.details, "update_reasons": why}
                 payload = {**payload, "details": {**(payload.get("details") or {}), "update_reasons": list(why)}}
+                encoded = jsoncodec.encode(payload)
         if not a.is_update or why:
             n = compose.compose_block(a, previous_noticed, data=payload)
-            notice = (n.key, n.subject, n)  # stored as JSON straight from the object
-        payloads.append(payload)
+            # stored without its data (the forecast's payload, stored once)
+            notice = (n.key, n.subject, n, compose.stored_json(n))
+        payloads.append(encoded)
         composed.append(notice)
     _lap(timings, "compose")
     return Prepared(todo, payloads, composed, skipped)
@@ -799,7 +803,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         {"block_id": a.block_id, "kind": a.kind, "night": a.night, "revision": a.revision, "created_at": now,
          "reference_time": a.reference_time_utc, "status": a.status, "reason": a.reason, "model": a.model,
          "training_nights": a.training_nights, "min_p10_c": a.p10_c, "min_p50_c": a.p50_c,
-         "min_p90_c": a.p90_c, "level": a.level, "payload": payload}
+         "min_p90_c": a.p90_c, "level": a.level, "payload": jsoncodec.Fragment(payload)}
         for a, payload in zip(todo, payloads, strict=True)])
     _lap(timings, "store forecasts")
     rows, sent = [], []
@@ -810,10 +814,11 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         if notice is None:
             continue
         block = blocks[a.block_id]
-        key, subject, content = notice
+        key, subject, content, stored = notice
         rows.append({"key": key, "farm_id": block.farm_id, "block_id": a.block_id, "forecast_id": fid,
                      "kind": a.kind, "night": a.night, "revision": a.revision, "is_update": a.is_update,
-                     "level": a.level, "subject": subject, "created_at": now, "content": content})
+                     "level": a.level, "subject": subject, "created_at": now, "content": jsoncodec.Fragment(stored),
+                     "notice": content})
         by_farm[block.farm_id].append((a, block))
         sent.append(list(block.recipients))
     # One farm summary per farm and run (only for the evening and heat runs and for updates with news).
@@ -841,12 +846,13 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         rows.append({"key": key, "farm_id": farm_id, "block_id": None, "forecast_id": None,
                      "kind": summary.kind + "-summary", "night": dt.date.fromisoformat(summary.night),
                      "revision": revision, "is_update": revision > 0, "level": summary.level,
-                     "subject": summary.subject, "created_at": now, "content": summary})
+                     "subject": summary.subject, "created_at": now, "content": summary, "notice": summary})
         summaries.append(recips)
     _lap(timings, "compose summaries")
+    notices = [r.pop("notice") for r in rows]
     notice_ids = _insert_returning_ids(session, Notice, rows)
-    to_send = [(StoredNotice(nid, r["key"], r["farm_id"], r["block_id"], r["content"]), recips)
-               for nid, r, recips in zip(notice_ids, rows, sent + summaries, strict=True)]
+    to_send = [(StoredNotice(nid, r["key"], r["farm_id"], r["block_id"], n), recips)
+               for nid, r, n, recips in zip(notice_ids, rows, notices, sent + summaries, strict=True)]
     _lap(timings, "store notices")
     return to_send, skipped
 
@@ -1007,7 +1013,10 @@ def _pending_notices(db, night: dt.date, kind_prefix: str, farm_ids: Sequence[in
                                .order_by(Notice.id)).all()
         contents: dict[int, dict] = {}
         for chunk in _chunked([r.id for r in rows if r.id not in known]):
-            contents.update(session.execute(select(Notice.id, Notice.content).where(Notice.id.in_(chunk))).all())
+            for nid, content, payload in session.execute(
+                    select(Notice.id, Notice.content, Forecast.payload)
+                    .outerjoin(Forecast, Forecast.id == Notice.forecast_id).where(Notice.id.in_(chunk))):
+                contents[nid] = with_data(content, payload)
         by_block: dict[int, list] = defaultdict(list)
         for chunk in _chunked(sorted({r.block_id for r in rows if r.block_id is not None})):
             for bid, rc in session.execute(select(BlockRecipient.block_id, Recipient)
@@ -1086,6 +1095,12 @@ def _batch_gc():
     memory as usual; the collector is switched back on afterwards (unless it
     was off before).  Not for the delivery: drawing charts leaves reference
     cycles that only the collector frees.
+
+    The objects made meanwhile are then moved out of the collector's sight
+    (:func:`gc.freeze`): switched on again, it would otherwise walk all of them
+    at once (about a second for 10,000 blocks).  The caller puts them back with
+    :func:`gc.unfreeze` when the run is done (see :func:`run_night`), so that
+    any reference cycles among them are still collected later.
     """
     was_enabled = gc.isenabled()
     gc.disable()
@@ -1093,6 +1108,7 @@ def _batch_gc():
         yield
     finally:
         if was_enabled:
+            gc.freeze()
             gc.enable()
 
 
@@ -1251,6 +1267,7 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
             res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids, known=known), settings,
                                       sleep=sleep)
         timings.lap("outbox delivery")
+    gc.unfreeze()  # the run's objects, hidden from the collector by _batch_gc
     _mark_run(db, key, "finished", now)
     timings.lap("finish")
     res.timings = dict(timings)

@@ -54,7 +54,7 @@ def summary_text(db, notice_ids: list[int], fmt: str = "text") -> list[str]:
     with db.transaction() as s:
         for n in s.scalars(select(Notice).where(Notice.id.in_(notice_ids), Notice.block_id.is_(None))
                            .order_by(Notice.id)):
-            out.append(render.render(n.content, fmt))
+            out.append(render.render(n.full_content, fmt))
     return out
 
 

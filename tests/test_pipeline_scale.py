@@ -104,6 +104,29 @@ def test_crash_before_delivery_is_delivered_by_the_next_run(spring_db, quiet_cha
     assert pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None).deliveries == {}
 
 
+def test_notice_data_is_stored_once_and_joined_again(spring_db, quiet_channels, monkeypatch):
+    """The run stores a block notice without its data (the forecast payload); readers get it whole."""
+    from sqlalchemy import select
+
+    from advisory.notices import render
+    from advisory.store.schema import Notice
+
+    monkeypatch.setenv("ADVISORY_OUTBOX_FORMATS", "json")
+    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    written = {p.name: p.read_text() for p in quiet_channels.rglob("*.json")}
+    with spring_db.transaction() as s:
+        rows = list(s.scalars(select(Notice).where(Notice.id.in_(res.notices))))
+        blocks = [n for n in rows if n.block_id is not None]
+        assert blocks and all("data" not in n.content for n in blocks)
+        for n in blocks:
+            assert n.full_content["data"] == n.forecast.payload and n.full_content["data"]["p50_c"] is not None
+            # what the outbox got is the whole notice, as a renderer makes it from the stored row
+            match = [t for t in written.values() if f'"key":"{n.key}"' in t]
+            assert match == [render.render(n.full_content, "json")]
+        summary = next(n for n in rows if n.block_id is None)
+        assert summary.full_content is summary.content
+
+
 def test_email_chart_setting_draws_charts_for_mailed_notices(spring_db, quiet_channels, monkeypatch):
     monkeypatch.setenv("ADVISORY_OUTBOX_FORMATS", "json")
     monkeypatch.setenv("ADVISORY_OUTBOX_CHARTS", "email")

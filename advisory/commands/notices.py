@@ -93,7 +93,7 @@ def _get(s, notice_id: int) -> Notice:
 def do_show(args) -> int:
     db = Database(args.db)
     with db.transaction() as s:
-        content = dict(_get(s, args.id).content or {})
+        content = dict(_get(s, args.id).full_content)
     chart_src = None
     if args.format == "html":
         from advisory.notices.charts import chart_png, data_uri

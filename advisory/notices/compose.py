@@ -68,6 +68,7 @@ from advisory import assessment as asm
 from advisory.assessment import Assessment
 from advisory.notices import words as w
 from advisory.risk import cautions as caution_texts
+from advisory.store import jsoncodec
 
 log = logging.getLogger(__name__)
 
@@ -310,6 +311,28 @@ def _plain(v):
             names = _NAMES[t] = tuple(f.name for f in dataclasses.fields(v))
         return {n: _plain(getattr(v, n)) for n in names}
     return asm._encode(v)
+
+
+def stored_json(n: BlockNotice | FarmSummary, data: bytes | None = None) -> bytes:
+    """The notice as JSON (bytes); a block notice's ``data`` left out, or given as encoded JSON.
+
+    The nightly run stores a block notice's data once, as its forecast's payload
+    (``Forecast.payload``), and the notice without it (``Notice.content``; see
+    ``Notice.full_content``, which joins them again).  ``data`` (the payload as encoded
+    JSON) gives the whole notice, as :func:`advisory.notices.render.render` writes it
+    for the "json" format, without encoding the payload again.
+    """
+    if not isinstance(n, BlockNotice):
+        return jsoncodec.encode(n)
+    d = {f: getattr(n, f) for f in _BLOCK_FIELDS}
+    if data is None:
+        del d["data"]
+    else:
+        d["data"] = jsoncodec.Fragment(data)
+    return jsoncodec.encode(d)
+
+
+_BLOCK_FIELDS = tuple(f.name for f in dataclasses.fields(BlockNotice))
 
 
 def _to_plain_dict(obj) -> dict[str, Any]:

@@ -45,8 +45,20 @@ def _fallback(value: Any):
 
 
 def dumps(value: Any) -> str:
-    """``value`` as compact JSON text (the database's JSON serializer)."""
+    """``value`` as compact JSON text (the database's JSON serializer).
+
+    A :class:`Fragment` (JSON encoded before) is written as it is, also inside other values.
+    """
     return orjson.dumps(value, default=_fallback, option=_OPTIONS).decode("utf-8")
+
+
+def encode(value: Any) -> bytes:
+    """``value`` as compact JSON, UTF-8 bytes (what :func:`dumps` writes)."""
+    return orjson.dumps(value, default=_fallback, option=_OPTIONS)
+
+
+#: JSON encoded before (bytes), written as it is: ``dumps({"data": Fragment(b"[1]")})`` is ``{"data":[1]}``.
+Fragment = orjson.Fragment
 
 
 def loads(text: str | bytes) -> Any:

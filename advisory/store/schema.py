@@ -329,8 +329,28 @@ class Notice(Base):
     level: Mapped[str] = mapped_column(String(20), default="")
     subject: Mapped[str] = mapped_column(String(300))
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
-    #: The composed notice as plain data (renderers work from this).
+    #: The composed notice as plain data (renderers work from :attr:`full_content`).  The nightly
+    #: run leaves a block notice's ``data`` out: it is its forecast's payload, stored once there.
     content: Mapped[dict[str, Any]] = mapped_column(default=dict)
+
+    forecast: Mapped[Forecast | None] = relationship()
+
+    @property
+    def full_content(self) -> dict[str, Any]:
+        """The composed notice whole: ``content``, with ``data`` from the forecast's payload
+        where it was stored only there (loads the forecast row when not loaded yet)."""
+        c = self.content or {}
+        if "data" in c or c.get("type", "block") != "block" or self.forecast_id is None:
+            return c
+        return with_data(c, self.forecast.payload if self.forecast is not None else None)
+
+
+def with_data(content: dict[str, Any] | None, payload: dict[str, Any] | None) -> dict[str, Any]:
+    """A stored notice's ``content`` with its forecast's ``payload`` as ``data`` where it has none."""
+    content = content or {}
+    if payload is None or "data" in content or content.get("type", "block") != "block":
+        return content
+    return {**content, "data": payload}
 
 
 # A night's notices of a farm (delivery of what a run left), a block's notices; a night's forecasts.
