@@ -770,7 +770,8 @@ def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mo
 
 def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
            now: dt.datetime, timings: StageTimes | None = None, prepared: Prepared | None = None,
-           workers: int = 1) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
+           workers: int = 1, stage: Callable[[list], Any] | None = None
+           ) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
     """Store forecasts and notices; returns (notices to deliver, skipped messages).
 
     The rows are written with a few bulk INSERT statements (the database hands back
@@ -792,6 +793,9 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         :func:`_prepare` of ``assessments`` when already made (by the run's worker processes).
     workers : int
         Processes that may compose the farm summaries of a large run (see :mod:`advisory.forking`).
+    stage : callable, optional
+        Called with ``[(key, notice, whole JSON or None)]`` once every notice of the batch is
+        composed, before anything is written (see :func:`_stage_outbox`).
     """
     if prepared is None:
         prepared = _prepare(session, assessments, revision_mode=revision_mode, timings=timings)
@@ -799,30 +803,14 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     if not todo:
         return [], skipped
     blocks = {a.block_id: session.get(Block, a.block_id) for a in todo}
-    forecast_ids = _insert_returning_ids(session, Forecast, [
-        {"block_id": a.block_id, "kind": a.kind, "night": a.night, "revision": a.revision, "created_at": now,
-         "reference_time": a.reference_time_utc, "status": a.status, "reason": a.reason, "model": a.model,
-         "training_nights": a.training_nights, "min_p10_c": a.p10_c, "min_p50_c": a.p50_c,
-         "min_p90_c": a.p90_c, "level": a.level, "payload": jsoncodec.Fragment(payload)}
-        for a, payload in zip(todo, payloads, strict=True)])
-    _lap(timings, "store forecasts")
-    rows, sent = [], []
     by_farm: dict[int, list[tuple[asm.Assessment, Block]]] = defaultdict(list)
-    batch_assessments: dict[int, asm.Assessment] = {}  # this run's, by forecast id
-    for a, notice, fid in zip(todo, composed, forecast_ids, strict=True):
-        batch_assessments[fid] = a
-        if notice is None:
-            continue
-        block = blocks[a.block_id]
-        key, subject, content, stored = notice
-        rows.append({"key": key, "farm_id": block.farm_id, "block_id": a.block_id, "forecast_id": fid,
-                     "kind": a.kind, "night": a.night, "revision": a.revision, "is_update": a.is_update,
-                     "level": a.level, "subject": subject, "created_at": now, "content": jsoncodec.Fragment(stored),
-                     "notice": content})
-        by_farm[block.farm_id].append((a, block))
-        sent.append(list(block.recipients))
+    for a, notice in zip(todo, composed, strict=True):
+        if notice is not None:
+            by_farm[blocks[a.block_id].farm_id].append((a, blocks[a.block_id]))
     # One farm summary per farm and run (only for the evening and heat runs and for updates with news).
-    summaries = []
+    batch: dict[int, list[asm.Assessment]] = defaultdict(list)  # this batch's assessments by farm
+    for a in todo:
+        batch[blocks[a.block_id].farm_id].append(a)
     wanted = []  # (farm id, its assessments, revision, key, recipients) of each summary to compose
     for farm_id, items in by_farm.items():
         farm_assessments = [a for a, _ in items]
@@ -830,7 +818,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         revision = max(a.revision for a in farm_assessments)
         if revision_mode in ("evening", "heat"):
             # the summary gathers every block of the farm assessed for this night, not only this batch
-            farm_assessments = _farm_payloads(session, farm_id, a0.night, a0.kind, batch_assessments) \
+            farm_assessments = _farm_payloads(session, farm_id, a0.night, a0.kind, batch[farm_id]) \
                 or farm_assessments
         key = compose.notice_key(a0.kind + "-summary", a0.farm, None, a0.night, revision) + f":{_batch_tag(items)}"
         if session.scalar(select(Notice.id).where(Notice.key == key)) is not None:
@@ -842,17 +830,39 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
 
     share = workers if sum(len(x[1]) for x in wanted) >= PARALLEL_FROM_BLOCKS else 1
     composed_summaries = forking.fork_map(lambda x: compose.compose_farm(x[1], revision=x[2]), wanted, share)
+    _lap(timings, "compose summaries")
+    if stage is not None:  # every notice is composed: its outbox files can be written ahead
+        stage([(c[0], c[2], compose.whole_json(c[3], p)) for c, p in zip(composed, payloads, strict=True) if c]
+              + [(x[3], summary, None) for x, summary in zip(wanted, composed_summaries, strict=True)])
+    forecast_ids = _insert_returning_ids(session, Forecast, [
+        {"block_id": a.block_id, "kind": a.kind, "night": a.night, "revision": a.revision, "created_at": now,
+         "reference_time": a.reference_time_utc, "status": a.status, "reason": a.reason, "model": a.model,
+         "training_nights": a.training_nights, "min_p10_c": a.p10_c, "min_p50_c": a.p50_c,
+         "min_p90_c": a.p90_c, "level": a.level, "payload": jsoncodec.Fragment(payload)}
+        for a, payload in zip(todo, payloads, strict=True)])
+    _lap(timings, "store forecasts")
+    rows, sent, notices = [], [], []
+    for a, notice, fid in zip(todo, composed, forecast_ids, strict=True):
+        if notice is None:
+            continue
+        block = blocks[a.block_id]
+        key, subject, content, stored = notice
+        rows.append({"key": key, "farm_id": block.farm_id, "block_id": a.block_id, "forecast_id": fid,
+                     "kind": a.kind, "night": a.night, "revision": a.revision, "is_update": a.is_update,
+                     "level": a.level, "subject": subject, "created_at": now,
+                     "content": jsoncodec.Fragment(stored)})  # without its data: the forecast's payload
+        notices.append(content)
+        sent.append(list(block.recipients))
     for (farm_id, _, revision, key, recips), summary in zip(wanted, composed_summaries, strict=True):
         rows.append({"key": key, "farm_id": farm_id, "block_id": None, "forecast_id": None,
                      "kind": summary.kind + "-summary", "night": dt.date.fromisoformat(summary.night),
                      "revision": revision, "is_update": revision > 0, "level": summary.level,
-                     "subject": summary.subject, "created_at": now, "content": summary, "notice": summary})
-        summaries.append(recips)
-    _lap(timings, "compose summaries")
-    notices = [r.pop("notice") for r in rows]
+                     "subject": summary.subject, "created_at": now, "content": summary})
+        notices.append(summary)
+        sent.append(recips)
     notice_ids = _insert_returning_ids(session, Notice, rows)
     to_send = [(StoredNotice(nid, r["key"], r["farm_id"], r["block_id"], n), recips)
-               for nid, r, n, recips in zip(notice_ids, rows, notices, sent + summaries, strict=True)]
+               for nid, r, n, recips in zip(notice_ids, rows, notices, sent, strict=True)]
     _lap(timings, "store notices")
     return to_send, skipped
 
@@ -871,20 +881,21 @@ def _batch_tag(items) -> str:
 
 
 def _farm_payloads(session: Session, farm_id: int, night: dt.date, kind: str,
-                   known: Mapping[int, asm.Assessment | dict]) -> list[asm.Assessment | dict]:
+                   ours: Sequence[asm.Assessment]) -> list[asm.Assessment | dict]:
     """Every active block's revision-0 forecast of the farm for the night (assessment or payload).
 
-    ``known`` maps forecast ids to this run's assessments, which are used as they
-    are, not read back from the database.
+    Those stored before come first (as stored payloads, in the order they were stored), then
+    ``ours``: the batch's own assessments of the farm (not stored yet), as they are.
     """
-    ids = list(session.scalars(select(Forecast.id).join(Block).where(
-        Block.farm_id == farm_id, Forecast.night == night, Forecast.kind == kind, Forecast.revision == 0,
-        Block.active.is_(True))))
-    found = {i: known[i] for i in ids if i in known}
-    missing = [i for i in ids if i not in known]
-    for chunk in _chunked(missing):
+    mine = {a.block_id for a in ours}
+    stored = [fid for fid, bid in session.execute(
+        select(Forecast.id, Forecast.block_id).join(Block).where(
+            Block.farm_id == farm_id, Forecast.night == night, Forecast.kind == kind, Forecast.revision == 0,
+            Block.active.is_(True)).order_by(Forecast.id)) if bid not in mine]
+    found: dict[int, dict] = {}
+    for chunk in _chunked(stored):
         found.update(session.execute(select(Forecast.id, Forecast.payload).where(Forecast.id.in_(chunk))).all())
-    return [found[i] for i in ids if found.get(i)]
+    return [found[fid] for fid in stored if found.get(fid)] + [a for a in ours if a.revision == 0]
 
 
 def _outbox_plan(batch: list[tuple[Notice, list]], settings, wanted: set[str]) -> list[tuple[list, dict]]:
@@ -925,11 +936,13 @@ def _outbox_plan(batch: list[tuple[Notice, list]], settings, wanted: set[str]) -
     return [(part, kw) for part, kw in parts if part]
 
 
-def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *, sleep=None) -> dict[str, int]:
+def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *, sleep=None,
+             staged: str | None = None) -> dict[str, int]:
     """Deliver stored notices (as returned by :func:`_pending_notices`) in one transaction.
 
     The rows are attached to the delivery session as they are (no reload); the outbox is written
-    as the settings say (:func:`_outbox_plan`); the other channels follow in one pass, so that the
+    as the settings say (:func:`_outbox_plan`), using the files written ahead with token ``staged``
+    (:func:`_stage_outbox`); the other channels follow in one pass, so that the
     retry pauses are shared by the whole batch.
     """
     from advisory.notices import deliver as deliver_mod
@@ -937,6 +950,8 @@ def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *,
     if not to_send:
         return {}
     kw = {} if sleep is None else {"sleep": sleep}
+    if staged:
+        kw["staged"] = staged
     counts: dict[str, int] = defaultdict(int)
     with db.transaction() as session:
         batch = _attached(session, to_send)
@@ -958,12 +973,73 @@ def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *,
     return dict(counts)
 
 
+#: A run with at least this many block notices has their outbox files written ahead (see :func:`_stage_outbox`).
+STAGE_OUTBOX_FROM = 2000
+
+
+class _Staging:
+    """Outbox files of a run's block notices, being written ahead by a forked copy of the process."""
+
+    def __init__(self, job, outbox: str, folders: set[str], token: str):
+        self.job, self.outbox, self.folders, self.token = job, outbox, folders, token
+        #: Files the writer wrote and the time it took [s] (known after :meth:`wait`).
+        self.files, self.seconds = 0, 0.0
+
+    def wait(self) -> str | None:
+        """Wait for the writer; the token of its files, or None when it failed (the delivery then
+        writes every file itself)."""
+        ok, result = self.job.result()
+        if not ok:
+            log.warning("outbox files written ahead are not used (%s); the delivery writes them", result)
+            self.discard()
+            return None
+        self.files, self.seconds = result
+        return self.token
+
+    def discard(self) -> None:
+        """Remove whatever the delivery did not use (nothing, when every notice was delivered)."""
+        from advisory.notices import deliver as deliver_mod
+
+        for folder in self.folders:
+            deliver_mod.discard_staged(folder, self.token)
+
+
+def _stage_outbox(items: list[tuple[str, Any, bytes | None]], settings) -> _Staging | None:
+    """Start writing a large run's outbox files ahead, in a forked copy of this process.
+
+    ``items``: each composed notice's key, the notice and its whole JSON (block notices).
+    The run's own process stores the run meanwhile; the delivery, after the commit, then
+    only moves each file to its own name (:func:`advisory.notices.deliver.stage_outbox`).
+    Only what :func:`_outbox_plan` gives every notice is written ahead (never a block
+    notice's HTML or chart, which depend on how it goes out).  Small runs, a single worker,
+    or a process that may not fork write everything at delivery.
+    """
+    import secrets
+
+    from advisory import forking
+    from advisory.notices import deliver as deliver_mod
+    from advisory.notices import words
+
+    if len(items) < STAGE_OUTBOX_FROM or int(getattr(settings, "workers", 1) or 1) < 2:
+        return None
+    formats = tuple(getattr(settings, "outbox_formats", None) or deliver_mod.OUTBOX_FORMATS)
+    outbox, token = str(settings.outbox), secrets.token_hex(6)
+    folders = {os.path.join(outbox, words.slug(n.night, 10, "undated")) for _, n, _ in items}
+    def write() -> tuple[int, float]:
+        t0 = time.perf_counter()
+        return deliver_mod.stage_outbox(outbox, items, formats, token), time.perf_counter() - t0
+
+    job = forking.background(write)
+    return None if job is None else _Staging(job, outbox, folders, token)
+
+
 def _attached(session: Session, to_send: list[tuple[Notice, list]]) -> list[tuple[Notice, list]]:
     """The batch, ready for delivery in ``session`` without reloading anything that is at hand.
 
-    Notices and recipients are only read by the delivery.  Rows detached from an earlier session
-    are re-attached (no query); :class:`StoredNotice` views are used as they are; anything else
-    with an ``id`` is loaded in bulk.
+    Notices and recipients are only read by the delivery.  Notice rows detached from an earlier
+    session are re-attached (no query: reading ``full_content`` may load the forecast); recipients
+    (only their columns are read) and :class:`StoredNotice` views are used as they are; anything
+    else with an ``id`` is loaded in bulk.
     """
     from sqlalchemy import inspect as sa_inspect
 
@@ -974,6 +1050,8 @@ def _attached(session: Session, to_send: list[tuple[Notice, list]]) -> list[tupl
             return True
         if not isinstance(obj, model):
             return False
+        if model is Recipient:  # the delivery reads only its columns, loaded already (no lazy loads)
+            return True
         state = sa_inspect(obj)
         if state.detached and session.identity_map.get(state.key) is None:
             session.add(obj)
@@ -991,13 +1069,14 @@ def _attached(session: Session, to_send: list[tuple[Notice, list]]) -> list[tupl
 
 
 def _pending_notices(db, night: dt.date, kind_prefix: str, farm_ids: Sequence[int], *,
-                     known: Mapping[int, dict] | None = None) -> list[tuple[StoredNotice, list]]:
+                     known: Mapping[int, tuple[StoredNotice, list]] | None = None
+                     ) -> list[tuple[StoredNotice, list]]:
     """A night's notices with no outbox delivery yet (new ones, or left by a crash before delivery).
 
     Each comes with its recipients: the block's for a block notice, the farm's for a farm summary
     (read in bulk, ordered by id).  The notices are :class:`StoredNotice` views of the rows;
-    ``known`` maps notice ids to their stored ``content`` when the caller has it at hand (the run
-    that just stored them), so that it is not read back.
+    ``known`` maps notice ids to ``(StoredNotice, recipients)`` where the caller has them at
+    hand (the run that just stored them), so that neither is read back.
     """
     from advisory.store.schema import BlockRecipient, Delivery, Recipient
 
@@ -1011,29 +1090,32 @@ def _pending_notices(db, night: dt.date, kind_prefix: str, farm_ids: Sequence[in
                                .where(Notice.night == night, Notice.kind.like(f"{kind_prefix}%"),
                                       Notice.farm_id.in_(list(farm_ids)), Notice.id.not_in(delivered))
                                .order_by(Notice.id)).all()
+        left = [r for r in rows if r.id not in known]  # stored by an earlier run that stopped
         contents: dict[int, dict] = {}
-        for chunk in _chunked([r.id for r in rows if r.id not in known]):
+        for chunk in _chunked([r.id for r in left]):
             for nid, content, payload in session.execute(
                     select(Notice.id, Notice.content, Forecast.payload)
                     .outerjoin(Forecast, Forecast.id == Notice.forecast_id).where(Notice.id.in_(chunk))):
                 contents[nid] = with_data(content, payload)
         by_block: dict[int, list] = defaultdict(list)
-        for chunk in _chunked(sorted({r.block_id for r in rows if r.block_id is not None})):
+        for chunk in _chunked(sorted({r.block_id for r in left if r.block_id is not None})):
             for bid, rc in session.execute(select(BlockRecipient.block_id, Recipient)
                                            .join(Recipient, Recipient.id == BlockRecipient.recipient_id)
                                            .where(BlockRecipient.block_id.in_(chunk))
                                            .order_by(BlockRecipient.block_id, Recipient.id)):
                 by_block[bid].append(rc)
         by_farm: dict[int, list] = defaultdict(list)
-        summary_farms = sorted({r.farm_id for r in rows if r.block_id is None})
+        summary_farms = sorted({r.farm_id for r in left if r.block_id is None})
         if summary_farms:
             for rc in session.scalars(select(Recipient).where(Recipient.farm_id.in_(summary_farms))
                                       .order_by(Recipient.id)):
                 by_farm[rc.farm_id].append(rc)
         for r in rows:
-            n = StoredNotice(r.id, r.key, r.farm_id, r.block_id,
-                             known[r.id] if r.id in known else contents[r.id])
-            recips = by_block[r.block_id] if r.block_id is not None else by_farm[r.farm_id]
+            if r.id in known:
+                n, recips = known[r.id]
+            else:
+                n = StoredNotice(r.id, r.key, r.farm_id, r.block_id, contents[r.id])
+                recips = by_block[r.block_id] if r.block_id is not None else by_farm[r.farm_id]
             out.append((n, list(recips)))
     return out
 
@@ -1230,11 +1312,12 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
     settings = settings or settings_mod.load(db.url)
     res = RunResult(kind="update" if update else "evening", night=night)
     timings = timings if timings is not None else StageTimes()
-    known: dict[int, dict] = {}  # contents of the notices stored by this run (not read back for delivery)
+    known: dict[int, tuple] = {}  # the notices stored by this run and their recipients (not read back)
     state = _start_run(db, key, res.kind, night, now)
     if state == "finished":
         res.skipped.append(f"run {key} already done")
         return res
+    staging = None
     if state == "new":
         with _batch_gc(), db.transaction() as session:
             timings.lap("start")
@@ -1249,13 +1332,17 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
             timings.lap("load blocks")
             res.assessments, prepared = _assess_prepared(db, session, blocks, night, now=now, update=update,
                                                          workers=getattr(settings, "workers", 1), timings=timings)
+            staged: list[_Staging | None] = []
             stored, res.skipped = _store(session, res.assessments,
                                          revision_mode="update" if update else "evening", now=now,
                                          timings=timings, prepared=prepared,
-                                         workers=getattr(settings, "workers", 1))
+                                         workers=getattr(settings, "workers", 1),
+                                         stage=(lambda items: staged.append(_stage_outbox(items, settings)))
+                                         if deliver else None)
+            staging = staged[0] if staged else None
             res.skipped = done_before + res.skipped
             res.notices = [n.id for n, _ in stored]
-            known = {n.id: n.content for n, _ in stored}
+            known = {n.id: (n, recips) for n, recips in stored}
             _mark_run(session, key, "stored", now)
         timings.lap("commit")
     else:  # stored before a crash or a stop: only delivery is left
@@ -1263,9 +1350,16 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
             farm_ids = sorted({b.farm_id for b in _load_blocks(session, block_ids, farm, names, equipment=False)})
     if deliver:
         # New notices, and any of this night's notices that a crash left undelivered.
+        token = staging.wait() if staging is not None else None
+        if staging is not None:
+            timings.lap("wait for outbox writer")
+        if token:
+            timings["outbox files written ahead"] = staging.seconds  # by the writer, meanwhile
         with _frozen_heap():
             res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids, known=known), settings,
-                                      sleep=sleep)
+                                      sleep=sleep, staged=token)
+        if staging is not None:
+            staging.discard()
         timings.lap("outbox delivery")
     gc.unfreeze()  # the run's objects, hidden from the collector by _batch_gc
     _mark_run(db, key, "finished", now)
@@ -1296,7 +1390,7 @@ def record_missed(db, night: dt.date, block_ids: Sequence[int], *, key: str, run
             out.append(a)
         stored, res.skipped = _store(session, out, revision_mode="missed", now=now)
         res.notices = [n.id for n, _ in stored]
-        known = {n.id: n.content for n, _ in stored}
+        known = {n.id: (n, recips) for n, recips in stored}
         farm_ids = sorted({b.farm_id for b in blocks})
         res.assessments = out
         _mark_run(session, key, "stored", now)

@@ -359,7 +359,8 @@ def _run_child(what: str, args, db_url: str, outbox: Path, profile: str | None =
 
 
 STAGES = ("load blocks", "load observations", "sun+evening state", "forecast", "risk/plan", "compose",
-          "wait for workers", "store forecasts", "compose summaries", "store notices", "commit", "outbox delivery")
+          "wait for workers", "compose summaries", "store forecasts", "store notices", "commit",
+          "wait for outbox writer", "outbox delivery", "outbox files written ahead")
 
 
 def _print_run(r: dict) -> None:

@@ -204,6 +204,53 @@ def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_
     _same(got, want)
 
 
+@pytest.mark.parametrize("writer_fails", [False, True])
+def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo_farm, tmp_path, monkeypatch,
+                                                                  caplog, writer_fails):
+    """A large run's outbox files, written ahead by a forked copy while the run stores, are published
+    only by the delivery and are the files one process writes; a stopped run's leftovers are removed."""
+    import os
+    import time
+
+    from advisory.notices import deliver
+
+    url, serial_db = _second_spring_db(tmp_path / "serial.sqlite", demo_farm)
+    one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
+    pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
+    serial_db.dispose()
+
+    two = dataclasses.replace(one, db_url=spring_db.url, workers=2, outbox=tmp_path / "outbox-two")
+    night_dir = two.outbox / NIGHT.isoformat()
+    night_dir.mkdir(parents=True)
+    stale, fresh = night_dir / ".x.json.0badc0ffee00.staged", night_dir / ".y.json.0ddba11fee00.staged"
+    for p in (stale, fresh):
+        p.write_text("{}")
+    os.utime(stale, (time.time() - 2 * deliver.STALE_STAGED_S,) * 2)
+    monkeypatch.setattr(pipeline, "STAGE_OUTBOX_FROM", 2)  # the demo farm has six blocks
+    if writer_fails:
+        def broken(*args, **kw):
+            raise OSError("disk full")
+        monkeypatch.setattr(deliver, "stage_outbox", broken)
+    caplog.set_level("WARNING", logger="advisory.pipeline")
+    res = pipeline.run_night(spring_db, NIGHT, now=NOW, settings=two, sleep=lambda s: None)
+    assert ("outbox files written ahead" in res.timings) is not writer_fails
+    assert ("disk full" in caplog.text) is writer_fails
+
+    files = {p.relative_to(one.outbox): p.read_bytes() for p in one.outbox.rglob("*") if p.is_file()}
+    got = {p.relative_to(two.outbox): p.read_bytes() for p in two.outbox.rglob("*") if p.is_file()}
+    assert any(n.suffix == ".png" for n in files) and any(n.name.endswith(".runsheet.csv") for n in files)
+    # a stopped run's staged file is gone, another run's recent one is left alone, nothing else is left
+    assert not stale.exists() and fresh.exists() or writer_fails
+    got.pop(fresh.relative_to(two.outbox), None)
+    got.pop(stale.relative_to(two.outbox), None)
+    assert got.keys() == files.keys()
+    for name, data in files.items():
+        if name.suffix == ".json":
+            _same(jsoncodec.loads(got[name]), jsoncodec.loads(data))
+        elif name.suffix != ".png":  # (the chart's PNG carries its drawing software's metadata)
+            assert got[name] == data, name
+
+
 def _same(a, b, where=""):
     """Equal, floats to 1e-9 relative."""
     if isinstance(a, float) and isinstance(b, float):

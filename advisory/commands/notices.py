@@ -119,7 +119,7 @@ def do_resend(args) -> int:
         made = deliver.deliver_notice(s, n, recips, cfg, channels=[args.channel] if args.channel else None,
                                       force=True)
         names = {r.id: r.name for r in recips}
-        last: dict[tuple, Delivery] = {}
+        last: dict[tuple, deliver.Attempt] = {}
         for d in made:
             who = "outbox" if d.recipient_id is None else names.get(d.recipient_id, str(d.recipient_id))
             print(f"  {d.channel:<8} {who:<28} attempt {d.attempt}: {d.status}"

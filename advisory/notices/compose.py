@@ -313,23 +313,22 @@ def _plain(v):
     return asm._encode(v)
 
 
-def stored_json(n: BlockNotice | FarmSummary, data: bytes | None = None) -> bytes:
-    """The notice as JSON (bytes); a block notice's ``data`` left out, or given as encoded JSON.
+def stored_json(n: BlockNotice | FarmSummary) -> bytes:
+    """The notice as stored in ``Notice.content`` (JSON bytes); a block notice without ``data``.
 
     The nightly run stores a block notice's data once, as its forecast's payload
-    (``Forecast.payload``), and the notice without it (``Notice.content``; see
-    ``Notice.full_content``, which joins them again).  ``data`` (the payload as encoded
-    JSON) gives the whole notice, as :func:`advisory.notices.render.render` writes it
-    for the "json" format, without encoding the payload again.
+    (``Forecast.payload``), and the notice without it; ``Notice.full_content``
+    joins them again.  See :func:`whole_json` for the notice whole.
     """
     if not isinstance(n, BlockNotice):
         return jsoncodec.encode(n)
-    d = {f: getattr(n, f) for f in _BLOCK_FIELDS}
-    if data is None:
-        del d["data"]
-    else:
-        d["data"] = jsoncodec.Fragment(data)
-    return jsoncodec.encode(d)
+    return jsoncodec.encode({f: getattr(n, f) for f in _BLOCK_FIELDS if f != "data"})
+
+
+def whole_json(stored: bytes, data: bytes) -> bytes:
+    """A block notice whole as JSON: :func:`stored_json` with the encoded ``data`` joined in (as its last
+    field), so that a payload encoded once serves the database and the outbox."""
+    return stored[:-1] + b',"data":' + data + b"}"
 
 
 _BLOCK_FIELDS = tuple(f.name for f in dataclasses.fields(BlockNotice))

@@ -235,32 +235,133 @@ def outbox_base(outbox: Path, n: BlockNotice | FarmSummary, key: str | None = No
     ``key`` is the stored notice's key (``Notice.key``; default the composed
     notice's own key): its hash keeps every stored notice in its own files.
     """
+    return Path(_base(str(outbox), n, key))
+
+
+def _base(outbox: str, n: BlockNotice | FarmSummary, key: str | None = None) -> str:
+    """:func:`outbox_base` as a string."""
     h = hashlib.sha256((key or n.key).encode("utf-8")).hexdigest()[:8]
     who = w.slug(n.block, 40, "block") if isinstance(n, BlockNotice) else "farm-summary"
     stem = f"{w.slug(n.farm, 24, 'farm')}_{who}_{w.slug(n.kind, 8)}_r{n.revision}_{h}"
-    return Path(outbox) / w.slug(n.night, 10, "undated") / stem
+    return os.path.join(outbox, w.slug(n.night, 10, "undated"), stem)
 
 
-def _put(path: Path, data: bytes) -> None:
+def _put(path: str | Path, data: bytes) -> None:
     with open(path, "wb") as fh:
         fh.write(data)
 
 
-def _write(path: Path, data: bytes) -> None:
+def _write(path: str | Path, data: bytes) -> None:
     """Write a file whole or not at all (a temporary name, then an atomic rename); the folder must exist."""
-    tmp = path.with_name(f".{path.name}.{os.getpid()}-{threading.get_ident()}.tmp")
+    head, name = os.path.split(str(path))
+    tmp = os.path.join(head, f".{name}.{os.getpid()}-{threading.get_ident()}.tmp")
     try:
         try:
             _put(tmp, data)
         except FileNotFoundError:  # the folder was removed since this process made it
-            _FOLDERS.discard(str(path.parent))
-            _folder(path.parent)
+            _FOLDERS.discard(head)
+            _folder(head)
             _put(tmp, data)
         os.replace(tmp, path)
     except BaseException:
         with _suppress():
             os.unlink(tmp)
         raise
+
+
+# --------------------------------------------------------------------------------------------------
+# Outbox files written ahead of delivery ("staged")
+# --------------------------------------------------------------------------------------------------
+
+#: Ending of a staged outbox file's hidden name.
+STAGED_SUFFIX = ".staged"
+#: A staged file older than this [s] was left by a run that stopped; the next staging removes it.
+STALE_STAGED_S = 3600.0
+
+
+def staged_path(path: str, token: str) -> str:
+    """The hidden name under which ``path`` is staged by the run with ``token``."""
+    head, name = os.path.split(path)
+    return os.path.join(head, f".{name}.{token}{STAGED_SUFFIX}")
+
+
+def stageable(formats: Sequence[str]) -> tuple[str, ...]:
+    """The outbox formats that can be written ahead: all but HTML (which shows the chart or not,
+    as the delivery decides)."""
+    return tuple(f for f in formats if f != "html")
+
+
+def stage_outbox(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice | FarmSummary, bytes | None]],
+                 formats: Sequence[str], token: str) -> int:
+    """Write block notices' outbox files ahead of their delivery, under hidden names; how many.
+
+    A large run has a forked copy of itself do this while it stores the notices: the files
+    may not be published before the notices are stored (a stop in between would leave files
+    for notices that were never stored, and the next run would store and send them again), so
+    they wait under hidden names (:func:`staged_path`), and the delivery only renames each to
+    its own name (:func:`_send_outbox` with ``staged``), writing itself whatever is missing.
+
+    Parameters
+    ----------
+    outbox : path
+    notices : iterable of (str, BlockNotice or FarmSummary, bytes or None)
+        Each notice's stored key (``Notice.key``), the notice, and its JSON when at hand.
+    formats : sequence of str
+        Formats of the block notices (HTML is left out; see :func:`stageable`).  A farm
+        summary gets every format and its run sheet, as the delivery gives it.
+    token : str
+        The run's own mark in the hidden names, so that a run only ever publishes its own files.
+    """
+    outbox = str(outbox)
+    formats = stageable(formats)
+    swept: set[str] = set()
+    count = 0
+    for key, n, whole in notices:
+        base = _base(outbox, n, key)
+        head = os.path.dirname(base)
+        if head not in swept:
+            swept.add(head)
+            _folder(head)
+            discard_staged(head, older_than_s=STALE_STAGED_S)
+        summary = isinstance(n, FarmSummary)
+        for fmt in (OUTBOX_FORMATS if summary else formats):
+            data = whole + b"\n" if (fmt == "json" and whole is not None) else render(n, fmt).encode("utf-8")
+            _put(staged_path(f"{base}.{EXTENSIONS[fmt]}", token), data)
+            count += 1
+        if summary and n.runsheet.get("csv"):
+            _put(staged_path(base + ".runsheet.csv", token), n.runsheet["csv"].encode("utf-8"))
+            count += 1
+    return count
+
+
+def discard_staged(folder: str | Path, token: str | None = None, *, older_than_s: float | None = None) -> int:
+    """Remove staged files from an outbox folder: a run's own (``token``) or any older than ``older_than_s``."""
+    now = time.time()
+    removed = 0
+    mark = None if token is None else f".{token}{STAGED_SUFFIX}"
+    try:
+        entries = list(os.scandir(folder))
+    except FileNotFoundError:
+        return 0
+    for e in entries:
+        if not e.name.endswith(STAGED_SUFFIX) or (mark is not None and not e.name.endswith(mark)):
+            continue
+        with _suppress():
+            if older_than_s is None or now - e.stat().st_mtime > older_than_s:
+                os.unlink(e.path)
+                removed += 1
+    return removed
+
+
+def _publish(path: str, token: str | None) -> bool:
+    """Move the run's staged file for ``path`` to its own name; False when none was staged."""
+    if not token:
+        return False
+    try:
+        os.replace(staged_path(path, token), path)
+        return True
+    except FileNotFoundError:
+        return False
 
 
 class _suppress:
@@ -293,28 +394,30 @@ def _scrub(text: str, settings) -> str:
 _FOLDERS: set[str] = set()
 
 
-def _folder(path: Path) -> None:
+def _folder(path: str | Path) -> None:
     """Make ``path`` (and its parents) unless this process did so already."""
     key = str(path)
     if key not in _FOLDERS:
-        path.mkdir(parents=True, exist_ok=True)
+        os.makedirs(key, exist_ok=True)
         if len(_FOLDERS) > 4096:
             _FOLDERS.clear()
         _FOLDERS.add(key)
 
 
-def _send_outbox(r: _Rendered, settings, formats: Sequence[str], chart: bool) -> str:
-    base = outbox_base(settings.outbox, r.n, r.row.key)
-    _folder(base.parent)
+def _send_outbox(r: _Rendered, settings, formats: Sequence[str], chart: bool, staged: str | None = None) -> str:
+    base = _base(str(settings.outbox), r.n, r.row.key)
+    head, name = os.path.split(base)
+    _folder(head)
     png = r.png() if chart else None
     if png:
-        _write(base.with_name(base.name + ".png"), png)
+        _write(base + ".png", png)
     for fmt in formats:
-        src = base.name + ".png" if (fmt == "html" and png) else None
-        _write(base.with_name(f"{base.name}.{EXTENSIONS[fmt]}"), r.get(fmt, src).encode("utf-8"))
-    if isinstance(r.n, FarmSummary) and r.n.runsheet.get("csv"):
-        _write(base.with_name(base.name + ".runsheet.csv"), r.n.runsheet["csv"].encode("utf-8"))
-    return str(base.parent)
+        path = f"{base}.{EXTENSIONS[fmt]}"
+        if (fmt == "html" and png) or not _publish(path, staged):
+            _write(path, r.get(fmt, name + ".png" if (fmt == "html" and png) else None).encode("utf-8"))
+    if isinstance(r.n, FarmSummary) and r.n.runsheet.get("csv") and not _publish(base + ".runsheet.csv", staged):
+        _write(base + ".runsheet.csv", r.n.runsheet["csv"].encode("utf-8"))
+    return head
 
 
 def _send_sms(r: _Rendered, settings, recipient: Recipient, number: str) -> str:
@@ -436,6 +539,22 @@ def _send_webhook(r: _Rendered, settings, recipient: Recipient, url: str, *, url
 # The delivery loop
 # --------------------------------------------------------------------------------------------------
 
+class Attempt:
+    """One delivery attempt as made and stored (a ``Delivery`` row, without the ORM's bookkeeping)."""
+
+    __slots__ = ("notice_id", "recipient_id", "channel", "address", "attempt", "status", "attempted_at", "error",
+                 "id")
+
+    def __init__(self, notice_id: int, recipient_id: int | None, channel: str, address: str, attempt: int,
+                 status: str, attempted_at: dt.datetime, error: str = "", id: int | None = None):
+        self.notice_id, self.recipient_id, self.channel, self.address = notice_id, recipient_id, channel, address
+        self.attempt, self.status, self.attempted_at, self.error, self.id = attempt, status, attempted_at, error, id
+
+    def __repr__(self) -> str:
+        return (f"Attempt(notice {self.notice_id}, recipient {self.recipient_id}, {self.channel}, "
+                f"attempt {self.attempt}: {self.status})")
+
+
 @dataclass
 class _Job:
     rendered: _Rendered
@@ -464,9 +583,10 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
                     force: bool = False, retry: RetryPolicy = RetryPolicy(),
                     outbox_formats: Sequence[str] = OUTBOX_FORMATS, outbox_chart: bool | str = "auto",
                     outbox_options: Callable[[Any], tuple[Sequence[str], bool | str]] | None = None,
+                    staged: str | None = None,
                     smtp_factory=smtplib.SMTP, ssl_context: ssl.SSLContext | None = None,
                     urlopen=urllib.request.urlopen, clock: Callable[[], float] = time.time,
-                    timeout_s: float = 20.0) -> list[Delivery]:
+                    timeout_s: float = 20.0) -> list[Attempt]:
     """Deliver several notices, sharing the retry pauses.
 
     Parameters
@@ -493,13 +613,17 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
         ``outbox_options(notice_row) -> (formats, chart)``: per notice, in place of
         ``outbox_formats`` and ``outbox_chart`` (one call for a batch whose notices
         get different outbox forms).
+    staged : str, optional
+        The token of outbox files written ahead (:func:`stage_outbox`): such a file is
+        moved to its own name instead of being written again.
     smtp_factory, ssl_context, urlopen, clock, timeout_s
         Injection points for tests and special set-ups.
 
     Returns
     -------
-    list of Delivery
-        The rows of the attempts made by this call (already-delivered pairs are skipped silently).
+    list of Attempt
+        The attempts made by this call, as stored (``Delivery`` rows; already-delivered pairs are
+        skipped silently).
     """
     wanted = set(CHANNELS if channels is None else channels)
     unknown = wanted - set(CHANNELS)
@@ -529,7 +653,8 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
                 formats, chart_opt = outbox_options(row) if outbox_options else (outbox_formats, outbox_chart)
                 rank_ok = isinstance(r.n, BlockNotice) and r.n.status == "ok" and r.n.level_rank >= 2
                 chart = chart_opt is True or (chart_opt == "auto" and (rank_ok or by_mail))
-                j.send = (lambda r=r, chart=chart, formats=formats: _send_outbox(r, settings, formats, chart))
+                j.send = (lambda r=r, chart=chart, formats=formats: _send_outbox(r, settings, formats, chart,
+                                                                                staged))
                 jobs.append(j)
         for rc in recips:
             ch_map = rc.channels or {}
@@ -556,18 +681,17 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
                 if ch not in CHANNELS:
                     log.warning("recipient %s: channel %r is not supported; skipped", rc.name, ch)
 
-    made: list[Delivery] = []
+    made: list[Attempt] = []
     pending = jobs
     attempts = max(1, int(retry.attempts))
     for round_index in range(attempts):
         again: list[_Job] = []
-        outcomes = _attempt_all(pending, settings)
+        outcomes = _attempt_all(pending, settings, staged)
         for j, (status, error, address, retry_it) in zip(pending, outcomes, strict=True):
             if retry_it:
                 again.append(j)
-            d = Delivery(notice_id=j.rendered.row.id, recipient_id=None if j.recipient is None else j.recipient.id,
-                         channel=j.channel, address=str(address)[:500], attempt=j.attempt, status=status,
-                         attempted_at=dt.datetime.now(dt.UTC), error=error)
+            d = Attempt(j.rendered.row.id, None if j.recipient is None else j.recipient.id, j.channel,
+                        str(address)[:500], j.attempt, status, dt.datetime.now(dt.UTC), error)
             made.append(d)
             who = "outbox" if j.recipient is None else j.recipient.name
             if status == "failed":
@@ -606,14 +730,15 @@ def _outbox_weight(j: _Job) -> int:
     return max(1, len(n.rows)) if isinstance(n, FarmSummary) else 1
 
 
-def _attempt_all(jobs: list[_Job], settings) -> list[tuple[str, str, str, bool]]:
+def _attempt_all(jobs: list[_Job], settings, staged: str | None = None) -> list[tuple[str, str, str, bool]]:
     """One attempt for each job (its attempt count raised), results in the order of the jobs.
 
     The outbox files of a large batch (:data:`FORK_OUTBOX_FROM` block notices or farm-summary
     rows or more) are rendered
     and written by ``settings.workers`` processes at once (:func:`advisory.forking.fork_map`),
     each its own consecutive share; file names never clash (each notice has its own) and
-    a write is atomic, so a share done again after a worker died changes nothing.  Mail,
+    a write is atomic, so a share done again after a worker died changes nothing.  Files
+    written ahead (``staged``) are only renamed, in this process.  Mail,
     webhooks and text messages always go from this process, in order.
     """
     from advisory import forking
@@ -622,7 +747,8 @@ def _attempt_all(jobs: list[_Job], settings) -> list[tuple[str, str, str, bool]]
     boxed = [k for k, j in enumerate(jobs) if j.channel == "outbox"]
     workers = int(getattr(settings, "workers", 1) or 1)
     weight = {k: _outbox_weight(jobs[k]) for k in boxed}
-    if workers > 1 and len(boxed) > 1 and sum(weight.values()) >= FORK_OUTBOX_FROM and forking.can_fork():
+    if (workers > 1 and len(boxed) > 1 and sum(weight.values()) >= FORK_OUTBOX_FROM and forking.can_fork()
+            and not staged):
         log.info("writing %d outbox notices with %d processes", len(boxed), workers)
         # heaviest first, dealt out like cards: each share gets its part of the large farm summaries
         heavy_first = sorted(boxed, key=lambda k: -weight[k])
@@ -641,7 +767,7 @@ def _attempt_all(jobs: list[_Job], settings) -> list[tuple[str, str, str, bool]]
 _DELIVERY_COLUMNS = ("notice_id", "recipient_id", "channel", "address", "attempt", "status", "attempted_at", "error")
 
 
-def _insert_deliveries(session: Session, rows: list[Delivery]) -> None:
+def _insert_deliveries(session: Session, rows: list[Attempt]) -> None:
     """Write the attempts in bulk (:func:`advisory.store.bulk.insert_rows`) and give each row its new id.
 
     The rows stay outside the session (nothing else changes them); what the caller
@@ -680,7 +806,7 @@ def save_notice(session: Session, notice: BlockNotice | FarmSummary, *, farm_id:
 
 
 def deliver_notice(session: Session, notice_row: Notice, recipients: Sequence[Recipient], settings, *,
-                   sleep: Callable[[float], Any] = time.sleep, **kw) -> list[Delivery]:
+                   sleep: Callable[[float], Any] = time.sleep, **kw) -> list[Attempt]:
     """Deliver one stored notice to its recipients (see :func:`deliver_notices` for the options)."""
     return deliver_notices(session, [(notice_row, recipients)], settings, sleep=sleep, **kw)
 
