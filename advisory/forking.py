@@ -97,38 +97,3 @@ def fork_map(fn: Callable[[Any], Any], items: Sequence[Any], workers: int, *, ow
         _WORK.clear()
     return out
 
-
-class Background:
-    """A function running in a forked copy of this process while this one goes on (see :func:`background`)."""
-
-    def __init__(self, fn: Callable[[], Any]):
-        from concurrent.futures import ProcessPoolExecutor
-
-        self._pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("fork"))
-        _WORK.append((lambda _: fn(), [None]))
-        try:
-            self._future = self._pool.submit(_run_share, 0, 1)  # forks now: the copy sees fn in _WORK
-        finally:
-            _WORK.clear()
-
-    def result(self) -> tuple[bool, Any]:
-        """Wait for it: ``(True, result)``, or ``(False, error)`` when it failed or its process died."""
-        try:
-            return True, self._future.result()[0]
-        except Exception as exc:  # a broken process, or fn raised
-            return False, exc
-        finally:
-            self._pool.shutdown(wait=True)
-
-
-def background(fn: Callable[[], Any]) -> Background | None:
-    """Start ``fn()`` in a forked copy of this process; None where forking is not safe here.
-
-    For work whose result is optional (files written ahead, say): the caller goes on,
-    then asks :meth:`Background.result`.  While the copy runs, this process does not fork
-    again (the pool's own thread makes :func:`can_fork` false).  The copy must not use
-    this process's database connections.
-    """
-    if not can_fork():
-        return None
-    return Background(fn)

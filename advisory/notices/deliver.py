@@ -75,7 +75,7 @@ from sqlalchemy.orm import Session
 
 from advisory import __version__
 from advisory.notices import words as w
-from advisory.notices.compose import BlockNotice, FarmSummary
+from advisory.notices.compose import BlockNotice, FarmSummary, whole_json
 from advisory.notices.render import EXTENSIONS, as_notice, render
 from advisory.store.schema import Delivery, Notice, Recipient
 
@@ -291,7 +291,8 @@ def stageable(formats: Sequence[str]) -> tuple[str, ...]:
     return tuple(f for f in formats if f != "html")
 
 
-def stage_outbox(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice | FarmSummary, bytes | None]],
+def stage_outbox(outbox: str | Path,
+                 notices: Iterable[tuple[str, BlockNotice | FarmSummary, tuple[bytes, bytes] | None]],
                  formats: Sequence[str], token: str) -> int:
     """Write block notices' outbox files ahead of their delivery, under hidden names; how many.
 
@@ -304,8 +305,9 @@ def stage_outbox(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice | 
     Parameters
     ----------
     outbox : path
-    notices : iterable of (str, BlockNotice or FarmSummary, bytes or None)
-        Each notice's stored key (``Notice.key``), the notice, and its JSON when at hand.
+    notices : iterable of (str, BlockNotice or FarmSummary, (bytes, bytes) or None)
+        Each notice's stored key (``Notice.key``), the notice, and where at hand its JSON
+        as stored and its data's (:func:`~advisory.notices.compose.whole_json` joins them).
     formats : sequence of str
         Formats of the block notices (HTML is left out; see :func:`stageable`).  A farm
         summary gets every format and its run sheet, as the delivery gives it.
@@ -316,7 +318,7 @@ def stage_outbox(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice | 
     formats = stageable(formats)
     swept: set[str] = set()
     count = 0
-    for key, n, whole in notices:
+    for key, n, parts in notices:
         base = _base(outbox, n, key)
         head = os.path.dirname(base)
         if head not in swept:
@@ -325,7 +327,10 @@ def stage_outbox(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice | 
             discard_staged(head, older_than_s=STALE_STAGED_S)
         summary = isinstance(n, FarmSummary)
         for fmt in (OUTBOX_FORMATS if summary else formats):
-            data = whole + b"\n" if (fmt == "json" and whole is not None) else render(n, fmt).encode("utf-8")
+            if fmt == "json" and parts is not None:
+                data = whole_json(*parts) + b"\n"
+            else:
+                data = render(n, fmt).encode("utf-8")
             _put(staged_path(f"{base}.{EXTENSIONS[fmt]}", token), data)
             count += 1
         if summary and n.runsheet.get("csv"):
