@@ -747,8 +747,6 @@ def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mo
     payloads: list[bytes] = []
     composed: list[tuple | None] = []
     for a in todo:
-        encoded = jsoncodec.encode(a)
-        payload = jsoncodec.loads(encoded)  # advisory.assessment.to_dict(a), made faster
         previous_noticed = noticed.get((a.block_id, a.kind, a.night)) if a.is_update else None
         notice = None
         why: list[str] = []
@@ -756,10 +754,11 @@ def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mo
             why = material_change(a, previous_noticed)
             if why:
                 a.details = {**a.details, "update_reasons": why}
-                payload = {**payload, "details": {**(payload.get("details") or {}), "update_reasons": list(why)}}
-                encoded = jsoncodec.encode(payload)
+        # advisory.assessment.to_dict(a), encoded once: stored as the forecast's payload, and the
+        # notice's data (parsed only if the notice is drawn or rendered from it)
+        encoded = jsoncodec.encode(a)
         if not a.is_update or why:
-            n = compose.compose_block(a, previous_noticed, data=payload)
+            n = compose.compose_block(a, previous_noticed, data=jsoncodec.Encoded(encoded))
             # stored without its data (the forecast's payload, stored once)
             notice = (n.key, n.subject, n, compose.stored_json(n))
         payloads.append(encoded)

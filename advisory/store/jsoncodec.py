@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+from collections.abc import Mapping
 from typing import Any
 
 import orjson
@@ -25,7 +26,50 @@ _OPTIONS = orjson.OPT_NON_STR_KEYS | orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_PAS
 _ISO: dict[dt.datetime, str] = {}
 
 
+class Encoded(Mapping):
+    """A JSON object kept encoded (bytes), read as a mapping: parsed on first use.
+
+    A large run's notices carry their assessment's data this way: it is stored and
+    written to the outbox as the bytes it already is (encoded as a :class:`Fragment`),
+    and parsed only where a notice is drawn or rendered from it.  Copies and pickles
+    keep only the bytes.
+    """
+
+    __slots__ = ("raw", "_parsed")
+
+    def __init__(self, raw: bytes):
+        self.raw = raw
+        self._parsed: dict | None = None
+
+    def _value(self) -> dict:
+        if self._parsed is None:
+            self._parsed = orjson.loads(self.raw)
+        return self._parsed
+
+    def __getitem__(self, key):
+        return self._value()[key]
+
+    def __iter__(self):
+        return iter(self._value())
+
+    def __len__(self) -> int:
+        return len(self._value())
+
+    def __eq__(self, other) -> bool:
+        return self._value() == (other._value() if isinstance(other, Encoded) else other)
+
+    __hash__ = None
+
+    def __reduce__(self):
+        return (Encoded, (self.raw,))
+
+    def __repr__(self) -> str:
+        return f"Encoded({len(self.raw)} bytes)"
+
+
 def _fallback(value: Any):
+    if isinstance(value, Encoded):
+        return orjson.Fragment(value.raw)
     if isinstance(value, dt.datetime):  # also pandas.Timestamp
         s = _ISO.get(value)
         if s is None:

@@ -1,0 +1,36 @@
+"""The stored JSON form: encoded once, joined without encoding again, parsed only when read."""
+
+from __future__ import annotations
+
+import copy
+import datetime as dt
+import json
+import pickle
+
+from advisory.notices import render
+from advisory.notices.compose import compose_block, stored_json, whole_json
+from advisory.store import jsoncodec
+from tests.notices import samples
+
+
+def test_encoded_mapping_reads_pickles_and_writes_as_it_is():
+    raw = jsoncodec.encode({"p50_c": -2.5, "curve": [{"time_utc": dt.datetime(2026, 4, 8, 9, tzinfo=dt.UTC)}]})
+    e = jsoncodec.Encoded(raw)
+    assert jsoncodec.encode({"data": e}) == b'{"data":' + raw + b"}"   # written as the bytes it is
+    assert e["p50_c"] == -2.5 and e.get("missing") is None and len(e) == 2
+    assert e["curve"][0]["time_utc"] == "2026-04-08T09:00:00+00:00"   # instants stored in UTC
+    for again in (pickle.loads(pickle.dumps(e)), copy.deepcopy(e)):
+        assert again == e and again.raw == raw
+    assert e == json.loads(raw)
+
+
+def test_whole_json_is_the_notice_with_its_data():
+    n = compose_block(samples.frost_assessment())
+    stored = json.loads(stored_json(n))
+    assert "data" not in stored and stored["key"] == n.key
+    whole = json.loads(whole_json(stored_json(n), jsoncodec.encode(n.data)))
+    assert whole == json.loads(json.dumps(n.to_dict()))
+    # a notice carrying its data still encoded renders to the same bytes
+    lazy = compose_block(samples.frost_assessment(), data=jsoncodec.Encoded(jsoncodec.encode(n.data)))
+    assert render.render(lazy, "json") == render.render(n, "json")
+    assert render.render(lazy, "text") == render.render(n, "text")
