@@ -285,10 +285,15 @@ def staged_path(path: str, token: str) -> str:
     return os.path.join(head, f".{name}.{token}{STAGED_SUFFIX}")
 
 
+#: Outbox formats of a block notice written ahead: those at hand without rendering (the JSON
+#: joined from bytes, the short text); the others take templates (and the HTML the chart, which
+#: depends on how each notice goes out), rendered by the delivery's writers in parallel.
+STAGED_FORMATS = ("json", "sms")
+
+
 def stageable(formats: Sequence[str]) -> tuple[str, ...]:
-    """The outbox formats that can be written ahead: all but HTML (which shows the chart or not,
-    as the delivery decides)."""
-    return tuple(f for f in formats if f != "html")
+    """The outbox formats of a block notice that are written ahead (see :data:`STAGED_FORMATS`)."""
+    return tuple(f for f in formats if f in STAGED_FORMATS)
 
 
 def stage_outbox(outbox: str | Path,
@@ -309,8 +314,8 @@ def stage_outbox(outbox: str | Path,
         Each notice's stored key (``Notice.key``), the notice, and where at hand its JSON
         as stored and its data's (:func:`~advisory.notices.compose.whole_json` joins them).
     formats : sequence of str
-        Formats of the block notices (HTML is left out; see :func:`stageable`).  A farm
-        summary gets every format and its run sheet, as the delivery gives it.
+        Formats of the block notices (only those of :func:`stageable` are written).  Farm
+        summaries are left to the delivery.
     token : str
         The run's own mark in the hidden names, so that a run only ever publishes its own files.
     """
@@ -325,16 +330,14 @@ def stage_outbox(outbox: str | Path,
             swept.add(head)
             _folder(head)
             discard_staged(head, older_than_s=STALE_STAGED_S)
-        summary = isinstance(n, FarmSummary)
-        for fmt in (OUTBOX_FORMATS if summary else formats):
+        if not isinstance(n, BlockNotice):
+            continue
+        for fmt in formats:
             if fmt == "json" and parts is not None:
                 data = whole_json(*parts) + b"\n"
             else:
                 data = render(n, fmt).encode("utf-8")
             _put(staged_path(f"{base}.{EXTENSIONS[fmt]}", token), data)
-            count += 1
-        if summary and n.runsheet.get("csv"):
-            _put(staged_path(base + ".runsheet.csv", token), n.runsheet["csv"].encode("utf-8"))
             count += 1
     return count
 
@@ -418,9 +421,9 @@ def _send_outbox(r: _Rendered, settings, formats: Sequence[str], chart: bool, st
         _write(base + ".png", png)
     for fmt in formats:
         path = f"{base}.{EXTENSIONS[fmt]}"
-        if (fmt == "html" and png) or not _publish(path, staged):
+        if fmt not in STAGED_FORMATS or not isinstance(r.n, BlockNotice) or not _publish(path, staged):
             _write(path, r.get(fmt, name + ".png" if (fmt == "html" and png) else None).encode("utf-8"))
-    if isinstance(r.n, FarmSummary) and r.n.runsheet.get("csv") and not _publish(base + ".runsheet.csv", staged):
+    if isinstance(r.n, FarmSummary) and r.n.runsheet.get("csv"):
         _write(base + ".runsheet.csv", r.n.runsheet["csv"].encode("utf-8"))
     return head
 
@@ -568,6 +571,8 @@ class _Job:
     address: str
     attempt: int
     send: Callable[[], str] = field(repr=False, default=None)
+    #: Work of an outbox job (see :func:`_outbox_weight`).
+    weight: int = 1
 
 
 def _existing(session: Session, notice_ids: list[int]) -> dict[tuple[int, int | None, str], tuple[int, bool]]:
@@ -660,6 +665,7 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
                 chart = chart_opt is True or (chart_opt == "auto" and (rank_ok or by_mail))
                 j.send = (lambda r=r, chart=chart, formats=formats: _send_outbox(r, settings, formats, chart,
                                                                                 staged))
+                j.weight = _outbox_weight(r.n, formats, chart, staged)
                 jobs.append(j)
         for rc in recips:
             ch_map = rc.channels or {}
@@ -691,7 +697,7 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
     attempts = max(1, int(retry.attempts))
     for round_index in range(attempts):
         again: list[_Job] = []
-        outcomes = _attempt_all(pending, settings, staged)
+        outcomes = _attempt_all(pending, settings)
         for j, (status, error, address, retry_it) in zip(pending, outcomes, strict=True):
             if retry_it:
                 again.append(j)
@@ -729,13 +735,15 @@ def _attempt(j: _Job, settings) -> tuple[str, str, str, bool, int]:
 FORK_OUTBOX_FROM = 1000
 
 
-def _outbox_weight(j: _Job) -> int:
-    """Rough work of writing a notice to the outbox: one per block notice, one per row of a farm summary."""
-    n = j.rendered.n
-    return max(1, len(n.rows)) if isinstance(n, FarmSummary) else 1
+def _outbox_weight(n: BlockNotice | FarmSummary, formats: Sequence[str], chart: bool, staged: str | None) -> int:
+    """Rough work of writing a notice to the outbox: one per block notice, one per row of a farm
+    summary; none for a block notice whose every file was written ahead (``staged``)."""
+    if isinstance(n, FarmSummary):
+        return max(1, len(n.rows))
+    return 0 if (staged and not chart and set(formats) <= set(STAGED_FORMATS)) else 1
 
 
-def _attempt_all(jobs: list[_Job], settings, staged: str | None = None) -> list[tuple[str, str, str, bool]]:
+def _attempt_all(jobs: list[_Job], settings) -> list[tuple[str, str, str, bool]]:
     """One attempt for each job (its attempt count raised), results in the order of the jobs.
 
     The outbox files of a large batch (:data:`FORK_OUTBOX_FROM` block notices or farm-summary
@@ -743,7 +751,7 @@ def _attempt_all(jobs: list[_Job], settings, staged: str | None = None) -> list[
     and written by ``settings.workers`` processes at once (:func:`advisory.forking.fork_map`),
     each its own consecutive share; file names never clash (each notice has its own) and
     a write is atomic, so a share done again after a worker died changes nothing.  Files
-    written ahead (``staged``) are only renamed, in this process.  Mail,
+    written ahead weigh nothing: they are only renamed.  Mail,
     webhooks and text messages always go from this process, in order.
     """
     from advisory import forking
@@ -751,9 +759,8 @@ def _attempt_all(jobs: list[_Job], settings, staged: str | None = None) -> list[
     out: list[tuple | None] = [None] * len(jobs)
     boxed = [k for k, j in enumerate(jobs) if j.channel == "outbox"]
     workers = int(getattr(settings, "workers", 1) or 1)
-    weight = {k: _outbox_weight(jobs[k]) for k in boxed}
-    if (workers > 1 and len(boxed) > 1 and sum(weight.values()) >= FORK_OUTBOX_FROM and forking.can_fork()
-            and not staged):
+    weight = {k: jobs[k].weight for k in boxed}
+    if workers > 1 and len(boxed) > 1 and sum(weight.values()) >= FORK_OUTBOX_FROM and forking.can_fork():
         log.info("writing %d outbox notices with %d processes", len(boxed), workers)
         # heaviest first, dealt out like cards: each share gets its part of the large farm summaries
         heavy_first = sorted(boxed, key=lambda k: -weight[k])
