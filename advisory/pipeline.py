@@ -986,6 +986,8 @@ class _Staging:
         #: Files the writer wrote and the time it took [s] (known after :meth:`wait`).
         self.files, self.seconds = 0, 0.0
         self._error: BaseException | None = None
+        #: Whether :meth:`wait` was called (by the delivery, or after a failed run).
+        self.used = False
 
         def run():
             t0 = time.perf_counter()
@@ -1001,6 +1003,7 @@ class _Staging:
     def wait(self) -> str | None:
         """Wait for the writer; the token of its files, or None when it failed (the delivery then
         writes every file itself)."""
+        self.used = True
         self._thread.join()
         if self._error is not None:
             log.warning("outbox files written ahead are not used (%s); the delivery writes them", self._error)
@@ -1296,6 +1299,53 @@ def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.dateti
         db.engine.dispose()
 
 
+def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, block_ids, farm, names, *,
+                now: dt.datetime, update: bool, key: str | None, deliver: bool, settings, sleep,
+                timings: StageTimes) -> None:
+    """The stages of :func:`run_night` after its start: assess and store (one transaction), then deliver."""
+    known: dict[int, tuple] = {}  # the notices stored by this run and their recipients (not read back)
+    if state == "new":
+        with _batch_gc(), db.transaction() as session:
+            timings.lap("start")
+            blocks = _load_blocks(session, block_ids, farm, names, equipment=False)
+            farm_ids = sorted({b.farm_id for b in blocks})
+            done_before: list[str] = []
+            if not update:  # a block already assessed tonight is not assessed again (a rerun)
+                before = _previous_revisions(session, [b.id for b in blocks], night, "frost")
+                done_before = [f"{b.name}: frost {night} already assessed (revision {before[b.id]})"
+                               for b in blocks if b.id in before]
+                blocks = [b for b in blocks if b.id not in before]
+            timings.lap("load blocks")
+            res.assessments, prepared = _assess_prepared(db, session, blocks, night, now=now, update=update,
+                                                         workers=getattr(settings, "workers", 1), timings=timings)
+            stored, res.skipped = _store(session, res.assessments,
+                                         revision_mode="update" if update else "evening", now=now,
+                                         timings=timings, prepared=prepared,
+                                         workers=getattr(settings, "workers", 1),
+                                         stage=(lambda items: staged.append(_stage_outbox(items, settings)))
+                                         if deliver else None)
+            res.skipped = done_before + res.skipped
+            res.notices = [n.id for n, _ in stored]
+            known = {n.id: (n, recips) for n, recips in stored}
+            _mark_run(session, key, "stored", now)
+        timings.lap("commit")
+    else:  # stored before a crash or a stop: only delivery is left
+        with db.transaction() as session:
+            farm_ids = sorted({b.farm_id for b in _load_blocks(session, block_ids, farm, names, equipment=False)})
+    if deliver:
+        # New notices, and any of this night's notices that a crash left undelivered.
+        staging = staged[0] if staged else None
+        token = staging.wait() if staging is not None else None
+        if staging is not None:
+            timings.lap("wait for outbox writer")
+        if token:
+            timings["outbox files written ahead"] = staging.seconds  # by the writer, meanwhile
+        with _frozen_heap():
+            res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids, known=known), settings,
+                                      sleep=sleep, staged=token)
+        timings.lap("outbox delivery")
+
+
 def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now: dt.datetime | None = None,
               update: bool = False, key: str | None = None, farm: str | None = None,
               names: Sequence[str] | None = None, deliver: bool = True, settings=None,
@@ -1323,56 +1373,21 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
     settings = settings or settings_mod.load(db.url)
     res = RunResult(kind="update" if update else "evening", night=night)
     timings = timings if timings is not None else StageTimes()
-    known: dict[int, tuple] = {}  # the notices stored by this run and their recipients (not read back)
     state = _start_run(db, key, res.kind, night, now)
     if state == "finished":
         res.skipped.append(f"run {key} already done")
         return res
-    staging = None
-    if state == "new":
-        with _batch_gc(), db.transaction() as session:
-            timings.lap("start")
-            blocks = _load_blocks(session, block_ids, farm, names, equipment=False)
-            farm_ids = sorted({b.farm_id for b in blocks})
-            done_before: list[str] = []
-            if not update:  # a block already assessed tonight is not assessed again (a rerun)
-                before = _previous_revisions(session, [b.id for b in blocks], night, "frost")
-                done_before = [f"{b.name}: frost {night} already assessed (revision {before[b.id]})"
-                               for b in blocks if b.id in before]
-                blocks = [b for b in blocks if b.id not in before]
-            timings.lap("load blocks")
-            res.assessments, prepared = _assess_prepared(db, session, blocks, night, now=now, update=update,
-                                                         workers=getattr(settings, "workers", 1), timings=timings)
-            staged: list[_Staging | None] = []
-            stored, res.skipped = _store(session, res.assessments,
-                                         revision_mode="update" if update else "evening", now=now,
-                                         timings=timings, prepared=prepared,
-                                         workers=getattr(settings, "workers", 1),
-                                         stage=(lambda items: staged.append(_stage_outbox(items, settings)))
-                                         if deliver else None)
-            staging = staged[0] if staged else None
-            res.skipped = done_before + res.skipped
-            res.notices = [n.id for n, _ in stored]
-            known = {n.id: (n, recips) for n, recips in stored}
-            _mark_run(session, key, "stored", now)
-        timings.lap("commit")
-    else:  # stored before a crash or a stop: only delivery is left
-        with db.transaction() as session:
-            farm_ids = sorted({b.farm_id for b in _load_blocks(session, block_ids, farm, names, equipment=False)})
-    if deliver:
-        # New notices, and any of this night's notices that a crash left undelivered.
-        token = staging.wait() if staging is not None else None
-        if staging is not None:
-            timings.lap("wait for outbox writer")
-        if token:
-            timings["outbox files written ahead"] = staging.seconds  # by the writer, meanwhile
-        with _frozen_heap():
-            res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids, known=known), settings,
-                                      sleep=sleep, staged=token)
-        if staging is not None:
+    staged: list[_Staging | None] = []  # outbox files written ahead while the run stores
+    try:
+        _run_stages(db, res, staged, state, night, block_ids, farm, names, now=now, update=update, key=key,
+                    deliver=deliver, settings=settings, sleep=sleep, timings=timings)
+    finally:
+        staging = staged[0] if staged else None
+        if staging is not None:  # what the delivery did not use (or all of it, if the run failed before)
+            if not staging.used:
+                staging.wait()
             staging.discard()
-        timings.lap("outbox delivery")
-    gc.unfreeze()  # the run's objects, hidden from the collector by _batch_gc
+        gc.unfreeze()  # the run's objects, hidden from the collector by _batch_gc
     _mark_run(db, key, "finished", now)
     timings.lap("finish")
     res.timings = dict(timings)

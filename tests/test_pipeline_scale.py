@@ -251,6 +251,30 @@ def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo
             assert got[name] == data, name
 
 
+def test_a_run_that_fails_after_writing_ahead_publishes_nothing(spring_db, quiet_channels, monkeypatch):
+    """Files written ahead stay hidden until the notices are stored; a failed store leaves none behind."""
+    from advisory.store import bulk
+    from advisory.store.schema import Forecast, Notice
+
+    monkeypatch.setattr(pipeline, "STAGE_OUTBOX_FROM", 2)
+    real = bulk.insert_rows
+
+    def failing(session, model, rows, key=None):
+        if model is Notice:
+            raise RuntimeError("database went away")
+        return real(session, model, rows, key)
+
+    monkeypatch.setattr(bulk, "insert_rows", failing)
+    with pytest.raises(RuntimeError, match="went away"):
+        pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    assert [p for p in quiet_channels.rglob("*") if p.is_file()] == []   # nothing published, nothing left
+    with spring_db.transaction() as s:
+        assert s.query(Forecast).count() == 0 and s.query(Notice).count() == 0
+    monkeypatch.setattr(bulk, "insert_rows", real)
+    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)   # the next run does it all
+    assert res.deliveries["outbox sent"] == len(res.notices) == 7
+
+
 def _same(a, b, where=""):
     """Equal, floats to 1e-9 relative."""
     if isinstance(a, float) and isinstance(b, float):
