@@ -354,6 +354,7 @@ def _run_child(what: str, args, db_url: str, outbox: Path, profile: str | None =
            "--outbox", args.outbox]
     if profile:
         cmd += ["--profile", profile]
+    os.sync()  # the set-up's (or the previous run's) writes reach the disk first, not during this run
     with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
         proc = subprocess.Popen(cmd, stdout=out, stderr=err, text=True)
         peak_pss = None
