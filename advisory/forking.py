@@ -96,4 +96,3 @@ def fork_map(fn: Callable[[Any], Any], items: Sequence[Any], workers: int, *, ow
     finally:
         _WORK.clear()
     return out
-

@@ -793,7 +793,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     workers : int
         Processes that may compose the farm summaries of a large run (see :mod:`advisory.forking`).
     stage : callable, optional
-        Called with ``[(key, notice, (stored JSON, payload JSON) or None)]`` once every notice of
+        Called with ``[(key, block notice, (stored JSON, payload JSON))]`` once every notice of
         the batch is composed, before anything is written (see :func:`_stage_outbox`).
     """
     if prepared is None:
@@ -830,9 +830,8 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     share = workers if sum(len(x[1]) for x in wanted) >= PARALLEL_FROM_BLOCKS else 1
     composed_summaries = forking.fork_map(lambda x: compose.compose_farm(x[1], revision=x[2]), wanted, share)
     _lap(timings, "compose summaries")
-    if stage is not None:  # every notice is composed: its outbox files can be written ahead
-        stage([(c[0], c[2], (c[3], p)) for c, p in zip(composed, payloads, strict=True) if c]
-              + [(x[3], summary, None) for x, summary in zip(wanted, composed_summaries, strict=True)])
+    if stage is not None:  # every block notice is composed: its outbox files can be written ahead
+        stage([(c[0], c[2], (c[3], p)) for c, p in zip(composed, payloads, strict=True) if c])
     forecast_ids = _insert_returning_ids(session, Forecast, [
         {"block_id": a.block_id, "kind": a.kind, "night": a.night, "revision": a.revision, "created_at": now,
          "reference_time": a.reference_time_utc, "status": a.status, "reason": a.reason, "model": a.model,

@@ -296,12 +296,11 @@ def stageable(formats: Sequence[str]) -> tuple[str, ...]:
     return tuple(f for f in formats if f in STAGED_FORMATS)
 
 
-def stage_outbox(outbox: str | Path,
-                 notices: Iterable[tuple[str, BlockNotice | FarmSummary, tuple[bytes, bytes] | None]],
+def stage_outbox(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice, tuple[bytes, bytes] | None]],
                  formats: Sequence[str], token: str) -> int:
     """Write block notices' outbox files ahead of their delivery, under hidden names; how many.
 
-    A large run has a forked copy of itself do this while it stores the notices: the files
+    A large run has a thread do this while it stores the notices: the files
     may not be published before the notices are stored (a stop in between would leave files
     for notices that were never stored, and the next run would store and send them again), so
     they wait under hidden names (:func:`staged_path`), and the delivery only renames each to
@@ -310,12 +309,12 @@ def stage_outbox(outbox: str | Path,
     Parameters
     ----------
     outbox : path
-    notices : iterable of (str, BlockNotice or FarmSummary, (bytes, bytes) or None)
-        Each notice's stored key (``Notice.key``), the notice, and where at hand its JSON
+    notices : iterable of (str, BlockNotice, (bytes, bytes) or None)
+        Each block notice's stored key (``Notice.key``), the notice, and where at hand its JSON
         as stored and its data's (:func:`~advisory.notices.compose.whole_json` joins them).
+        (Farm summaries are left to the delivery.)
     formats : sequence of str
-        Formats of the block notices (only those of :func:`stageable` are written).  Farm
-        summaries are left to the delivery.
+        The outbox formats (only those of :func:`stageable` are written).
     token : str
         The run's own mark in the hidden names, so that a run only ever publishes its own files.
     """
@@ -330,8 +329,6 @@ def stage_outbox(outbox: str | Path,
             swept.add(head)
             _folder(head)
             discard_staged(head, older_than_s=STALE_STAGED_S)
-        if not isinstance(n, BlockNotice):
-            continue
         for fmt in formats:
             if fmt == "json" and parts is not None:
                 data = whole_json(*parts) + b"\n"
