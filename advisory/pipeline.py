@@ -668,14 +668,6 @@ def material_change(new: asm.Assessment, old: asm.Assessment | None) -> list[str
     return why
 
 
-def assessment_payload(a: asm.Assessment) -> dict:
-    """``advisory.assessment.to_dict(a)`` (the stored forecast payload), computed faster.
-
-    Infinities become ``None`` (JSON has none); see :mod:`advisory.store.jsoncodec`.
-    """
-    return jsoncodec.plain(a)
-
-
 @dataclass(frozen=True)
 class StoredNotice:
     """A stored notice row as the run and the delivery read it (no database session needed).
@@ -692,6 +684,11 @@ class StoredNotice:
     #: :class:`~advisory.notices.compose.FarmSummary`) when the run that stored it
     #: still has it, else ``Notice.content`` as stored (plain data).
     content: Any = field(repr=False, default_factory=dict)
+
+    @property
+    def full_content(self) -> Any:
+        """The notice whole, as delivery reads it (``Notice.full_content`` of a stored row)."""
+        return self.content
 
 
 @dataclass

@@ -171,19 +171,12 @@ def verify_signature(secret: str, body: bytes, signature: str | None, timestamp:
 # Rendering once per notice
 # --------------------------------------------------------------------------------------------------
 
-def _content(notice_row) -> Any:
-    """What a notice row's renderings are made from: a stored row's whole content
-    (``Notice.full_content``), or the composed notice a run hands over."""
-    full = getattr(type(notice_row), "full_content", None)
-    return notice_row.full_content if full is not None else notice_row.content
-
-
 class _Rendered:
     """Renderings of one notice, made on first use."""
 
     def __init__(self, notice_row: Notice):
         self.row = notice_row
-        self.n: BlockNotice | FarmSummary = as_notice(_content(notice_row))
+        self.n: BlockNotice | FarmSummary = as_notice(notice_row.full_content)
         self._cache: dict[str, Any] = {}
         self._cid: str | None = None
 

@@ -108,13 +108,3 @@ Fragment = orjson.Fragment
 def loads(text: str | bytes) -> Any:
     """Parse JSON text (the database's JSON deserializer)."""
     return orjson.loads(text)
-
-
-def plain(value: Any) -> Any:
-    """The plain (JSON-able) form of ``value``: dicts, lists, strings, numbers, ``None``.
-
-    The same result as :func:`advisory.assessment.to_dict` for an assessment,
-    made by encoding and parsing again (several times faster than walking the
-    objects in Python).
-    """
-    return orjson.loads(orjson.dumps(value, default=_fallback, option=_OPTIONS))
