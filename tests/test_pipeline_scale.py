@@ -325,8 +325,8 @@ def test_driver_level_inserts_store_what_the_orm_stores(spring_db, demo_farm, tm
     looked_up = []
     from advisory.store import bulk
 
-    real = bulk.ids_by_key
-    monkeypatch.setattr(bulk, "ids_by_key", lambda s, t, k, r: looked_up.append(t.name) or real(s, t, k, r))
+    real = bulk._numbered_after
+    monkeypatch.setattr(bulk, "_numbered_after", lambda c, t, b, n: looked_up.append(t.name) or real(c, t, b, n))
     pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False)
     assert looked_up == ["forecasts", "notices"]  # the driver-level path was taken
     orm_db.dispose()

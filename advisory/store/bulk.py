@@ -3,16 +3,19 @@
 On SQLite, rows that give every column are written with one ``executemany`` of
 the driver, each value converted by its column's own SQLAlchemy type (so it is
 stored exactly as the ORM stores it), several times faster than SQLAlchemy's
-per-row statement building; the new ids are then read back by a unique key of
-the rows.  Elsewhere, or without a key, SQLAlchemy's bulk ``INSERT ...
-RETURNING`` is used.
+per-row statement building.  The new ids are then known without reading the
+rows back when SQLite numbered them as it usually does (each new row one more
+than the largest id before it, see "ROWIDs and the INTEGER PRIMARY KEY" in the
+SQLite documentation), which one count over the new id range confirms;
+otherwise they are read back by a unique key of the rows.  Elsewhere, or
+without a key, SQLAlchemy's bulk ``INSERT ... RETURNING`` is used.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
 
-from sqlalchemy import insert, select
+from sqlalchemy import func, insert, select
 from sqlalchemy.orm import Session
 
 #: Values per ``IN (...)`` list when ids are read back.
@@ -45,17 +48,43 @@ def insert_rows(session: Session, model, rows: list[dict], key: Sequence[str] | 
     if (conn.dialect.name == "sqlite" and key
             and all(len(r) == len(cols) for r in rows) and all(c.key in rows[0] for c in cols)):
         session.flush()
-        procs = [c.type._cached_bind_processor(conn.dialect) for c in cols]
         names = [c.key for c in cols]
+        columns = []  # each column's values, converted as its type binds them
+        for c, name in zip(cols, names, strict=True):
+            values = [r[name] for r in rows]
+            proc = c.type._cached_bind_processor(conn.dialect)
+            columns.append(values if proc is None else list(map(proc, values)))
         sql = (f"INSERT INTO {table.name} ({', '.join(c.name for c in cols)}) "
                f"VALUES ({', '.join('?' * len(cols))})")
-        conn.exec_driver_sql(sql, [tuple(v if p is None else p(v) for v, p in zip(
-            (r[n] for n in names), procs, strict=True)) for r in rows])
-        return ids_by_key(session, table, tuple(key), rows)
+        before = _largest_id(conn, table)
+        conn.exec_driver_sql(sql, list(zip(*columns, strict=True)))
+        numbered = _numbered_after(conn, table, before, len(rows))
+        return numbered if numbered is not None else ids_by_key(session, table, tuple(key), rows)
     ids: list[int] = []
     for chunk in _chunks(rows, 2000):
         ids += session.scalars(insert(model).returning(model.id, sort_by_parameter_order=True), chunk).all()
     return ids
+
+
+def _largest_id(conn, table) -> int:
+    """The largest id of ``table`` now (0 when empty)."""
+    pk = table.primary_key.columns.values()[0]
+    return int(conn.scalar(select(func.max(pk))) or 0)
+
+
+def _numbered_after(conn, table, before: int, n: int) -> list[int] | None:
+    """The ids of the ``n`` rows just inserted, when they are exactly ``before + 1 .. before + n``.
+
+    That holds when SQLite gave each new row one more than the largest id so far (its usual
+    rule); the rows were inserted in order, so the ids follow the order of the rows.  Any other
+    numbering (a row inserted or deleted by someone else meanwhile, ids taken at random after
+    the largest possible one) shows in the count, and None is returned.
+    """
+    pk = table.primary_key.columns.values()[0]
+    count, low, high = conn.execute(select(func.count(), func.min(pk), func.max(pk)).where(pk > before)).one()
+    if count == n and low == before + 1 and high == before + n:
+        return list(range(before + 1, before + n + 1))
+    return None
 
 
 def ids_by_key(session: Session, table, key: tuple[str, ...], rows: list[dict]) -> list[int]:
