@@ -96,3 +96,110 @@ def fork_map(fn: Callable[[Any], Any], items: Sequence[Any], workers: int, *, ow
     finally:
         _WORK.clear()
     return out
+
+
+class Spooler:
+    """Files written by a forked copy of this process while this one goes on working.
+
+    The copy is forked once (best early in a run, while this process is still small:
+    a page either process changes afterwards is copied), then handed its work through
+    a pipe: lists of ``(path, bytes)``, or a function and arguments that make such a
+    list there (so that the rendering, too, is done there).  A thread of the copy reads
+    the pipe at once, so handing work over costs this process only the copying of the
+    bytes.  The copy never touches the database or anything else of this process.
+
+    Parameters
+    ----------
+    write : callable
+        ``write(files) -> int``: writes a list of ``(path, bytes)`` in the copy; how many.
+    """
+
+    def __init__(self, write: Callable[[list[tuple[str, bytes]]], int]):
+        ctx = multiprocessing.get_context("fork")
+        inbox_r, self._inbox = ctx.Pipe(duplex=False)
+        self._report, report_w = ctx.Pipe(duplex=False)
+        self._proc = ctx.Process(target=_spool, args=(inbox_r, report_w, write, (self._inbox, self._report)),
+                                 name="spooler", daemon=True)
+        self._proc.start()
+        inbox_r.close()
+        report_w.close()
+        self._broken: str | None = None
+
+    def send(self, files: list[tuple[str, bytes]]) -> None:
+        """Hand over files to write."""
+        self._put(("files", files))
+
+    def call(self, fn: Callable[..., list[tuple[str, bytes]]], *args: Any) -> None:
+        """Have the copy write the files that ``fn(*args)`` makes there (``fn`` and ``args`` must pickle)."""
+        self._put(("call", fn, args))
+
+    def _put(self, message: tuple) -> None:
+        if self._broken is None:
+            try:
+                self._inbox.send(message)
+            except (OSError, ValueError) as exc:  # the copy is gone
+                self._broken = f"{type(exc).__name__}: {exc}"
+
+    def finish(self) -> tuple[int, float, str | None]:
+        """Wait until everything handed over is written: (files, seconds the copy spent, error or None).
+
+        An error in the copy (the first one; it writes nothing after it) or a copy that died is
+        reported, not raised.
+        """
+        self._put(("end",))
+        try:
+            result = self._report.recv() if self._broken is None else (0, 0.0, self._broken)
+        except (EOFError, OSError) as exc:
+            result = (0, 0.0, f"the spooler process stopped ({type(exc).__name__})")
+        self.close()
+        return result
+
+    def close(self) -> None:
+        """Stop the copy (at once, if it is still working) and release the pipes."""
+        if self._proc.is_alive():
+            self._inbox.close()
+            self._proc.join(timeout=0.5)
+            if self._proc.is_alive():
+                self._proc.kill()
+                self._proc.join()
+        for conn in (self._inbox, self._report):
+            conn.close()
+
+
+def _spool(inbox, report, write, parent_ends) -> None:
+    """The copy's side of :class:`Spooler`: a thread drains the pipe, this one writes."""
+    import gc
+    import queue
+    import time
+
+    gc.disable()  # short-lived; and a collection would touch (and so copy) every page of the parent's objects
+    for conn in parent_ends:
+        conn.close()
+    messages: queue.SimpleQueue = queue.SimpleQueue()
+
+    def drain():
+        while True:
+            try:
+                msg = inbox.recv()
+            except (EOFError, OSError):
+                msg = ("lost",)
+            messages.put(msg)
+            if msg[0] in ("end", "lost"):
+                return
+
+    threading.Thread(target=drain, name="spooler-inbox", daemon=True).start()
+    count, error, busy = 0, None, 0.0
+    while True:
+        msg = messages.get()
+        if msg[0] == "lost":  # the parent is gone: its files will be swept away as stale
+            return
+        if msg[0] == "end":
+            break
+        if error is None:
+            t0 = time.perf_counter()
+            try:
+                count += write(msg[1] if msg[0] == "files" else msg[1](*msg[2]))
+            except BaseException as exc:  # reported to the parent, which then writes the files itself
+                error = f"{type(exc).__name__}: {exc}"
+            busy += time.perf_counter() - t0
+    report.send((count, busy, error))

@@ -38,6 +38,7 @@ from __future__ import annotations
 import contextlib
 import datetime as dt
 import gc
+import itertools
 import logging
 import os
 import time
@@ -790,8 +791,9 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     workers : int
         Processes that may compose the farm summaries of a large run (see :mod:`advisory.forking`).
     stage : callable, optional
-        Called with ``[(key, block notice, (stored JSON, payload JSON))]`` once every notice of
-        the batch is composed, before anything is written (see :func:`_stage_outbox`).
+        Called with ``[(key, block notice, (stored JSON, payload JSON))]`` and ``[(key, farm
+        summary)]`` once every notice of the batch is composed, before anything is written
+        (see :meth:`_Staging.hand_over`).
     """
     if prepared is None:
         prepared = _prepare(session, assessments, revision_mode=revision_mode, timings=timings)
@@ -827,8 +829,10 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     share = workers if sum(len(x[1]) for x in wanted) >= PARALLEL_FROM_BLOCKS else 1
     composed_summaries = forking.fork_map(lambda x: compose.compose_farm(x[1], revision=x[2]), wanted, share)
     _lap(timings, "compose summaries")
-    if stage is not None:  # every block notice is composed: its outbox files can be written ahead
-        stage([(c[0], c[2], (c[3], p)) for c, p in zip(composed, payloads, strict=True) if c])
+    if stage is not None:  # every notice is composed: its outbox files can be written ahead
+        stage([(c[0], c[2], (c[3], p)) for c, p in zip(composed, payloads, strict=True) if c],
+              [(x[3], summary) for x, summary in zip(wanted, composed_summaries, strict=True)])
+        _lap(timings, "hand over to the outbox writer")
     forecast_ids = _insert_returning_ids(session, Forecast, [
         {"block_id": a.block_id, "kind": a.kind, "night": a.night, "revision": a.revision, "created_at": now,
          "reference_time": a.reference_time_utc, "status": a.status, "reason": a.reason, "model": a.model,
@@ -937,7 +941,7 @@ def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *,
 
     The rows are attached to the delivery session as they are (no reload); the outbox is written
     as the settings say (:func:`_outbox_plan`), using the files written ahead with token ``staged``
-    (:func:`_stage_outbox`); the other channels follow in one pass, so that the
+    (:class:`_Staging`); the other channels follow in one pass, so that the
     retry pauses are shared by the whole batch.
     """
     from advisory.notices import deliver as deliver_mod
@@ -968,44 +972,79 @@ def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *,
     return dict(counts)
 
 
-#: A run with at least this many block notices has their outbox files written ahead (see :func:`_stage_outbox`).
+#: A run for at least this many blocks has their outbox files written ahead (see :class:`_Staging`).
 STAGE_OUTBOX_FROM = 2000
+#: Block notices' files handed over to the writer at a time (bounds the memory the handing takes).
+_STAGE_CHUNK = 500
 
 
 class _Staging:
-    """A run's outbox files, being written ahead by a thread of its own (see :func:`_stage_outbox`)."""
+    """A large run's outbox files, written ahead by a forked copy of the run's process.
 
-    def __init__(self, write: Callable[[], int], folders: set[str], token: str):
-        import threading
+    Started once the blocks are loaded (while the process is still small: the copy
+    shares its memory, and a page either process changes afterwards is copied), the copy
+    waits until every notice is composed; then, while this process stores the notices,
+    it writes the block notices' JSON and short text (handed over as bytes) and renders
+    and writes every file of the farm summaries, all under hidden names
+    (:func:`advisory.notices.deliver.staged_path`).  After the commit, the delivery only
+    moves each file to its own name, and writes itself whatever is missing.  The other
+    formats of a block notice take templates (and a chart, which depends on how each
+    notice goes out): the delivery's writers render those, in parallel.
 
-        self.folders, self.token = folders, token
-        #: Files the writer wrote and the time it took [s] (known after :meth:`wait`).
+    A copy rather than a thread: a thread of this process would share one interpreter
+    lock with the inserts, and slowed them by more than it saved.  Nothing the copy
+    writes is visible before the delivery publishes it; a run that fails removes its
+    own hidden files, and a stopped run's are removed by the next run that writes ahead
+    once they are an hour old.
+    """
+
+    def __init__(self, settings, formats: tuple[str, ...]):
+        import secrets
+
+        from advisory import forking
+        from advisory.notices import deliver as deliver_mod
+
+        self.outbox, self.formats, self.token = str(settings.outbox), formats, secrets.token_hex(6)
+        #: Outbox folders given files (for :meth:`discard`).
+        self.folders: set[str] = set()
+        #: Files the copy wrote and the time it spent writing [s] (known after :meth:`wait`).
         self.files, self.seconds = 0, 0.0
-        self._error: BaseException | None = None
         #: Whether :meth:`wait` was called (by the delivery, or after a failed run).
         self.used = False
+        self._token: str | None = None
+        swept: set[str] = set()  # the copy's own record of the folders it swept
+        self._spooler = forking.Spooler(lambda files: deliver_mod.stage_outbox(files, swept))
 
-        def run():
-            t0 = time.perf_counter()
-            try:
-                self.files = write()
-            except BaseException as exc:  # reported by wait(); the delivery then writes the files
-                self._error = exc
-            self.seconds = time.perf_counter() - t0
+    def hand_over(self, blocks: list[tuple[str, Any, tuple[bytes, bytes] | None]],
+                  summaries: list[tuple[str, Any]]) -> None:
+        """Give the writer every composed notice of the run: ``blocks`` are each block notice's key,
+        the notice, and its stored JSON and its payload's (joined by
+        :func:`advisory.notices.compose.whole_json`); ``summaries`` each farm summary's key and the summary."""
+        from advisory.notices import deliver as deliver_mod
+        from advisory.notices import words
 
-        self._thread = threading.Thread(target=run, name="outbox-writer", daemon=True)
-        self._thread.start()
+        self.folders |= {os.path.join(self.outbox, words.slug(n.night, 10, "undated"))
+                         for _, n, _ in blocks} | {os.path.join(self.outbox, words.slug(n.night, 10, "undated"))
+                                                    for _, n in summaries}
+        if self.formats:
+            files = deliver_mod.staged_block_files(self.outbox, blocks, self.formats, self.token)
+            while chunk := list(itertools.islice(files, _STAGE_CHUNK * len(self.formats))):
+                self._spooler.send(chunk)
+        if summaries:  # rendered there, after the block files are handed over (the pipe is read meanwhile)
+            self._spooler.call(deliver_mod.staged_summary_files, self.outbox, summaries, self.token)
 
     def wait(self) -> str | None:
         """Wait for the writer; the token of its files, or None when it failed (the delivery then
         writes every file itself)."""
-        self.used = True
-        self._thread.join()
-        if self._error is not None:
-            log.warning("outbox files written ahead are not used (%s); the delivery writes them", self._error)
-            self.discard()
-            return None
-        return self.token
+        if not self.used:
+            self.used = True
+            self.files, self.seconds, error = self._spooler.finish()
+            if error is not None:
+                log.warning("outbox files written ahead are not used (%s); the delivery writes them", error)
+                self.discard()
+            else:
+                self._token = self.token
+        return self._token
 
     def discard(self) -> None:
         """Remove whatever the delivery did not use (nothing, when every notice was delivered)."""
@@ -1015,32 +1054,15 @@ class _Staging:
             deliver_mod.discard_staged(folder, self.token)
 
 
-def _stage_outbox(items: list[tuple[str, Any, tuple[bytes, bytes] | None]], settings) -> _Staging | None:
-    """Start writing a large run's outbox files ahead, in a thread, while the run stores.
-
-    ``items``: each composed notice's key, the notice and, for a block notice, its stored JSON
-    and its payload's (joined by :func:`advisory.notices.compose.whole_json` as each is written).
-    The delivery, after the commit, then only moves each file to its own name
-    (:func:`advisory.notices.deliver.stage_outbox`).  Only the block notices' formats that need
-    no rendering are written ahead (JSON and the short text, when the settings ask for them):
-    the rest is rendered by the delivery's writers, in parallel.  A thread, not a forked process: the writing is mostly waiting for the disk,
-    which a thread overlaps with the inserts as well, and a fork would duplicate every page of
-    the run's memory that either process touches meanwhile (measured: +350 MiB at 10,000
-    blocks).  Small runs write everything at delivery.
-    """
-    import secrets
-
+def _start_staging(n_blocks: int, settings) -> _Staging | None:
+    """A :class:`_Staging` for a run of ``n_blocks`` blocks, when it is large enough and may fork."""
+    from advisory import forking
     from advisory.notices import deliver as deliver_mod
-    from advisory.notices import words
 
-    if len(items) < STAGE_OUTBOX_FROM:
+    if n_blocks < STAGE_OUTBOX_FROM or not forking.can_fork():
         return None
     formats = deliver_mod.stageable(tuple(getattr(settings, "outbox_formats", None) or deliver_mod.OUTBOX_FORMATS))
-    if not formats:
-        return None
-    outbox, token = str(settings.outbox), secrets.token_hex(6)
-    folders = {os.path.join(outbox, words.slug(n.night, 10, "undated")) for _, n, _ in items}
-    return _Staging(lambda: deliver_mod.stage_outbox(outbox, items, formats, token), folders, token)
+    return _Staging(settings, formats)
 
 
 def _attached(session: Session, to_send: list[tuple[Notice, list]]) -> list[tuple[Notice, list]]:
@@ -1311,6 +1333,10 @@ def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, bl
                 done_before = [f"{b.name}: frost {night} already assessed (revision {before[b.id]})"
                                for b in blocks if b.id in before]
                 blocks = [b for b in blocks if b.id not in before]
+            if deliver:
+                staging = _start_staging(len(blocks), settings)
+                if staging is not None:
+                    staged.append(staging)
             timings.lap("load blocks")
             res.assessments, prepared = _assess_prepared(db, session, blocks, night, now=now, update=update,
                                                          workers=getattr(settings, "workers", 1), timings=timings)
@@ -1318,8 +1344,7 @@ def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, bl
                                          revision_mode="update" if update else "evening", now=now,
                                          timings=timings, prepared=prepared,
                                          workers=getattr(settings, "workers", 1),
-                                         stage=(lambda items: staged.append(_stage_outbox(items, settings)))
-                                         if deliver else None)
+                                         stage=staged[0].hand_over if staged else None)
             res.skipped = done_before + res.skipped
             res.notices = [n.id for n, _ in stored]
             known = {n.id: (n, recips) for n, recips in stored}
@@ -1373,7 +1398,7 @@ def run_night(db, night: dt.date, block_ids: Sequence[int] | None = None, *, now
     if state == "finished":
         res.skipped.append(f"run {key} already done")
         return res
-    staged: list[_Staging | None] = []  # outbox files written ahead while the run stores
+    staged: list[_Staging] = []  # outbox files written ahead while the run stores
     try:
         _run_stages(db, res, staged, state, night, block_ids, farm, names, now=now, update=update, key=key,
                     deliver=deliver, settings=settings, sleep=sleep, timings=timings)

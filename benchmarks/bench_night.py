@@ -392,7 +392,7 @@ def _tree_pss_mib(pid: int) -> float:
 
 
 STAGES = ("load blocks", "load observations", "sun+evening state", "forecast", "risk/plan", "compose",
-          "wait for workers", "compose summaries", "store forecasts", "store notices", "commit",
+          "wait for workers", "compose summaries", "hand over to the outbox writer", "store forecasts", "store notices", "commit",
           "wait for outbox writer", "outbox delivery", "outbox files written ahead")
 
 
@@ -406,11 +406,11 @@ def _print_run(r: dict) -> None:
     shown = set()
     for k in STAGES:
         if k in st:
-            print(f"    {k:<20} {st[k]:7.2f} s")
+            print(f"    {k:<30} {st[k]:7.2f} s")
             shown.add(k)
     for k, v in st.items():
         if k not in shown and v >= 0.005:
-            print(f"    {k:<20} {v:7.2f} s")
+            print(f"    {k:<30} {v:7.2f} s")
 
 
 def main() -> None:

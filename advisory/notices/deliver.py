@@ -62,7 +62,7 @@ import threading
 import time
 import urllib.error
 import urllib.request
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from email.headerregistry import Address
 from email.message import EmailMessage
@@ -282,6 +282,7 @@ def staged_path(path: str, token: str) -> str:
 #: joined from bytes, the short text); the others take templates (and the HTML the chart, which
 #: depends on how each notice goes out), rendered by the delivery's writers in parallel.
 STAGED_FORMATS = ("json", "sms")
+STAGED_EXTENSIONS = frozenset(EXTENSIONS[f] for f in STAGED_FORMATS)
 
 
 def stageable(formats: Sequence[str]) -> tuple[str, ...]:
@@ -289,11 +290,11 @@ def stageable(formats: Sequence[str]) -> tuple[str, ...]:
     return tuple(f for f in formats if f in STAGED_FORMATS)
 
 
-def stage_outbox(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice, tuple[bytes, bytes] | None]],
-                 formats: Sequence[str], token: str) -> int:
-    """Write block notices' outbox files ahead of their delivery, under hidden names; how many.
+def staged_block_files(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice, tuple[bytes, bytes] | None]],
+                       formats: Sequence[str], token: str) -> Iterator[tuple[str, bytes]]:
+    """The hidden names and contents of block notices' outbox files written ahead.
 
-    A large run has a thread do this while it stores the notices: the files
+    A large run has another process write these while it stores the notices: the files
     may not be published before the notices are stored (a stop in between would leave files
     for notices that were never stored, and the next run would store and send them again), so
     they wait under hidden names (:func:`staged_path`), and the delivery only renames each to
@@ -305,30 +306,63 @@ def stage_outbox(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice, t
     notices : iterable of (str, BlockNotice, (bytes, bytes) or None)
         Each block notice's stored key (``Notice.key``), the notice, and where at hand its JSON
         as stored and its data's (:func:`~advisory.notices.compose.whole_json` joins them).
-        (Farm summaries are left to the delivery.)
     formats : sequence of str
-        The outbox formats (only those of :func:`stageable` are written).
+        The outbox formats (only those of :func:`stageable` are written ahead).
     token : str
         The run's own mark in the hidden names, so that a run only ever publishes its own files.
     """
     outbox = str(outbox)
     formats = stageable(formats)
-    swept: set[str] = set()
-    count = 0
     for key, n, parts in notices:
         base = _base(outbox, n, key)
-        head = os.path.dirname(base)
-        if head not in swept:
-            swept.add(head)
-            _folder(head)
-            discard_staged(head, older_than_s=STALE_STAGED_S)
         for fmt in formats:
             if fmt == "json" and parts is not None:
                 data = whole_json(*parts) + b"\n"
             else:
                 data = render(n, fmt).encode("utf-8")
-            _put(staged_path(f"{base}.{EXTENSIONS[fmt]}", token), data)
-            count += 1
+            yield staged_path(f"{base}.{EXTENSIONS[fmt]}", token), data
+
+
+def _summary_parts(n: FarmSummary, formats: Sequence[str], render_fmt: Callable[[str], str]
+                   ) -> list[tuple[str, Callable[[], str]]]:
+    """A farm summary's outbox files: (ending of the name, its text when asked), each format
+    and the run sheet."""
+    parts: list[tuple[str, Callable[[], str]]] = [
+        (f".{EXTENSIONS[fmt]}", lambda fmt=fmt: render_fmt(fmt)) for fmt in formats]
+    if n.runsheet.get("csv"):
+        parts.append((".runsheet.csv", lambda: n.runsheet["csv"]))
+    return parts
+
+
+def staged_summary_files(outbox: str | Path, summaries: Sequence[tuple[str, FarmSummary]], token: str
+                         ) -> list[tuple[str, bytes]]:
+    """The hidden names and contents of farm summaries' outbox files written ahead (all of them,
+    rendered: see :func:`staged_block_files`); ``summaries`` are (stored key, summary)."""
+    out = []
+    for key, n in summaries:
+        base = _base(str(outbox), n, key)
+        out += [(staged_path(base + end, token), text().encode("utf-8"))
+                for end, text in _summary_parts(n, OUTBOX_FORMATS, lambda fmt, n=n: render(n, fmt))]
+    return out
+
+
+def stage_outbox(files: Iterable[tuple[str, bytes]], swept: set[str] | None = None) -> int:
+    """Write outbox files ahead under their hidden names (:func:`staged_block_files`); how many.
+
+    Folders are made as needed; in each folder met for the first time (``swept`` keeps
+    them across calls) the staged files a stopped run left behind are removed first
+    (:data:`STALE_STAGED_S`).
+    """
+    swept = set() if swept is None else swept
+    count = 0
+    for path, data in files:
+        head = os.path.dirname(path)
+        if head not in swept:
+            swept.add(head)
+            _folder(head)
+            discard_staged(head, older_than_s=STALE_STAGED_S)
+        _put(path, data)
+        count += 1
     return count
 
 
@@ -409,12 +443,16 @@ def _send_outbox(r: _Rendered, settings, formats: Sequence[str], chart: bool, st
     png = r.png() if chart else None
     if png:
         _write(base + ".png", png)
-    for fmt in formats:
-        path = f"{base}.{EXTENSIONS[fmt]}"
-        if fmt not in STAGED_FORMATS or not isinstance(r.n, BlockNotice) or not _publish(path, staged):
-            _write(path, r.get(fmt, name + ".png" if (fmt == "html" and png) else None).encode("utf-8"))
-    if isinstance(r.n, FarmSummary) and r.n.runsheet.get("csv"):
-        _write(base + ".runsheet.csv", r.n.runsheet["csv"].encode("utf-8"))
+    if isinstance(r.n, FarmSummary):
+        parts = _summary_parts(r.n, formats, r.get)
+    else:
+        parts = [(f".{EXTENSIONS[fmt]}", lambda fmt=fmt: r.get(fmt, name + ".png" if (fmt == "html" and png) else None))
+                 for fmt in formats]
+    for end, text in parts:
+        path = base + end
+        # a file written ahead by this run (see stage_outbox) is only moved to its name
+        if not (staged and (isinstance(r.n, FarmSummary) or end[1:] in STAGED_EXTENSIONS) and _publish(path, staged)):
+            _write(path, text().encode("utf-8"))
     return head
 
 
@@ -727,9 +765,10 @@ FORK_OUTBOX_FROM = 1000
 
 def _outbox_weight(n: BlockNotice | FarmSummary, formats: Sequence[str], chart: bool, staged: str | None) -> int:
     """Rough work of writing a notice to the outbox: one per block notice, one per row of a farm
-    summary; none for a block notice whose every file was written ahead (``staged``)."""
+    summary; none for a notice whose every file was written ahead (``staged``: a farm summary's
+    files, and a block notice's when it has no chart and only formats of :data:`STAGED_FORMATS`)."""
     if isinstance(n, FarmSummary):
-        return max(1, len(n.rows))
+        return 0 if staged else max(1, len(n.rows))
     return 0 if (staged and not chart and set(formats) <= set(STAGED_FORMATS)) else 1
 
 

@@ -399,7 +399,7 @@ def gsm_safe(text: str) -> str:
     return _SPACES.sub(" ", "".join(out)).strip()
 
 
-@lru_cache(maxsize=8192)
+@lru_cache(maxsize=1 << 16)  # more than a large run's block names: each is asked for more than once
 def slug(text: str, max_len: int = 40, fallback: str = "x") -> str:
     """An ASCII file-name piece: letters, digits and single hyphens."""
     s = unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode()
