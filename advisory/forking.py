@@ -16,6 +16,7 @@ done here, in order, with the same results.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import multiprocessing
 import threading
@@ -98,6 +99,48 @@ def fork_map(fn: Callable[[Any], Any], items: Sequence[Any], workers: int, *, ow
     return out
 
 
+class Arena:
+    """Bytes shared with the processes forked after it was made (an anonymous shared mapping).
+
+    This process copies bytes in (:meth:`put`) and hands over only where they are; a
+    forked copy reads them in place (:meth:`view`), without their going through a pipe.
+    Only the pages written take memory, and they count once for all the processes.
+    Nothing is ever freed before :meth:`close`: it is for one run.
+
+    Parameters
+    ----------
+    size : int
+        Bytes reserved (address space; taken only as written).
+    """
+
+    def __init__(self, size: int):
+        import mmap
+
+        self.size = max(int(size), mmap.PAGESIZE)
+        self._map = mmap.mmap(-1, self.size, flags=mmap.MAP_SHARED)
+        self.used = 0
+
+    def put(self, data: bytes) -> tuple[int, int] | None:
+        """Copy ``data`` in: where it is, ``(start, length)``; None when it does not fit any more."""
+        n = len(data)
+        start = self.used
+        if start + n > self.size:
+            return None
+        self._map[start:start + n] = data
+        self.used = start + n
+        return start, n
+
+    def view(self, where: tuple[int, int]) -> memoryview:
+        """The bytes :meth:`put` placed at ``where`` (read in place)."""
+        start, n = where
+        return memoryview(self._map)[start:start + n]
+
+    def close(self) -> None:
+        """Give the memory back (in this process; each copy holds it until it ends)."""
+        with contextlib.suppress(BufferError):  # a view is still held: the mapping goes with the process
+            self._map.close()
+
+
 class Spooler:
     """Files written by a forked copy of this process while this one goes on working.
 
@@ -108,30 +151,70 @@ class Spooler:
     the pipe at once, so handing work over costs this process only the copying of the
     bytes.  The copy never touches the database or anything else of this process.
 
+    Work is done in the order it was handed over.  :meth:`status` waits until all of it
+    is done; :meth:`ask` has the copy run one of its ``commands`` after it (the answer
+    is read with :meth:`answer`, so that this process can go on meanwhile).
+
     Parameters
     ----------
     write : callable
-        ``write(files) -> int``: writes a list of ``(path, bytes)`` in the copy; how many.
+        ``write(files) -> int``: writes an iterable of ``(path, bytes)`` in the copy; how many.
+    commands : dict of str to callable, optional
+        What :meth:`ask` may run in the copy (made before the fork, so that they share the
+        state of ``write``, such as what it wrote).
     """
 
-    def __init__(self, write: Callable[[list[tuple[str, bytes]]], int]):
+    def __init__(self, write: Callable[[Any], int], commands: dict[str, Callable[..., Any]] | None = None):
         ctx = multiprocessing.get_context("fork")
         inbox_r, self._inbox = ctx.Pipe(duplex=False)
         self._report, report_w = ctx.Pipe(duplex=False)
-        self._proc = ctx.Process(target=_spool, args=(inbox_r, report_w, write, (self._inbox, self._report)),
+        self._proc = ctx.Process(target=_spool, args=(inbox_r, report_w, write, dict(commands or {}),
+                                                      (self._inbox, self._report)),
                                  name="spooler", daemon=True)
         self._proc.start()
         inbox_r.close()
         report_w.close()
         self._broken: str | None = None
+        self._closed = False
 
     def send(self, files: list[tuple[str, bytes]]) -> None:
         """Hand over files to write."""
         self._put(("files", files))
 
-    def call(self, fn: Callable[..., list[tuple[str, bytes]]], *args: Any) -> None:
+    def call(self, fn: Callable[..., Any], *args: Any) -> None:
         """Have the copy write the files that ``fn(*args)`` makes there (``fn`` and ``args`` must pickle)."""
         self._put(("call", fn, args))
+
+    def ask(self, command: str, *args: Any) -> None:
+        """Have the copy run ``commands[command](*args)`` once the work handed over before is done."""
+        self._put(("ask", command, args))
+
+    def answer(self) -> tuple[bool, Any]:
+        """The answer to the oldest :meth:`ask` not yet answered: (True, value), or (False, what went wrong)."""
+        if self._broken is not None:
+            return False, self._broken
+        try:
+            return self._report.recv()
+        except (EOFError, OSError) as exc:
+            self._broken = f"the spooler process stopped ({type(exc).__name__})"
+            return False, self._broken
+
+    def status(self) -> tuple[int, float, str | None]:
+        """Wait until everything handed over is written: (files, seconds the copy spent, error or None).
+
+        An error in the copy (the first one; it writes nothing after it) or a copy that died is
+        reported, not raised.
+        """
+        self.ask("status")
+        ok, value = self.answer()
+        return value if ok else (0, 0.0, value)
+
+    def finish(self) -> tuple[int, float, str | None]:
+        """:meth:`status`, then :meth:`close`."""
+        try:
+            return self.status()
+        finally:
+            self.close()
 
     def _put(self, message: tuple) -> None:
         if self._broken is None:
@@ -140,34 +223,22 @@ class Spooler:
             except (OSError, ValueError) as exc:  # the copy is gone
                 self._broken = f"{type(exc).__name__}: {exc}"
 
-    def finish(self) -> tuple[int, float, str | None]:
-        """Wait until everything handed over is written: (files, seconds the copy spent, error or None).
-
-        An error in the copy (the first one; it writes nothing after it) or a copy that died is
-        reported, not raised.
-        """
-        self._put(("end",))
-        try:
-            result = self._report.recv() if self._broken is None else (0, 0.0, self._broken)
-        except (EOFError, OSError) as exc:
-            result = (0, 0.0, f"the spooler process stopped ({type(exc).__name__})")
-        self.close()
-        return result
-
     def close(self) -> None:
-        """Stop the copy (at once, if it is still working) and release the pipes."""
+        """Let the copy end (stopped at once, if it is still working) and release the pipes."""
+        if self._closed:
+            return
+        self._closed = True
+        self._put(("end",))
+        self._proc.join(timeout=2.0)
         if self._proc.is_alive():
-            self._inbox.close()
-            self._proc.join(timeout=0.5)
-            if self._proc.is_alive():
-                self._proc.kill()
-                self._proc.join()
+            self._proc.kill()
+            self._proc.join()
         for conn in (self._inbox, self._report):
             conn.close()
 
 
-def _spool(inbox, report, write, parent_ends) -> None:
-    """The copy's side of :class:`Spooler`: a thread drains the pipe, this one writes."""
+def _spool(inbox, report, write, commands, parent_ends) -> None:
+    """The copy's side of :class:`Spooler`: a thread drains the pipe, this one works."""
     import gc
     import queue
     import time
@@ -182,19 +253,28 @@ def _spool(inbox, report, write, parent_ends) -> None:
             try:
                 msg = inbox.recv()
             except (EOFError, OSError):
-                msg = ("lost",)
+                msg = ("end",)  # the parent is gone: its files will be swept away as stale
             messages.put(msg)
-            if msg[0] in ("end", "lost"):
+            if msg[0] == "end":
                 return
 
     threading.Thread(target=drain, name="spooler-inbox", daemon=True).start()
     count, error, busy = 0, None, 0.0
     while True:
         msg = messages.get()
-        if msg[0] == "lost":  # the parent is gone: its files will be swept away as stale
-            return
         if msg[0] == "end":
-            break
+            return
+        if msg[0] == "ask":
+            name, args = msg[1], msg[2]
+            if name == "status":
+                answer = (True, (count, busy, error))
+            else:
+                try:
+                    answer = (True, commands[name](*args))
+                except BaseException as exc:
+                    answer = (False, f"{type(exc).__name__}: {exc}")
+            report.send(answer)
+            continue
         if error is None:
             t0 = time.perf_counter()
             try:
@@ -202,4 +282,3 @@ def _spool(inbox, report, write, parent_ends) -> None:
             except BaseException as exc:  # reported to the parent, which then writes the files itself
                 error = f"{type(exc).__name__}: {exc}"
             busy += time.perf_counter() - t0
-    report.send((count, busy, error))

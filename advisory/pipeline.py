@@ -38,12 +38,11 @@ from __future__ import annotations
 import contextlib
 import datetime as dt
 import gc
-import itertools
 import logging
 import os
 import time
 from collections import defaultdict
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Collection, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -936,12 +935,13 @@ def _outbox_plan(batch: list[tuple[Notice, list]], settings, wanted: set[str]) -
 
 
 def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *, sleep=None,
-             staged: str | None = None) -> dict[str, int]:
+             staged: str | None = None, published: Collection[str] = frozenset()) -> dict[str, int]:
     """Deliver stored notices (as returned by :func:`_pending_notices`) in one transaction.
 
     The rows are attached to the delivery session as they are (no reload); the outbox is written
     as the settings say (:func:`_outbox_plan`), using the files written ahead with token ``staged``
-    (:class:`_Staging`); the other channels follow in one pass, so that the
+    (:class:`_Staging`; those of the notices whose keys are in ``published`` are already at their
+    own names); the other channels follow in one pass, so that the
     retry pauses are shared by the whole batch.
     """
     from advisory.notices import deliver as deliver_mod
@@ -951,6 +951,8 @@ def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *,
     kw = {} if sleep is None else {"sleep": sleep}
     if staged:
         kw["staged"] = staged
+    if published:
+        kw["published"] = published
     counts: dict[str, int] = defaultdict(int)
     with db.transaction() as session:
         batch = _attached(session, to_send)
@@ -974,8 +976,11 @@ def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *,
 
 #: A run for at least this many blocks has their outbox files written ahead (see :class:`_Staging`).
 STAGE_OUTBOX_FROM = 2000
-#: Block notices' files handed over to the writer at a time (bounds the memory the handing takes).
+#: Block notices handed over to the writer at a time.
 _STAGE_CHUNK = 500
+#: Memory shared with the writer for each block's JSON file [bytes] (address space, taken only as
+#: used; a notice is about 10 kB; the files that do not fit go through the pipe).
+_ARENA_PER_BLOCK = 32 * 1024
 
 
 class _Staging:
@@ -998,7 +1003,7 @@ class _Staging:
     once they are an hour old.
     """
 
-    def __init__(self, settings, formats: tuple[str, ...]):
+    def __init__(self, settings, formats: tuple[str, ...], blocks: int):
         import secrets
 
         from advisory import forking
@@ -1012,10 +1017,17 @@ class _Staging:
         #: Whether :meth:`wait` was called (by the delivery, or after a failed run).
         self.used = False
         self._token: str | None = None
-        swept: set[str] = set()  # the copy's own record of the folders it swept
-        self._spooler = forking.Spooler(lambda files: deliver_mod.stage_outbox(files, swept))
+        # the copy's own record of the folders it swept and of the files it wrote
+        swept: set[str] = set()
+        written: list[tuple[str, str]] = []
+        #: The block notices' JSON files, placed where the copy reads them (not sent through the pipe).
+        self._arena = forking.Arena(blocks * _ARENA_PER_BLOCK)
+        arena = self._arena
+        self._spooler = forking.Spooler(
+            lambda files: deliver_mod.stage_outbox(files, swept, written, arena),
+            {"publish": lambda token: deliver_mod.publish_staged(written, token)})
 
-    def hand_over(self, blocks: list[tuple[str, Any, tuple[bytes, bytes] | None]],
+    def hand_over(self, blocks: list[tuple[str, Any, tuple[bytes, bytes]]],
                   summaries: list[tuple[str, Any]]) -> None:
         """Give the writer every composed notice of the run: ``blocks`` are each block notice's key,
         the notice, and its stored JSON and its payload's (joined by
@@ -1026,10 +1038,15 @@ class _Staging:
         self.folders |= {os.path.join(self.outbox, words.slug(n.night, 10, "undated"))
                          for _, n, _ in blocks} | {os.path.join(self.outbox, words.slug(n.night, 10, "undated"))
                                                     for _, n in summaries}
-        if self.formats:
-            files = deliver_mod.staged_block_files(self.outbox, blocks, self.formats, self.token)
-            while chunk := list(itertools.islice(files, _STAGE_CHUNK * len(self.formats))):
-                self._spooler.send(chunk)
+        if self.formats:  # plain values, quick to send; the names are made there
+            put, whole = self._arena.put, deliver_mod.json_file
+            items = []
+            for key, n, parts in blocks:
+                data = whole(*parts) if "json" in self.formats else b""
+                items.append(deliver_mod.stage_item(key, n, put(data) or data))
+            for k in range(0, len(items), _STAGE_CHUNK):
+                self._spooler.call(deliver_mod.staged_block_files, self.outbox, items[k:k + _STAGE_CHUNK],
+                                   self.formats, self.token)
         if summaries:  # rendered there, after the block files are handed over (the pipe is read meanwhile)
             self._spooler.call(deliver_mod.staged_summary_files, self.outbox, summaries, self.token)
 
@@ -1038,7 +1055,7 @@ class _Staging:
         writes every file itself)."""
         if not self.used:
             self.used = True
-            self.files, self.seconds, error = self._spooler.finish()
+            self.files, self.seconds, error = self._spooler.status()
             if error is not None:
                 log.warning("outbox files written ahead are not used (%s); the delivery writes them", error)
                 self.discard()
@@ -1046,10 +1063,29 @@ class _Staging:
                 self._token = self.token
         return self._token
 
+    def publish(self) -> None:
+        """Have the writer move its files to their own names (the notices are stored); see :meth:`published`."""
+        if self._token:
+            self._spooler.ask("publish", self._token)
+
+    def published(self) -> set[str]:
+        """After :meth:`publish`: the keys of the notices all of whose files written ahead are published
+        (none, if the writer failed: the delivery then moves or writes each file itself)."""
+        if not self._token:
+            return set()
+        ok, keys = self._spooler.answer()
+        if not ok:
+            log.warning("outbox files written ahead: publishing failed (%s); the delivery does it", keys)
+            return set()
+        return keys
+
     def discard(self) -> None:
-        """Remove whatever the delivery did not use (nothing, when every notice was delivered)."""
+        """Let the writer end, and remove whatever the delivery did not use (nothing, when every
+        notice was delivered)."""
         from advisory.notices import deliver as deliver_mod
 
+        self._spooler.close()
+        self._arena.close()
         for folder in self.folders:
             deliver_mod.discard_staged(folder, self.token)
 
@@ -1062,7 +1098,7 @@ def _start_staging(n_blocks: int, settings) -> _Staging | None:
     if n_blocks < STAGE_OUTBOX_FROM or not forking.can_fork():
         return None
     formats = deliver_mod.stageable(tuple(getattr(settings, "outbox_formats", None) or deliver_mod.OUTBOX_FORMATS))
-    return _Staging(settings, formats)
+    return _Staging(settings, formats, n_blocks)
 
 
 def _attached(session: Session, to_send: list[tuple[Notice, list]]) -> list[tuple[Notice, list]]:
@@ -1312,9 +1348,13 @@ def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.dateti
         with db.transaction() as session:
             blocks = _load_blocks(session, block_ids, equipment=False)
             assessments = assess_night(session, blocks, night, as_of=now if update else None, update=update)
-            return assessments, _prepare(session, assessments, revision_mode="update" if update else "evening")
+            p = _prepare(session, assessments, revision_mode="update" if update else "evening")
     finally:
         db.engine.dispose()
+    # each notice goes back as the bytes already made of it (read again only where it is rendered)
+    composed = [c if c is None else (c[0], c[1], compose.EncodedBlockNotice.of(c[2], c[3], payload), c[3])
+                for c, payload in zip(p.composed, p.payloads, strict=True)]
+    return assessments, Prepared(p.todo, p.payloads, composed, p.skipped)
 
 
 def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, block_ids, farm, names, *,
@@ -1361,9 +1401,11 @@ def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, bl
             timings.lap("wait for outbox writer")
         if token:
             timings["outbox files written ahead"] = staging.seconds  # by the writer, meanwhile
+            staging.publish()  # the notices are stored: the writer moves its files to their names meanwhile
         with _frozen_heap():
-            res.deliveries = _deliver(db, _pending_notices(db, night, "frost", farm_ids, known=known), settings,
-                                      sleep=sleep, staged=token)
+            pending = _pending_notices(db, night, "frost", farm_ids, known=known)
+            res.deliveries = _deliver(db, pending, settings, sleep=sleep, staged=token,
+                                      published=staging.published() if token else frozenset())
         timings.lap("outbox delivery")
 
 

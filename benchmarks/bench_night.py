@@ -318,10 +318,13 @@ def child(args) -> None:
 
             prof = cProfile.Profile()
             prof.enable()
+        cpu0 = _cpu_s()
         t0 = time.perf_counter()
         res = pipeline.run_night(db, NIGHT, now=as_of or now, update=update, settings=settings,
                                  sleep=lambda s: None)
         wall = time.perf_counter() - t0
+        cpu1 = _cpu_s()
+        out.update(cpu_s=cpu1[0] - cpu0[0], copies_cpu_s=cpu1[1] - cpu0[1])
         if prof is not None:
             prof.disable()
             prof.dump_stats(args.profile)
@@ -334,6 +337,12 @@ def child(args) -> None:
                    levels=_levels(res.assessments), outbox_mib=_du(args.outbox_dir))
     out.update(peak_rss_mib=_peak_mib(), start_rss_mib=base)
     print(json.dumps(out, default=str))
+
+
+def _cpu_s() -> tuple[float, float]:
+    """Processor time [s] (user + system) of this process, and of its forked copies that have ended."""
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime, kids.ru_utime + kids.ru_stime
 
 
 def _levels(assessments) -> dict:
@@ -403,6 +412,9 @@ def _print_run(r: dict) -> None:
     print(f"  {r['what']}: {r['wall_s']:.2f} s wall, peak RSS {r['peak_rss_mib']:.0f} MiB "
           f"(process at start {r['start_rss_mib']:.0f} MiB{tree}); assessed {r['assessed']}, "
           f"skipped {r['skipped']}, notices {r['notices']}, deliveries {r['deliveries']}")
+    if r.get("cpu_s") is not None:
+        print(f"    processor time: {r['cpu_s']:.2f} s in the run's process, {r['copies_cpu_s']:.2f} s in its "
+              f"forked copies")
     shown = set()
     for k in STAGES:
         if k in st:

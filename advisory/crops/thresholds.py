@@ -163,6 +163,19 @@ def _load() -> pd.DataFrame:
     return df
 
 
+@functools.lru_cache(maxsize=1)
+def _index() -> tuple[dict[str, tuple[str, ...]], dict[tuple[str, str], tuple[float, float, str, bool]]]:
+    """The table by crop (its stages in order) and by (crop, stage): (T10, T90, source, verified)."""
+    df = _load()
+    stages: dict[str, list[str]] = {}
+    rows: dict[tuple[str, str], tuple[float, float, str, bool]] = {}
+    for crop, stage, t10, t90, source, verified in zip(
+            df["crop"], df["stage"], df["t10_c"], df["t90_c"], df["source"], df["verified"], strict=True):
+        stages.setdefault(crop, []).append(stage)
+        rows.setdefault((crop, stage), (float(t10), float(t90), str(source), bool(verified)))
+    return {c: tuple(v) for c, v in stages.items()}, rows
+
+
 def table() -> pd.DataFrame:
     """The whole critical-temperature table (a copy), sorted by crop and stage order."""
     return _load().copy()
@@ -209,9 +222,7 @@ def stages_for(crop: str) -> list[str]:
     -------
     stages : list of str
     """
-    c = normalise_crop(crop)
-    df = _load()
-    return df.loc[df["crop"] == c, "stage"].tolist()
+    return list(_index()[0][normalise_crop(crop)])
 
 
 def normalise_stage(crop: str, stage: str) -> str:
@@ -287,10 +298,7 @@ def critical_temps(crop: str, stage: str, t10_override_c: float | None = None,
     """
     c = normalise_crop(crop)
     s = normalise_stage(c, stage)
-    df = _load()
-    row = df[(df["crop"] == c) & (df["stage"] == s)].iloc[0]
-    t10, t90 = float(row["t10_c"]), float(row["t90_c"])
-    source, verified = str(row["source"]), bool(row["verified"])
+    t10, t90, source, verified = _index()[1][(c, s)]
     over = [v is not None for v in (t10_override_c, t90_override_c)]
     if t10_override_c is not None:
         t10 = float(t10_override_c)

@@ -62,7 +62,7 @@ import threading
 import time
 import urllib.error
 import urllib.request
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Callable, Collection, Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from email.headerregistry import Address
 from email.message import EmailMessage
@@ -233,10 +233,21 @@ def outbox_base(outbox: Path, n: BlockNotice | FarmSummary, key: str | None = No
 
 def _base(outbox: str, n: BlockNotice | FarmSummary, key: str | None = None) -> str:
     """:func:`outbox_base` as a string."""
-    h = hashlib.sha256((key or n.key).encode("utf-8")).hexdigest()[:8]
-    who = w.slug(n.block, 40, "block") if isinstance(n, BlockNotice) else "farm-summary"
-    stem = f"{w.slug(n.farm, 24, 'farm')}_{who}_{w.slug(n.kind, 8)}_r{n.revision}_{h}"
-    return os.path.join(outbox, w.slug(n.night, 10, "undated"), stem)
+    return _stem(outbox, key or n.key, n.farm, n.block if isinstance(n, BlockNotice) else None, n.kind,
+                 n.revision, n.night)
+
+
+def _stem(outbox: str, key: str, farm: str, block: str | None, kind: str, revision: int, night: str) -> str:
+    """:func:`_base` from the notice's parts (``block`` None for a farm summary)."""
+    h = hashlib.sha256(key.encode("utf-8")).hexdigest()[:8]
+    who = "farm-summary" if block is None else w.slug(block, 40, "block")
+    stem = f"{w.slug(farm, 24, 'farm')}_{who}_{w.slug(kind, 8)}_r{revision}_{h}"
+    return os.path.join(_night_folder(outbox, night), stem)
+
+
+def _night_folder(outbox: str, night: str) -> str:
+    """The outbox folder of a night's notices (the address of an outbox delivery)."""
+    return os.path.join(outbox, w.slug(night, 10, "undated"))
 
 
 def _put(path: str | Path, data: bytes) -> None:
@@ -290,9 +301,28 @@ def stageable(formats: Sequence[str]) -> tuple[str, ...]:
     return tuple(f for f in formats if f in STAGED_FORMATS)
 
 
-def staged_block_files(outbox: str | Path, notices: Iterable[tuple[str, BlockNotice, tuple[bytes, bytes] | None]],
-                       formats: Sequence[str], token: str) -> Iterator[tuple[str, bytes]]:
-    """The hidden names and contents of block notices' outbox files written ahead.
+#: A block notice as handed to the writer of files written ahead (:func:`stage_item`): plain values,
+#: quick to send to another process.
+StageItem = tuple  # (key, farm, block, kind, revision, night, short text, JSON file or where it is)
+
+
+def stage_item(key: str, n: BlockNotice, json_file: Any) -> StageItem:
+    """What :func:`staged_block_files` needs of a block notice: its stored key (``Notice.key``),
+    the parts of its file names, its short text, and its JSON file (the bytes, or where they are
+    in memory shared with the writer: see :func:`stage_outbox`)."""
+    return (key, n.farm, n.block, n.kind, n.revision, n.night, n.sms, json_file)
+
+
+def json_file(stored: bytes, payload: bytes) -> bytes:
+    """A block notice's outbox JSON file from its JSON as stored and its data's
+    (:func:`~advisory.notices.compose.whole_json`)."""
+    return whole_json(stored, payload) + b"\n"
+
+
+def staged_block_files(outbox: str | Path, items: Iterable[StageItem], formats: Sequence[str], token: str
+                       ) -> Iterator[tuple[str, Any, str]]:
+    """The hidden names and contents of block notices' outbox files written ahead, and whose they are
+    (the notice's key).
 
     A large run has another process write these while it stores the notices: the files
     may not be published before the notices are stored (a stop in between would leave files
@@ -303,9 +333,8 @@ def staged_block_files(outbox: str | Path, notices: Iterable[tuple[str, BlockNot
     Parameters
     ----------
     outbox : path
-    notices : iterable of (str, BlockNotice, (bytes, bytes) or None)
-        Each block notice's stored key (``Notice.key``), the notice, and where at hand its JSON
-        as stored and its data's (:func:`~advisory.notices.compose.whole_json` joins them).
+    items : iterable of StageItem
+        Each block notice (:func:`stage_item`).
     formats : sequence of str
         The outbox formats (only those of :func:`stageable` are written ahead).
     token : str
@@ -313,14 +342,11 @@ def staged_block_files(outbox: str | Path, notices: Iterable[tuple[str, BlockNot
     """
     outbox = str(outbox)
     formats = stageable(formats)
-    for key, n, parts in notices:
-        base = _base(outbox, n, key)
+    for key, farm, block, kind, revision, night, sms, json_data in items:
+        base = _stem(outbox, key, farm, block, kind, revision, night)
         for fmt in formats:
-            if fmt == "json" and parts is not None:
-                data = whole_json(*parts) + b"\n"
-            else:
-                data = render(n, fmt).encode("utf-8")
-            yield staged_path(f"{base}.{EXTENSIONS[fmt]}", token), data
+            data = json_data if fmt == "json" else sms.encode("utf-8")
+            yield staged_path(f"{base}.{EXTENSIONS[fmt]}", token), data, key
 
 
 def _summary_parts(n: FarmSummary, formats: Sequence[str], render_fmt: Callable[[str], str]
@@ -335,35 +361,62 @@ def _summary_parts(n: FarmSummary, formats: Sequence[str], render_fmt: Callable[
 
 
 def staged_summary_files(outbox: str | Path, summaries: Sequence[tuple[str, FarmSummary]], token: str
-                         ) -> list[tuple[str, bytes]]:
+                         ) -> list[tuple[str, bytes, str]]:
     """The hidden names and contents of farm summaries' outbox files written ahead (all of them,
-    rendered: see :func:`staged_block_files`); ``summaries`` are (stored key, summary)."""
+    rendered: see :func:`staged_block_files`), and whose they are; ``summaries`` are (stored key, summary)."""
     out = []
     for key, n in summaries:
         base = _base(str(outbox), n, key)
-        out += [(staged_path(base + end, token), text().encode("utf-8"))
+        out += [(staged_path(base + end, token), text().encode("utf-8"), key)
                 for end, text in _summary_parts(n, OUTBOX_FORMATS, lambda fmt, n=n: render(n, fmt))]
     return out
 
 
-def stage_outbox(files: Iterable[tuple[str, bytes]], swept: set[str] | None = None) -> int:
+def stage_outbox(files: Iterable[tuple], swept: set[str] | None = None,
+                 written: list[tuple[str, str]] | None = None, arena=None) -> int:
     """Write outbox files ahead under their hidden names (:func:`staged_block_files`); how many.
 
     Folders are made as needed; in each folder met for the first time (``swept`` keeps
     them across calls) the staged files a stopped run left behind are removed first
-    (:data:`STALE_STAGED_S`).
+    (:data:`STALE_STAGED_S`).  ``written`` gets (notice key, hidden name) of each file
+    (for :func:`publish_staged`).  A file's contents are bytes, or where they are in
+    ``arena`` (:class:`advisory.forking.Arena`).
     """
     swept = set() if swept is None else swept
     count = 0
-    for path, data in files:
+    for path, data, *whose in files:
         head = os.path.dirname(path)
         if head not in swept:
             swept.add(head)
             _folder(head)
             discard_staged(head, older_than_s=STALE_STAGED_S)
-        _put(path, data)
+        _put(path, arena.view(data) if isinstance(data, tuple) else data)
+        if written is not None and whose:
+            written.append((whose[0], path))
         count += 1
     return count
+
+
+def publish_staged(written: list[tuple[str, str]], token: str) -> set[str]:
+    """Move files written ahead (``written``: notice key and hidden name) to their own names, once
+    their notices are stored; the keys of the notices all of whose files are now published.
+
+    A file that cannot be moved leaves its notice out (the delivery then writes that notice's files
+    itself); the list is emptied, so a file is never published twice.
+    """
+    mark = f".{token}{STAGED_SUFFIX}"
+    done: set[str] = set()
+    failed: set[str] = set()
+    for key, path in written:
+        head, hidden = os.path.split(path)
+        try:
+            os.replace(path, os.path.join(head, hidden[1:-len(mark)]))
+            done.add(key)
+        except OSError as exc:
+            log.warning("outbox file written ahead not published (%s): %s", exc, path)
+            failed.add(key)
+    written.clear()
+    return done - failed
 
 
 def discard_staged(folder: str | Path, token: str | None = None, *, older_than_s: float | None = None) -> int:
@@ -621,7 +674,7 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
                     force: bool = False, retry: RetryPolicy = RetryPolicy(),
                     outbox_formats: Sequence[str] = OUTBOX_FORMATS, outbox_chart: bool | str = "auto",
                     outbox_options: Callable[[Any], tuple[Sequence[str], bool | str]] | None = None,
-                    staged: str | None = None,
+                    staged: str | None = None, published: Collection[str] = frozenset(),
                     smtp_factory=smtplib.SMTP, ssl_context: ssl.SSLContext | None = None,
                     urlopen=urllib.request.urlopen, clock: Callable[[], float] = time.time,
                     timeout_s: float = 20.0) -> list[Attempt]:
@@ -654,6 +707,10 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
     staged : str, optional
         The token of outbox files written ahead (:func:`stage_outbox`): such a file is
         moved to its own name instead of being written again.
+    published : collection of str
+        Keys of notices whose outbox files written ahead are already at their own names
+        (:func:`publish_staged`): nothing is left to write for them, unless they are to get
+        more than was written ahead (a chart, or formats of their own).
     smtp_factory, ssl_context, urlopen, clock, timeout_s
         Injection points for tests and special set-ups.
 
@@ -691,9 +748,12 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
                 formats, chart_opt = outbox_options(row) if outbox_options else (outbox_formats, outbox_chart)
                 rank_ok = isinstance(r.n, BlockNotice) and r.n.status == "ok" and r.n.level_rank >= 2
                 chart = chart_opt is True or (chart_opt == "auto" and (rank_ok or by_mail))
-                j.send = (lambda r=r, chart=chart, formats=formats: _send_outbox(r, settings, formats, chart,
-                                                                                staged))
-                j.weight = _outbox_weight(r.n, formats, chart, staged)
+                if row.key in published and _written_ahead(r.n, formats, chart):
+                    j.address, j.weight = _night_folder(box, r.n.night), 0  # in place: nothing to send
+                else:
+                    j.send = (lambda r=r, chart=chart, formats=formats: _send_outbox(r, settings, formats, chart,
+                                                                                    staged))
+                    j.weight = _outbox_weight(r.n, formats, chart, staged)
                 jobs.append(j)
         for rc in recips:
             ch_map = rc.channels or {}
@@ -746,9 +806,19 @@ def deliver_notices(session: Session, batch: Iterable[tuple[Notice, Sequence[Rec
     return made
 
 
+def _written_ahead(n: BlockNotice | FarmSummary, formats: Sequence[str], chart: bool) -> bool:
+    """Whether the files written ahead for a notice are all it gets in the outbox: every format of
+    a farm summary; a block notice's short text and JSON (:data:`STAGED_FORMATS`), without a chart."""
+    if isinstance(n, FarmSummary):
+        return set(formats) == set(OUTBOX_FORMATS)
+    return not chart and set(formats) <= set(STAGED_FORMATS)
+
+
 def _attempt(j: _Job, settings) -> tuple[str, str, str, bool, int]:
     """One delivery attempt: (status, error, address, retry?, attempt number)."""
     attempt = j.attempt + 1
+    if j.send is None:  # an outbox delivery whose files were published already (see deliver_notices)
+        return "sent", "", j.address, False, attempt
     try:
         address = j.send() or j.address
         return ("queued" if j.channel == "sms" else "sent"), "", address, False, attempt

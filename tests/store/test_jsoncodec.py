@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 import copy
+import dataclasses
 import datetime as dt
 import json
 import pickle
 
 from advisory.notices import render
-from advisory.notices.compose import compose_block, stored_json, whole_json
+from advisory.notices.compose import BlockNotice, EncodedBlockNotice, compose_block, stored_json, whole_json
 from advisory.store import jsoncodec
 from tests.notices import samples
 
@@ -34,3 +35,17 @@ def test_whole_json_is_the_notice_with_its_data():
     lazy = compose_block(samples.frost_assessment(), data=jsoncodec.Encoded(jsoncodec.encode(n.data)))
     assert render.render(lazy, "json") == render.render(n, "json")
     assert render.render(lazy, "text") == render.render(n, "text")
+
+
+def test_a_notice_carried_encoded_reads_and_renders_as_composed():
+    n = compose_block(samples.frost_assessment())
+    data = jsoncodec.encode(n.data)
+    carried = EncodedBlockNotice.of(n, stored_json(n), data)
+    back = pickle.loads(pickle.dumps(carried))
+    assert isinstance(back, BlockNotice) and back.level == n.level and "_encoded" in back.__dict__  # not read yet
+    assert back.chart == n.chart and back.footer == n.footer   # fields with class defaults are read too
+    for f in dataclasses.fields(BlockNotice):
+        assert getattr(back, f.name) == getattr(n, f.name), f.name
+    again = pickle.loads(pickle.dumps(back))   # a notice read once still pickles as its bytes
+    for fmt in render.FORMATS:
+        assert render.render(again, fmt) == render.render(n, fmt), fmt
