@@ -25,8 +25,8 @@ from typing import Any
 
 log = logging.getLogger(__name__)
 
-#: (function, items) of the fork_map now running; the forked copies read it from their memory.
-_WORK: list[tuple[Callable[[Any], Any], Sequence[Any]]] = []
+#: (function, items, result arenas) of the fork_map now running; the forked copies read it from their memory.
+_WORK: list[tuple[Callable[[Any], Any], Sequence[Any], list]] = []
 
 
 def can_fork() -> bool:
@@ -47,9 +47,29 @@ def share_bounds(n: int, workers: int, own_weight: float = 1.0) -> list[tuple[in
     return [(a, b) for a, b in zip(cuts[:-1], cuts[1:], strict=True)]
 
 
-def _run_share(start: int, stop: int) -> list:
-    fn, items = _WORK[0]
-    return [fn(x) for x in items[start:stop]]
+#: Memory reserved for each copy's results [bytes] (address space, taken only as written).
+RESULT_ARENA_BYTES = 512 * 1024 * 1024
+
+
+def _run_share(k: int, start: int, stop: int) -> tuple[str, Any]:
+    """A copy's share: its results pickled into its arena (``("arena", where)``) or, if they do
+    not fit, sent back as they are (``("sent", results)``)."""
+    import pickle
+
+    fn, items, arenas = _WORK[0]
+    results = [fn(x) for x in items[start:stop]]
+    where = arenas[k].put(pickle.dumps(results, protocol=pickle.HIGHEST_PROTOCOL))
+    return ("arena", where) if where is not None else ("sent", results)
+
+
+def _share_results(arena: Arena, reply: tuple[str, Any]) -> list:
+    import pickle
+
+    kind, value = reply
+    if kind == "sent":
+        return value
+    with arena.view(value) as data:
+        return pickle.loads(data)
 
 
 def fork_map(fn: Callable[[Any], Any], items: Sequence[Any], workers: int, *, own_weight: float = 1.0) -> list:
@@ -82,20 +102,26 @@ def fork_map(fn: Callable[[Any], Any], items: Sequence[Any], workers: int, *, ow
     from concurrent.futures.process import BrokenProcessPool
 
     bounds = share_bounds(n, workers, own_weight)
-    _WORK.append((fn, items))
+    # Each copy leaves its results in memory shared with this process: sent back through the
+    # pool's pipe, they would be read by a thread of this process that gets its turn only now and
+    # then while this process computes its own share.
+    arenas = [Arena(RESULT_ARENA_BYTES) for _ in bounds[1:]]
+    _WORK.append((fn, items, arenas))
     try:
         with ProcessPoolExecutor(max_workers=workers - 1, mp_context=multiprocessing.get_context("fork")) as pool:
-            futures = [(a, b, pool.submit(_run_share, a, b)) for a, b in bounds[1:]]
+            futures = [(a, b, pool.submit(_run_share, k, a, b)) for k, (a, b) in enumerate(bounds[1:])]
             a0, b0 = bounds[0]
             out = [fn(x) for x in items[a0:b0]]
-            for a, b, future in futures:
+            for k, (a, b, future) in enumerate(futures):
                 try:
-                    out += future.result()
+                    out += _share_results(arenas[k], future.result())
                 except BrokenProcessPool:
                     log.warning("a worker process stopped; doing its share (%d items) here", b - a)
                     out += [fn(x) for x in items[a:b]]
     finally:
         _WORK.clear()
+        for arena in arenas:
+            arena.close()
     return out
 
 

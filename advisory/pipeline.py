@@ -766,8 +766,8 @@ def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mo
 
 def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
            now: dt.datetime, timings: StageTimes | None = None, prepared: Prepared | None = None,
-           workers: int = 1, stage: Callable[[list], Any] | None = None
-           ) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
+           workers: int = 1, stage: Callable[[list], Any] | None = None,
+           known_blocks: Mapping[int, Block] | None = None) -> tuple[list[tuple[StoredNotice, list]], list[str]]:
     """Store forecasts and notices; returns (notices to deliver, skipped messages).
 
     The rows are written with a few bulk INSERT statements (the database hands back
@@ -789,6 +789,8 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         :func:`_prepare` of ``assessments`` when already made (by the run's worker processes).
     workers : int
         Processes that may compose the farm summaries of a large run (see :mod:`advisory.forking`).
+    known_blocks : mapping, optional
+        The assessed blocks by id, when the caller has them loaded (else each is looked up).
     stage : callable, optional
         Called with ``[(key, block notice, (stored JSON, payload JSON))]`` and ``[(key, farm
         summary)]`` once every notice of the batch is composed, before anything is written
@@ -799,7 +801,8 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     todo, payloads, composed, skipped = prepared.todo, prepared.payloads, prepared.composed, prepared.skipped
     if not todo:
         return [], skipped
-    blocks = {a.block_id: session.get(Block, a.block_id) for a in todo}
+    loaded = known_blocks or {}
+    blocks = {a.block_id: loaded.get(a.block_id) or session.get(Block, a.block_id) for a in todo}
     by_farm: dict[int, list[tuple[asm.Assessment, Block]]] = defaultdict(list)
     for a, notice in zip(todo, composed, strict=True):
         if notice is not None:
@@ -1284,8 +1287,9 @@ def _frozen_heap():
 PARALLEL_FROM_BLOCKS = 2000
 #: The run's own process takes this many times a worker's share of the blocks: a worker
 #: also loads its blocks again, touches memory shared with this process (which the system
-#: then copies) and sends its results back; measured, close to twice the time per block.
-OWN_SHARE_WEIGHT = 1.9
+#: then copies) and sends its results back (measured at 10,000 blocks: a quarter more time
+#: per block, and half a second to start; ``benchmarks/bench_night.py``).
+OWN_SHARE_WEIGHT = 1.4
 
 
 def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, *, now: dt.datetime,
@@ -1384,7 +1388,8 @@ def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, bl
                                          revision_mode="update" if update else "evening", now=now,
                                          timings=timings, prepared=prepared,
                                          workers=getattr(settings, "workers", 1),
-                                         stage=staged[0].hand_over if staged else None)
+                                         stage=staged[0].hand_over if staged else None,
+                                         known_blocks={b.id: b for b in blocks})
             res.skipped = done_before + res.skipped
             res.notices = [n.id for n, _ in stored]
             known = {n.id: (n, recips) for n, recips in stored}

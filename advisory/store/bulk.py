@@ -15,7 +15,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-from sqlalchemy import func, insert, select
+from sqlalchemy import JSON, func, insert, select
 from sqlalchemy.orm import Session
 
 #: Values per ``IN (...)`` list when ids are read back.
@@ -53,7 +53,7 @@ def insert_rows(session: Session, model, rows: list[dict], key: Sequence[str] | 
         for c, name in zip(cols, names, strict=True):
             values = [r[name] for r in rows]
             proc = c.type._cached_bind_processor(conn.dialect)
-            columns.append(values if proc is None else list(map(proc, values)))
+            columns.append(values if proc is None else _converted(values, proc, isinstance(c.type, JSON)))
         sql = (f"INSERT INTO {table.name} ({', '.join(c.name for c in cols)}) "
                f"VALUES ({', '.join('?' * len(cols))})")
         before = _largest_id(conn, table)
@@ -64,6 +64,18 @@ def insert_rows(session: Session, model, rows: list[dict], key: Sequence[str] | 
     for chunk in _chunks(rows, 2000):
         ids += session.scalars(insert(model).returning(model.id, sort_by_parameter_order=True), chunk).all()
     return ids
+
+
+def _converted(values: list, proc, unique: bool) -> list:
+    """``proc`` applied to each value; each distinct value converted once (a run's rows share their
+    night, clock and kind), unless the values are ``unique`` (or not hashable)."""
+    if unique:
+        return list(map(proc, values))
+    memo: dict = {}
+    try:
+        return [memo[v] if v in memo else memo.setdefault(v, proc(v)) for v in values]
+    except TypeError:  # a value that cannot be a key
+        return list(map(proc, values))
 
 
 def _largest_id(conn, table) -> int:
