@@ -62,6 +62,7 @@ from advisory.notices import compose
 from advisory.physics import moisture, sun
 from advisory.risk import frost
 from advisory.store import bulk, jsoncodec
+from advisory.store import db as db_mod
 from advisory.store.schema import (
     Block,
     Calibration,
@@ -703,6 +704,8 @@ class Prepared:
     composed: list[tuple | None]
     #: Messages for assessments not stored (already assessed).
     skipped: list[str]
+    #: Outbox files written ahead by the worker process that composed them: (notice key, hidden name).
+    staged: list[tuple[str, str]] = field(default_factory=list)
 
 
 def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
@@ -792,9 +795,9 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     known_blocks : mapping, optional
         The assessed blocks by id, when the caller has them loaded (else each is looked up).
     stage : callable, optional
-        Called with ``[(key, block notice, (stored JSON, payload JSON))]`` and ``[(key, farm
-        summary)]`` once every notice of the batch is composed, before anything is written
-        (see :meth:`_Staging.hand_over`).
+        Called with ``[(key, block notice, (stored JSON, payload JSON))]``, ``[(key, farm
+        summary)]`` and the files already written ahead by worker processes once every notice
+        of the batch is composed, before anything is written (see :meth:`_Staging.hand_over`).
     """
     if prepared is None:
         prepared = _prepare(session, assessments, revision_mode=revision_mode, timings=timings)
@@ -833,7 +836,8 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     _lap(timings, "compose summaries")
     if stage is not None:  # every notice is composed: its outbox files can be written ahead
         stage([(c[0], c[2], (c[3], p)) for c, p in zip(composed, payloads, strict=True) if c],
-              [(x[3], summary) for x, summary in zip(wanted, composed_summaries, strict=True)])
+              [(x[3], summary) for x, summary in zip(wanted, composed_summaries, strict=True)],
+              prepared.staged)
         _lap(timings, "hand over to the outbox writer")
     forecast_ids = _insert_returning_ids(session, Forecast, [
         {"block_id": a.block_id, "kind": a.kind, "night": a.night, "revision": a.revision, "created_at": now,
@@ -1028,15 +1032,45 @@ class _Staging:
         arena = self._arena
         self._spooler = forking.Spooler(
             lambda files: deliver_mod.stage_outbox(files, swept, written, arena),
-            {"publish": lambda token: deliver_mod.publish_staged(written, token)})
+            {"publish": lambda token, more: deliver_mod.publish_staged(written + list(more), token),
+             "checkpoint": db_mod.checkpoint})
+        #: The run's database connection whose automatic checkpoints wait (see :meth:`defer_checkpoints`).
+        self._deferred: tuple[Any, int] | None = None
+        self._db_file: str | None = None
+        self._checkpointing = False
+        self._written_by_workers: list[tuple[str, str]] = []
+
+    def write_share(self, blocks: list[tuple[str, Any, tuple[bytes, bytes]]]) -> list[tuple[str, str]]:
+        """In a worker process: write its own block notices' files ahead (as :meth:`hand_over` has the
+        writer do); (notice key, hidden name) of each, for :meth:`publish`.  Nothing, if writing fails
+        (the writer then writes them all)."""
+        from advisory.notices import deliver as deliver_mod
+
+        if not self.formats:
+            return []
+        written: list[tuple[str, str]] = []
+        items = [deliver_mod.stage_item(key, n, deliver_mod.json_file(*parts) if "json" in self.formats else b"")
+                 for key, n, parts in blocks]
+        try:
+            deliver_mod.stage_outbox(deliver_mod.staged_block_files(self.outbox, items, self.formats, self.token),
+                                     set(), written)
+        except Exception as exc:  # noqa: BLE001 - the writer does it instead
+            log.warning("a worker could not write its outbox files ahead (%s); the writer does", exc)
+            return []
+        return written
 
     def hand_over(self, blocks: list[tuple[str, Any, tuple[bytes, bytes]]],
-                  summaries: list[tuple[str, Any]]) -> None:
+                  summaries: list[tuple[str, Any]], written: list[tuple[str, str]] = ()) -> None:
         """Give the writer every composed notice of the run: ``blocks`` are each block notice's key,
         the notice, and its stored JSON and its payload's (joined by
-        :func:`advisory.notices.compose.whole_json`); ``summaries`` each farm summary's key and the summary."""
+        :func:`advisory.notices.compose.whole_json`); ``summaries`` each farm summary's key and the
+        summary; ``written`` the files worker processes wrote ahead already (:meth:`write_share`),
+        whose notices are left out."""
         from advisory.notices import deliver as deliver_mod
         from advisory.notices import words
+
+        self._written_by_workers = list(written)
+        done = {key for key, _ in written}
 
         self.folders |= {os.path.join(self.outbox, words.slug(n.night, 10, "undated"))
                          for _, n, _ in blocks} | {os.path.join(self.outbox, words.slug(n.night, 10, "undated"))
@@ -1045,6 +1079,8 @@ class _Staging:
             put, whole = self._arena.put, deliver_mod.json_file
             items = []
             for key, n, parts in blocks:
+                if key in done:
+                    continue
                 data = whole(*parts) if "json" in self.formats else b""
                 items.append(deliver_mod.stage_item(key, n, put(data) or data))
             for k in range(0, len(items), _STAGE_CHUNK):
@@ -1069,7 +1105,7 @@ class _Staging:
     def publish(self) -> None:
         """Have the writer move its files to their own names (the notices are stored); see :meth:`published`."""
         if self._token:
-            self._spooler.ask("publish", self._token)
+            self._spooler.ask("publish", self._token, self._written_by_workers)
 
     def published(self) -> set[str]:
         """After :meth:`publish`: the keys of the notices all of whose files written ahead are published
@@ -1082,11 +1118,41 @@ class _Staging:
             return set()
         return keys
 
+    def defer_checkpoints(self, session: Session, url: str) -> None:
+        """Keep the run's SQLite connection from copying its write-ahead log into the database file
+        at its commits (about as much as the run wrote: a tenth of a second on a RAM disk, more on a
+        disk): the writer does it after the commit, while the delivery goes on (:meth:`checkpoint`).
+        Put back by :meth:`discard`."""
+        self._db_file = db_mod.sqlite_file(url)
+        if self._db_file is None:
+            return
+        raw = session.connection().connection.dbapi_connection
+        before = raw.execute("PRAGMA wal_autocheckpoint").fetchone()[0]
+        raw.execute("PRAGMA wal_autocheckpoint=0")
+        self._deferred = (raw, int(before))
+
+    def checkpoint(self) -> None:
+        """After the commit: have the writer copy the log into the database file (see
+        :func:`advisory.store.db.checkpoint`); its answer is read by :meth:`discard`."""
+        if self._deferred is not None:
+            self._spooler.ask("checkpoint", self._db_file)
+            self._checkpointing = True
+
     def discard(self) -> None:
-        """Let the writer end, and remove whatever the delivery did not use (nothing, when every
-        notice was delivered)."""
+        """Let the writer end (after its checkpoint), put the connection's checkpoints back, and
+        remove whatever the delivery did not use (nothing, when every notice was delivered)."""
         from advisory.notices import deliver as deliver_mod
 
+        if self._checkpointing:
+            self._checkpointing = False
+            ok, answer = self._spooler.answer()
+            if not ok:
+                log.warning("checkpoint after the run failed (%s); the next commit does it", answer)
+        if self._deferred is not None:
+            raw, before = self._deferred
+            self._deferred = None
+            with contextlib.suppress(Exception):  # the connection may be gone with a failed run
+                raw.execute(f"PRAGMA wal_autocheckpoint={int(before)}")
         self._spooler.close()
         self._arena.close()
         for folder in self.folders:
@@ -1287,14 +1353,15 @@ def _frozen_heap():
 PARALLEL_FROM_BLOCKS = 2000
 #: The run's own process takes this many times a worker's share of the blocks: a worker
 #: also loads its blocks again, touches memory shared with this process (which the system
-#: then copies) and sends its results back (measured at 10,000 blocks: a quarter more time
-#: per block, and half a second to start; ``benchmarks/bench_night.py``).
-OWN_SHARE_WEIGHT = 1.4
+#: then copies), writes its notices' outbox files ahead when the run does (see
+#: :meth:`_Staging.write_share`) and sends its results back (measured at 10,000 blocks with
+#: ``benchmarks/bench_night.py``: 1.7 times the time per block, and half a second to start).
+OWN_SHARE_WEIGHT = 1.9
 
 
 def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, *, now: dt.datetime,
-                     update: bool, workers: int = 1, timings: StageTimes | None = None
-                     ) -> tuple[list[asm.Assessment], Prepared]:
+                     update: bool, workers: int = 1, timings: StageTimes | None = None,
+                     staging: _Staging | None = None) -> tuple[list[asm.Assessment], Prepared]:
     """Assess ``blocks`` and prepare what to store (:func:`assess_night`, then :func:`_prepare`).
 
     A large run (:data:`PARALLEL_FROM_BLOCKS` blocks or more, ``workers`` > 1, a database
@@ -1303,7 +1370,8 @@ def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, 
     processes the others, each reading the database on its own connection.  Nothing is
     written until every share is back, and the shares are joined in the order of the
     blocks, so the result is the one a single process gives.  A share that fails raises
-    here, and the run stores nothing.
+    here, and the run stores nothing.  With ``staging``, a worker also writes its own
+    notices' outbox files ahead (:meth:`_Staging.write_share`) before it hands them back.
     """
     from advisory import forking
 
@@ -1321,7 +1389,7 @@ def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, 
         if os.getpid() == home:  # this process: its own session and blocks
             own = assess_night(session, blocks[a:b], night, as_of=as_of, update=update, timings=timings)
             return own, _prepare(session, own, revision_mode=mode, timings=timings)
-        return _assess_share(db.url, [x.id for x in blocks[a:b]], night, now, update)
+        return _assess_share(db.url, [x.id for x in blocks[a:b]], night, now, update, staging)
 
     results = forking.fork_map(share, list(range(n_workers)), n_workers, own_weight=1.0 + 1e-9)
     _lap(timings, "wait for workers")
@@ -1330,7 +1398,8 @@ def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, 
     for share_assessments, p in results:
         assessments += share_assessments
         prepared = Prepared(prepared.todo + p.todo, prepared.payloads + p.payloads,
-                            prepared.composed + p.composed, prepared.skipped + p.skipped)
+                            prepared.composed + p.composed, prepared.skipped + p.skipped,
+                            prepared.staged + p.staged)
     return assessments, prepared
 
 
@@ -1342,9 +1411,10 @@ def _shared_database(db) -> bool:
     return u.get_backend_name() != "sqlite" or (bool(u.database) and u.database != ":memory:")
 
 
-def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.datetime, update: bool
-                  ) -> tuple[list[asm.Assessment], Prepared]:
-    """One worker's share of :func:`_assess_prepared` (runs in a forked process; reads only)."""
+def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.datetime, update: bool,
+                  staging: _Staging | None = None) -> tuple[list[asm.Assessment], Prepared]:
+    """One worker's share of :func:`_assess_prepared` (runs in a forked process; reads the database,
+    and with ``staging`` writes its notices' outbox files ahead)."""
     from advisory.store.db import Database
 
     db = Database(url, check=False)
@@ -1358,7 +1428,9 @@ def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.dateti
     # each notice goes back as the bytes already made of it (read again only where it is rendered)
     composed = [c if c is None else (c[0], c[1], compose.EncodedBlockNotice.of(c[2], c[3], payload), c[3])
                 for c, payload in zip(p.composed, p.payloads, strict=True)]
-    return assessments, Prepared(p.todo, p.payloads, composed, p.skipped)
+    staged = staging.write_share([(c[0], c[2], (c[3], payload)) for c, payload in zip(
+        composed, p.payloads, strict=True) if c]) if staging is not None else []
+    return assessments, Prepared(p.todo, p.payloads, composed, p.skipped, staged)
 
 
 def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, block_ids, farm, names, *,
@@ -1381,9 +1453,11 @@ def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, bl
                 staging = _start_staging(len(blocks), settings)
                 if staging is not None:
                     staged.append(staging)
+                    staging.defer_checkpoints(session, db.url)
             timings.lap("load blocks")
             res.assessments, prepared = _assess_prepared(db, session, blocks, night, now=now, update=update,
-                                                         workers=getattr(settings, "workers", 1), timings=timings)
+                                                         workers=getattr(settings, "workers", 1), timings=timings,
+                                                         staging=staged[0] if staged else None)
             stored, res.skipped = _store(session, res.assessments,
                                          revision_mode="update" if update else "evening", now=now,
                                          timings=timings, prepared=prepared,
@@ -1407,6 +1481,7 @@ def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, bl
         if token:
             timings["outbox files written ahead"] = staging.seconds  # by the writer, meanwhile
             staging.publish()  # the notices are stored: the writer moves its files to their names meanwhile
+            staging.checkpoint()  # and then copies the run's writes into the database file
         with _frozen_heap():
             pending = _pending_notices(db, night, "frost", farm_ids, known=known)
             res.deliveries = _deliver(db, pending, settings, sleep=sleep, staged=token,

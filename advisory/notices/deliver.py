@@ -402,7 +402,7 @@ def publish_staged(written: list[tuple[str, str]], token: str) -> set[str]:
     their notices are stored; the keys of the notices all of whose files are now published.
 
     A file that cannot be moved leaves its notice out (the delivery then writes that notice's files
-    itself); the list is emptied, so a file is never published twice.
+    itself).
     """
     mark = f".{token}{STAGED_SUFFIX}"
     done: set[str] = set()
@@ -415,7 +415,6 @@ def publish_staged(written: list[tuple[str, str]], token: str) -> set[str]:
         except OSError as exc:
             log.warning("outbox file written ahead not published (%s): %s", exc, path)
             failed.add(key)
-    written.clear()
     return done - failed
 
 

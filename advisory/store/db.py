@@ -31,6 +31,29 @@ def _sqlite_pragmas(dbapi_conn, _record):
     cur.close()
 
 
+def sqlite_file(url: str) -> str | None:
+    """The file of a SQLite database URL (None for another database or one in memory)."""
+    u = make_url(url)
+    if u.get_backend_name() != "sqlite" or not u.database or u.database == ":memory:":
+        return None
+    return str(Path(u.database).expanduser())
+
+
+def checkpoint(path: str) -> int:
+    """Copy what a SQLite database's write-ahead log holds into the database file, without waiting
+    for anyone (``PRAGMA wal_checkpoint(PASSIVE)``, on a connection of its own); the log's pages
+    copied.  A large run has this done by another process after its commit (see
+    :class:`advisory.pipeline._Staging`), instead of by its own commit."""
+    import sqlite3
+
+    con = sqlite3.connect(path, timeout=30)
+    try:
+        busy, _log, copied = con.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()
+        return int(copied)
+    finally:
+        con.close()
+
+
 def make_engine(url: str) -> Engine:
     """Create an engine; for a SQLite file, create its folder and set the pragmas."""
     try:
