@@ -1039,6 +1039,7 @@ class _Staging:
         self._db_file: str | None = None
         self._checkpointing = False
         self._written_by_workers: list[tuple[str, str]] = []
+        self._handed: set[str] = set()  # keys of the block notices handed over or written by workers
 
     def write_share(self, blocks: list[tuple[str, Any, tuple[bytes, bytes]]]) -> list[tuple[str, str]]:
         """In a worker process: write its own block notices' files ahead (as :meth:`hand_over` has the
@@ -1060,34 +1061,33 @@ class _Staging:
         return written
 
     def hand_over(self, blocks: list[tuple[str, Any, tuple[bytes, bytes]]],
-                  summaries: list[tuple[str, Any]], written: list[tuple[str, str]] = ()) -> None:
-        """Give the writer every composed notice of the run: ``blocks`` are each block notice's key,
-        the notice, and its stored JSON and its payload's (joined by
+                  summaries: list[tuple[str, Any]] = (), written: list[tuple[str, str]] = ()) -> None:
+        """Give the writer composed notices (as soon as they are composed; each once): ``blocks`` are
+        each block notice's key, the notice, and its stored JSON and its payload's (joined by
         :func:`advisory.notices.compose.whole_json`); ``summaries`` each farm summary's key and the
         summary; ``written`` the files worker processes wrote ahead already (:meth:`write_share`),
-        whose notices are left out."""
+        whose notices are left out, as are those handed over before."""
         from advisory.notices import deliver as deliver_mod
         from advisory.notices import words
 
-        self._written_by_workers = list(written)
-        done = {key for key, _ in written}
-
-        self.folders |= {os.path.join(self.outbox, words.slug(n.night, 10, "undated"))
-                         for _, n, _ in blocks} | {os.path.join(self.outbox, words.slug(n.night, 10, "undated"))
-                                                    for _, n in summaries}
+        self._written_by_workers += written
+        self._handed |= {key for key, _ in written}
+        nights = {n.night for _, n, _ in blocks} | {n.night for _, n in summaries}
+        self.folders |= {os.path.join(self.outbox, words.slug(night, 10, "undated")) for night in nights}
         if self.formats:  # plain values, quick to send; the names are made there
-            put, whole = self._arena.put, deliver_mod.json_file
+            put, whole, handed = self._arena.put, deliver_mod.json_file, self._handed
             items = []
             for key, n, parts in blocks:
-                if key in done:
+                if key in handed:
                     continue
+                handed.add(key)
                 data = whole(*parts) if "json" in self.formats else b""
                 items.append(deliver_mod.stage_item(key, n, put(data) or data))
             for k in range(0, len(items), _STAGE_CHUNK):
                 self._spooler.call(deliver_mod.staged_block_files, self.outbox, items[k:k + _STAGE_CHUNK],
                                    self.formats, self.token)
-        if summaries:  # rendered there, after the block files are handed over (the pipe is read meanwhile)
-            self._spooler.call(deliver_mod.staged_summary_files, self.outbox, summaries, self.token)
+        if summaries:  # rendered there
+            self._spooler.call(deliver_mod.staged_summary_files, self.outbox, list(summaries), self.token)
 
     def wait(self) -> str | None:
         """Wait for the writer; the token of its files, or None when it failed (the delivery then
@@ -1388,7 +1388,12 @@ def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, 
         a, b = bounds[k]
         if os.getpid() == home:  # this process: its own session and blocks
             own = assess_night(session, blocks[a:b], night, as_of=as_of, update=update, timings=timings)
-            return own, _prepare(session, own, revision_mode=mode, timings=timings)
+            p = _prepare(session, own, revision_mode=mode, timings=timings)
+            if staging is not None:  # the writer starts on these while the workers finish
+                staging.hand_over([(c[0], c[2], (c[3], payload))
+                                   for c, payload in zip(p.composed, p.payloads, strict=True) if c])
+                _lap(timings, "hand over to the outbox writer")
+            return own, p
         return _assess_share(db.url, [x.id for x in blocks[a:b]], night, now, update, staging)
 
     results = forking.fork_map(share, list(range(n_workers)), n_workers, own_weight=1.0 + 1e-9)
