@@ -133,17 +133,24 @@ def _load_blocks(session: Session, block_ids: Sequence[int] | None, farm: str | 
     ``equipment=False``) already in place, read with one query per table
     rather than one per block.
     """
-    q = select(Block).join(Farm).where(Block.active.is_(True)).order_by(Farm.name, Block.name)
+    blocks = list(session.scalars(_block_query(block_ids, farm, names)))
+    if blocks:
+        _populate(session, blocks, equipment=equipment)
+    return blocks
+
+
+def _block_query(block_ids: Sequence[int] | None, farm: str | None, names: Sequence[str] | None, *columns):
+    """The active blocks (all, or by id, farm or name) ordered by farm and block name: ``Block``
+    rows, or the given ``columns``."""
+    q = select(*(columns or (Block,))).select_from(Block).join(Farm).where(Block.active.is_(True)) \
+        .order_by(Farm.name, Block.name)
     if block_ids is not None:
         q = q.where(Block.id.in_(list(block_ids)))
     if farm:
         q = q.where(Farm.name == farm)
     if names:
         q = q.where(Block.name.in_(list(names)))
-    blocks = list(session.scalars(q))
-    if blocks:
-        _populate(session, blocks, equipment=equipment)
-    return blocks
+    return q
 
 
 def _populate(session: Session, blocks: list[Block], *, equipment: bool) -> None:
@@ -1359,42 +1366,53 @@ PARALLEL_FROM_BLOCKS = 2000
 OWN_SHARE_WEIGHT = 1.9
 
 
-def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, *, now: dt.datetime,
+def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date, *, now: dt.datetime,
                      update: bool, workers: int = 1, timings: StageTimes | None = None,
-                     staging: _Staging | None = None) -> tuple[list[asm.Assessment], Prepared]:
-    """Assess ``blocks`` and prepare what to store (:func:`assess_night`, then :func:`_prepare`).
+                     staging: _Staging | None = None, load: Callable[[], list[Block]] | None = None
+                     ) -> tuple[list[asm.Assessment], Prepared, list[Block]]:
+    """Load and assess the blocks ``block_ids`` (in that order) and prepare what to store
+    (:func:`assess_night`, then :func:`_prepare`); also the blocks, loaded.
 
     A large run (:data:`PARALLEL_FROM_BLOCKS` blocks or more, ``workers`` > 1, a database
     other processes can open, and no other thread in this process) is cut into
     ``workers`` consecutive shares of the block list: this process does the first, forked
-    processes the others, each reading the database on its own connection.  Nothing is
-    written until every share is back, and the shares are joined in the order of the
-    blocks, so the result is the one a single process gives.  A share that fails raises
-    here, and the run stores nothing.  With ``staging``, a worker also writes its own
-    notices' outbox files ahead (:meth:`_Staging.write_share`) before it hands them back.
+    processes the others, each reading the database on its own connection (forked before
+    this process loads the blocks, so that they start at once).  Nothing is written until
+    every share is back, and the shares are joined in the order of the blocks, so the
+    result is the one a single process gives.  A share that fails raises here, and the
+    run stores nothing.  With ``staging``, a worker also writes its own notices' outbox
+    files ahead (:meth:`_Staging.write_share`) before it hands them back.  ``load()`` loads
+    the blocks (default: by their ids).
     """
     from advisory import forking
 
     mode = "update" if update else "evening"
     as_of = now if update else None
-    n_workers = min(int(workers or 1), len(blocks) // max(1, PARALLEL_FROM_BLOCKS // 2))
+    n_workers = min(int(workers or 1), len(block_ids) // max(1, PARALLEL_FROM_BLOCKS // 2))
+    load = load or (lambda: _load_blocks(session, block_ids, equipment=False) if block_ids else [])
     if n_workers < 2 or not _shared_database(db) or not forking.can_fork():
+        blocks = load()
         assessments = assess_night(session, blocks, night, as_of=as_of, update=update, timings=timings)
-        return assessments, _prepare(session, assessments, revision_mode=mode, timings=timings)
-    bounds = forking.share_bounds(len(blocks), n_workers, OWN_SHARE_WEIGHT)
+        return assessments, _prepare(session, assessments, revision_mode=mode, timings=timings), blocks
+    bounds = forking.share_bounds(len(block_ids), n_workers, OWN_SHARE_WEIGHT)
     home = os.getpid()
+    loaded: list[Block] = []
 
     def share(k: int) -> tuple[list[asm.Assessment], Prepared]:
         a, b = bounds[k]
-        if os.getpid() == home:  # this process: its own session and blocks
-            own = assess_night(session, blocks[a:b], night, as_of=as_of, update=update, timings=timings)
+        if os.getpid() == home:  # this process: every block (it stores them all), its own share assessed
+            loaded.extend(load())
+            if [x.id for x in loaded] != list(block_ids):
+                raise RuntimeError("the blocks changed while the run started; run it again")
+            _lap(timings, "load blocks")
+            own = assess_night(session, loaded[a:b], night, as_of=as_of, update=update, timings=timings)
             p = _prepare(session, own, revision_mode=mode, timings=timings)
             if staging is not None:  # the writer starts on these while the workers finish
                 staging.hand_over([(c[0], c[2], (c[3], payload))
                                    for c, payload in zip(p.composed, p.payloads, strict=True) if c])
                 _lap(timings, "hand over to the outbox writer")
             return own, p
-        return _assess_share(db.url, [x.id for x in blocks[a:b]], night, now, update, staging)
+        return _assess_share(db.url, list(block_ids[a:b]), night, now, update, staging)
 
     results = forking.fork_map(share, list(range(n_workers)), n_workers, own_weight=1.0 + 1e-9)
     _lap(timings, "wait for workers")
@@ -1405,7 +1423,7 @@ def _assess_prepared(db, session: Session, blocks: list[Block], night: dt.date, 
         prepared = Prepared(prepared.todo + p.todo, prepared.payloads + p.payloads,
                             prepared.composed + p.composed, prepared.skipped + p.skipped,
                             prepared.staged + p.staged)
-    return assessments, prepared
+    return assessments, prepared, loaded
 
 
 def _shared_database(db) -> bool:
@@ -1446,23 +1464,27 @@ def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, bl
     if state == "new":
         with _batch_gc(), db.transaction() as session:
             timings.lap("start")
-            blocks = _load_blocks(session, block_ids, farm, names, equipment=False)
-            farm_ids = sorted({b.farm_id for b in blocks})
+            # the blocks' ids first: a large run's workers start on theirs while this process loads its own
+            rows = session.execute(_block_query(block_ids, farm, names, Block.id, Block.name, Block.farm_id)).all()
+            farm_ids = sorted({r.farm_id for r in rows})
             done_before: list[str] = []
             if not update:  # a block already assessed tonight is not assessed again (a rerun)
-                before = _previous_revisions(session, [b.id for b in blocks], night, "frost")
-                done_before = [f"{b.name}: frost {night} already assessed (revision {before[b.id]})"
-                               for b in blocks if b.id in before]
-                blocks = [b for b in blocks if b.id not in before]
+                before = _previous_revisions(session, [r.id for r in rows], night, "frost")
+                done_before = [f"{r.name}: frost {night} already assessed (revision {before[r.id]})"
+                               for r in rows if r.id in before]
+                rows = [r for r in rows if r.id not in before]
             if deliver:
-                staging = _start_staging(len(blocks), settings)
+                staging = _start_staging(len(rows), settings)
                 if staging is not None:
                     staged.append(staging)
                     staging.defer_checkpoints(session, db.url)
             timings.lap("load blocks")
-            res.assessments, prepared = _assess_prepared(db, session, blocks, night, now=now, update=update,
-                                                         workers=getattr(settings, "workers", 1), timings=timings,
-                                                         staging=staged[0] if staged else None)
+            wanted = {r.id for r in rows}
+            res.assessments, prepared, blocks = _assess_prepared(
+                db, session, [r.id for r in rows], night, now=now, update=update,
+                workers=getattr(settings, "workers", 1), timings=timings, staging=staged[0] if staged else None,
+                load=lambda: [b for b in _load_blocks(session, block_ids, farm, names, equipment=False)
+                              if b.id in wanted])
             stored, res.skipped = _store(session, res.assessments,
                                          revision_mode="update" if update else "evening", now=now,
                                          timings=timings, prepared=prepared,
