@@ -493,7 +493,11 @@ def _set_curves(out: list[asm.Assessment], fc: NightForecast, states: pd.DataFra
     dew = states["dew_point_c"].to_numpy(float)[idx][:, None]
     pk = np.broadcast_to(np.asarray(pressure_kpa, float)[:, None], p50.shape)
     wet = np.asarray(moisture.wet_bulb_c(p50[valid], np.minimum(dew, p50)[valid], pk[valid]), float)
-    when = pd.DatetimeIndex(times[valid]).tz_localize("UTC").round("s").to_pydatetime()
+    # one datetime object per distinct hour, shared by every block's curve (the blocks of a pass share
+    # one time grid): fewer objects to make, keep, encode and hand back from a worker process
+    hours, which = np.unique(times[valid], return_inverse=True)
+    shared = pd.DatetimeIndex(hours).tz_localize("UTC").round("s").to_pydatetime()
+    when = [shared[k] for k in which.tolist()]
     # Hundredths of a degree are kept: finer digits mean nothing and would only fill the
     # stored payloads, notices and outbox files of every block.
     rows = zip(when, *(np.round(x, 2).tolist() for x in (p50[valid], p10[valid], p90[valid], wet)), strict=True)

@@ -49,3 +49,11 @@ def test_a_notice_carried_encoded_reads_and_renders_as_composed():
     again = pickle.loads(pickle.dumps(back))   # a notice read once still pickles as its bytes
     for fmt in render.FORMATS:
         assert render.render(again, fmt) == render.render(n, fmt), fmt
+
+
+def test_an_assessment_handed_back_by_a_worker_is_the_same():
+    """Curve points and plan steps pickle by their field values (see advisory.assessment)."""
+    a = samples.frost_assessment()
+    back = pickle.loads(pickle.dumps(a, protocol=pickle.HIGHEST_PROTOCOL))
+    assert back == a and jsoncodec.encode(back) == jsoncodec.encode(a)
+    assert back.curve and back.plan and type(back.curve[0]) is type(a.curve[0])
