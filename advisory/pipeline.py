@@ -1405,10 +1405,11 @@ def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date,
     def share(k: int) -> tuple[list[asm.Assessment], Prepared]:
         a, b = bounds[k]
         if os.getpid() == home:  # this process: every block (it stores them all), its own share assessed
-            loaded.extend(load())
-            if [x.id for x in loaded] != list(block_ids):
-                raise RuntimeError("the blocks changed while the run started; run it again")
-            _lap(timings, "load blocks")
+            if not loaded:  # (once: a share whose worker stopped is done here too)
+                loaded.extend(load())
+                if [x.id for x in loaded] != list(block_ids):
+                    raise RuntimeError("the blocks changed while the run started; run it again")
+                _lap(timings, "load blocks")
             own = assess_night(session, loaded[a:b], night, as_of=as_of, update=update, timings=timings)
             p = _prepare(session, own, revision_mode=mode, timings=timings)
             if staging is not None:  # the writer starts on these while the workers finish

@@ -335,3 +335,34 @@ def test_driver_level_inserts_store_what_the_orm_stores(spring_db, demo_farm, tm
         assert len(fast) == len(orm) > 5
         for a, b in zip(fast, orm, strict=True):  # same ids, same stored text and numbers
             assert a == b
+
+
+def test_a_worker_that_stops_has_its_share_done_by_the_run(spring_db, demo_farm, tmp_path, monkeypatch, caplog):
+    """A worker process that dies mid-run: its share is assessed by the run's own process, once."""
+    import os
+
+    url, serial_db = _second_spring_db(tmp_path / "serial.sqlite", demo_farm)
+    one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
+    pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
+    want = _stored(serial_db)
+    serial_db.dispose()
+
+    home = os.getpid()
+    real = pipeline._assess_share
+
+    def dies(*args, **kw):
+        if os.getpid() != home:
+            os._exit(3)  # without a word
+        return real(*args, **kw)
+
+    monkeypatch.setattr(pipeline, "_assess_share", dies)
+    monkeypatch.setattr(pipeline, "PARALLEL_FROM_BLOCKS", 2)
+    monkeypatch.setattr(pipeline, "STAGE_OUTBOX_FROM", 2)
+    two = dataclasses.replace(one, db_url=spring_db.url, workers=2, outbox=tmp_path / "outbox-two")
+    caplog.set_level("WARNING", logger="advisory.forking")
+    res = pipeline.run_night(spring_db, NIGHT, now=NOW, settings=two, sleep=lambda s: None)
+    assert "a worker process stopped" in caplog.text
+    assert len(res.assessments) == len({a.block_id for a in res.assessments}) == 6
+    _same(_stored(spring_db), want)
+    files = {p.relative_to(one.outbox) for p in one.outbox.rglob("*") if p.is_file()}
+    assert {p.relative_to(two.outbox) for p in two.outbox.rglob("*") if p.is_file()} == files

@@ -336,6 +336,7 @@ def when(value, tz: str) -> str:
     return "n/a" if t is None else f"{t:%a} {t.day} {t:%b %H:%M %Z}"
 
 
+@lru_cache(maxsize=1024)  # a run names the same few nights thousands of times
 def day(d) -> str:
     """``Mon 6 Apr 2026`` for a date or ISO date text."""
     if isinstance(d, str):
@@ -346,6 +347,7 @@ def day(d) -> str:
     return f"{d:%a} {d.day} {d:%b %Y}"
 
 
+@lru_cache(maxsize=1024)
 def short_day(d) -> str:
     """``6 Apr``."""
     if isinstance(d, str):

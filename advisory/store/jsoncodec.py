@@ -68,6 +68,9 @@ class Encoded(Mapping):
 
 
 def _fallback(value: Any):
+    s = _ISO.get(value) if type(value) is dt.datetime else None  # the common case first: an instant seen before
+    if s is not None:
+        return s
     if isinstance(value, Encoded):
         return orjson.Fragment(value.raw)
     if isinstance(value, dt.datetime):  # also pandas.Timestamp
