@@ -181,6 +181,11 @@ class Spooler:
     is done; :meth:`ask` has the copy run one of its ``commands`` after it (the answer
     is read with :meth:`answer`, so that this process can go on meanwhile).
 
+    Processes forked from this one afterwards (workers) may hand work over too, each through
+    an inbox of its own (:meth:`feeder`); :meth:`status` and the ``commands`` then wait
+    until each has said it is done (:meth:`Feeder.done`) or this process has released it
+    (:meth:`release`: it will send nothing more, e.g. it stopped).
+
     Parameters
     ----------
     write : callable
@@ -188,20 +193,34 @@ class Spooler:
     commands : dict of str to callable, optional
         What :meth:`ask` may run in the copy (made before the fork, so that they share the
         state of ``write``, such as what it wrote).
+    feeders : int
+        Inboxes for other processes.
     """
 
-    def __init__(self, write: Callable[[Any], int], commands: dict[str, Callable[..., Any]] | None = None):
+    def __init__(self, write: Callable[[Any], int], commands: dict[str, Callable[..., Any]] | None = None,
+                 feeders: int = 0):
         ctx = multiprocessing.get_context("fork")
-        inbox_r, self._inbox = ctx.Pipe(duplex=False)
+        pipes = [ctx.Pipe(duplex=False) for _ in range(1 + int(feeders))]
+        self._inbox = pipes[0][1]
+        self._feeds = [w for _, w in pipes[1:]]
         self._report, report_w = ctx.Pipe(duplex=False)
-        self._proc = ctx.Process(target=_spool, args=(inbox_r, report_w, write, dict(commands or {}),
-                                                      (self._inbox, self._report)),
+        self._proc = ctx.Process(target=_spool, args=([r for r, _ in pipes], report_w, write, dict(commands or {}),
+                                                      [w for _, w in pipes] + [self._report]),
                                  name="spooler", daemon=True)
         self._proc.start()
-        inbox_r.close()
+        for r, _ in pipes:
+            r.close()
         report_w.close()
         self._broken: str | None = None
         self._closed = False
+
+    def feeder(self, k: int) -> Feeder:
+        """Inbox ``k`` (1, 2, ...) for a process forked after the copy (see the class)."""
+        return Feeder(k, self._feeds[k - 1])
+
+    def release(self, k: int) -> None:
+        """Stop waiting for feeder ``k`` to say it is done (it will send nothing more)."""
+        self._put(("done", k))
 
     def send(self, files: list[tuple[str, bytes]]) -> None:
         """Hand over files to write."""
@@ -259,12 +278,26 @@ class Spooler:
         if self._proc.is_alive():
             self._proc.kill()
             self._proc.join()
-        for conn in (self._inbox, self._report):
+        for conn in (self._inbox, self._report, *self._feeds):
             conn.close()
 
 
-def _spool(inbox, report, write, commands, parent_ends) -> None:
-    """The copy's side of :class:`Spooler`: a thread drains the pipe, this one works."""
+class Feeder:
+    """A worker's inbox to a :class:`Spooler` (made by :meth:`Spooler.feeder` before the worker is
+    forked): ``call`` as :meth:`Spooler.call`, then ``done`` once."""
+
+    def __init__(self, k: int, conn):
+        self.k, self._conn = k, conn
+
+    def call(self, fn: Callable[..., Any], *args: Any) -> None:
+        self._conn.send(("call", fn, args))
+
+    def done(self) -> None:
+        self._conn.send(("done", self.k))
+
+
+def _spool(inboxes, report, write, commands, parent_ends) -> None:
+    """The copy's side of :class:`Spooler`: a thread per inbox drains it, this one works."""
     import gc
     import queue
     import time
@@ -274,32 +307,51 @@ def _spool(inbox, report, write, commands, parent_ends) -> None:
         conn.close()
     messages: queue.SimpleQueue = queue.SimpleQueue()
 
-    def drain():
+    def drain(k: int, inbox):
         while True:
             try:
                 msg = inbox.recv()
             except (EOFError, OSError):
+                if k:  # a feeder's inbox: its process is gone (the parent releases it)
+                    return
                 msg = ("end",)  # the parent is gone: its files will be swept away as stale
             messages.put(msg)
             if msg[0] == "end":
                 return
 
-    threading.Thread(target=drain, name="spooler-inbox", daemon=True).start()
+    for k, inbox in enumerate(inboxes):
+        threading.Thread(target=drain, args=(k, inbox), name=f"spooler-inbox-{k}", daemon=True).start()
     count, error, busy = 0, None, 0.0
+    waiting_for = set(range(1, len(inboxes)))  # feeders that have not said they are done
+    asked: list[tuple] = []  # questions held until they have
+
+    def answer(msg) -> None:
+        name, args = msg[1], msg[2]
+        if name == "status":
+            reply = (True, (count, busy, error))
+        else:
+            try:
+                reply = (True, commands[name](*args))
+            except BaseException as exc:
+                reply = (False, f"{type(exc).__name__}: {exc}")
+        report.send(reply)
+
     while True:
         msg = messages.get()
         if msg[0] == "end":
             return
+        if msg[0] == "done":
+            waiting_for.discard(msg[1])
+            if not waiting_for:
+                for held in asked:
+                    answer(held)
+                asked.clear()
+            continue
         if msg[0] == "ask":
-            name, args = msg[1], msg[2]
-            if name == "status":
-                answer = (True, (count, busy, error))
+            if waiting_for:
+                asked.append(msg)
             else:
-                try:
-                    answer = (True, commands[name](*args))
-                except BaseException as exc:
-                    answer = (False, f"{type(exc).__name__}: {exc}")
-            report.send(answer)
+                answer(msg)
             continue
         if error is None:
             t0 = time.perf_counter()

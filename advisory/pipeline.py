@@ -715,8 +715,9 @@ class Prepared:
     composed: list[tuple | None]
     #: Messages for assessments not stored (already assessed).
     skipped: list[str]
-    #: Outbox files written ahead by the worker process that composed them: (notice key, hidden name).
-    staged: list[tuple[str, str]] = field(default_factory=list)
+    #: Keys of the block notices whose outbox files the worker process that composed them handed
+    #: to the outbox writer itself (see :meth:`_Staging.write_share`).
+    staged: list[str] = field(default_factory=list)
 
 
 def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mode: str,
@@ -1021,7 +1022,7 @@ class _Staging:
     once they are an hour old.
     """
 
-    def __init__(self, settings, formats: tuple[str, ...], blocks: int):
+    def __init__(self, settings, formats: tuple[str, ...], blocks: int, feeders: int = 0):
         import secrets
 
         from advisory import forking
@@ -1043,46 +1044,55 @@ class _Staging:
         arena = self._arena
         self._spooler = forking.Spooler(
             lambda files: deliver_mod.stage_outbox(files, swept, written, arena),
-            {"publish": lambda token, more: deliver_mod.publish_staged(written + list(more), token),
-             "checkpoint": db_mod.checkpoint})
+            {"publish": lambda token: deliver_mod.publish_staged(written, token), "checkpoint": db_mod.checkpoint},
+            feeders=feeders)
+        #: Worker inboxes not settled yet (see :meth:`settle`).
+        self._feeders = set(range(1, feeders + 1))
         #: The run's database connection whose automatic checkpoints wait (see :meth:`defer_checkpoints`).
         self._deferred: tuple[Any, int] | None = None
         self._db_file: str | None = None
         self._checkpointing = False
-        self._written_by_workers: list[tuple[str, str]] = []
         self._handed: set[str] = set()  # keys of the block notices handed over or written by workers
 
-    def write_share(self, blocks: list[tuple[str, Any, tuple[bytes, bytes]]]) -> list[tuple[str, str]]:
-        """In a worker process: write its own block notices' files ahead (as :meth:`hand_over` has the
-        writer do); (notice key, hidden name) of each, for :meth:`publish`.  Nothing, if writing fails
-        (the writer then writes them all)."""
+    def write_share(self, k: int, blocks: list[tuple[str, Any, tuple[bytes, bytes]]]) -> bool:
+        """In worker process ``k`` (1, 2, ...): hand its own block notices to the writer through the
+        worker's own inbox, as :meth:`hand_over` does for the run's process; whether all went (if not,
+        the run's process hands them over)."""
         from advisory.notices import deliver as deliver_mod
 
-        if not self.formats:
-            return []
-        written: list[tuple[str, str]] = []
+        if not self.formats or k not in self._feeders:
+            return False
+        feeder = self._spooler.feeder(k)
         items = [deliver_mod.stage_item(key, n, deliver_mod.json_file(*parts) if "json" in self.formats else b"")
                  for key, n, parts in blocks]
         try:
-            deliver_mod.stage_outbox(deliver_mod.staged_block_files(self.outbox, items, self.formats, self.token),
-                                     set(), written)
-        except Exception as exc:  # noqa: BLE001 - the writer does it instead
-            log.warning("a worker could not write its outbox files ahead (%s); the writer does", exc)
-            return []
-        return written
+            for j in range(0, len(items), _STAGE_CHUNK):
+                feeder.call(deliver_mod.staged_block_files, self.outbox, items[j:j + _STAGE_CHUNK], self.formats,
+                            self.token)
+            feeder.done()
+        except (OSError, ValueError) as exc:  # the writer is gone: the run's process finds out too
+            log.warning("a worker could not hand its outbox files to the writer (%s)", exc)
+            return False
+        return True
+
+    def settle(self, fed: Collection[int]) -> None:
+        """The workers are back: stop waiting for those that did not hand their files over (``fed``
+        are those that did and said so)."""
+        for k in sorted(self._feeders - set(fed)):
+            self._spooler.release(k)
+        self._feeders.clear()
 
     def hand_over(self, blocks: list[tuple[str, Any, tuple[bytes, bytes]]],
-                  summaries: list[tuple[str, Any]] = (), written: list[tuple[str, str]] = ()) -> None:
+                  summaries: list[tuple[str, Any]] = (), fed: Collection[str] = ()) -> None:
         """Give the writer composed notices (as soon as they are composed; each once): ``blocks`` are
         each block notice's key, the notice, and its stored JSON and its payload's (joined by
         :func:`advisory.notices.compose.whole_json`); ``summaries`` each farm summary's key and the
-        summary; ``written`` the files worker processes wrote ahead already (:meth:`write_share`),
-        whose notices are left out, as are those handed over before."""
+        summary; ``fed`` the keys of notices worker processes handed over themselves
+        (:meth:`write_share`), which are left out, as are those handed over before."""
         from advisory.notices import deliver as deliver_mod
         from advisory.notices import words
 
-        self._written_by_workers += written
-        self._handed |= {key for key, _ in written}
+        self._handed |= set(fed)
         nights = {n.night for _, n, _ in blocks} | {n.night for _, n in summaries}
         self.folders |= {os.path.join(self.outbox, words.slug(night, 10, "undated")) for night in nights}
         if self.formats:  # plain values, quick to send; the names are made there
@@ -1105,6 +1115,7 @@ class _Staging:
         writes every file itself)."""
         if not self.used:
             self.used = True
+            self.settle(())  # (after a failure before the workers were back: nothing more will come)
             self.files, self.seconds, error = self._spooler.status()
             if error is not None:
                 log.warning("outbox files written ahead are not used (%s); the delivery writes them", error)
@@ -1116,7 +1127,7 @@ class _Staging:
     def publish(self) -> None:
         """Have the writer move its files to their own names (the notices are stored); see :meth:`published`."""
         if self._token:
-            self._spooler.ask("publish", self._token, self._written_by_workers)
+            self._spooler.ask("publish", self._token)
 
     def published(self) -> set[str]:
         """After :meth:`publish`: the keys of the notices all of whose files written ahead are published
@@ -1178,7 +1189,8 @@ def _start_staging(n_blocks: int, settings) -> _Staging | None:
     if n_blocks < STAGE_OUTBOX_FROM or not forking.can_fork():
         return None
     formats = deliver_mod.stageable(tuple(getattr(settings, "outbox_formats", None) or deliver_mod.OUTBOX_FORMATS))
-    return _Staging(settings, formats, n_blocks)
+    workers = int(getattr(settings, "workers", 1) or 1)
+    return _Staging(settings, formats, n_blocks, feeders=max(0, workers - 1))
 
 
 def _attached(session: Session, to_send: list[tuple[Notice, list]]) -> list[tuple[Notice, list]]:
@@ -1363,11 +1375,10 @@ def _frozen_heap():
 #: ``settings.workers`` processes (see :func:`_assess_prepared`).
 PARALLEL_FROM_BLOCKS = 2000
 #: The run's own process takes this many times a worker's share of the blocks: a worker
-#: also loads its blocks again, touches memory shared with this process (which the system
-#: then copies), writes its notices' outbox files ahead when the run does (see
-#: :meth:`_Staging.write_share`) and sends its results back (measured at 10,000 blocks with
-#: ``benchmarks/bench_night.py``: 1.7 times the time per block, and half a second to start).
-OWN_SHARE_WEIGHT = 1.9
+#: also loads its blocks again and sends its results back, while this process loads every
+#: block, hands its own notices to the outbox writer and takes the workers' results in
+#: (measured at 10,000 blocks with ``benchmarks/bench_night.py``: both shares then end together).
+OWN_SHARE_WEIGHT = 1.5
 
 
 def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date, *, now: dt.datetime,
@@ -1396,6 +1407,8 @@ def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date,
     load = load or (lambda: _load_blocks(session, block_ids, equipment=False) if block_ids else [])
     if n_workers < 2 or not _shared_database(db) or not forking.can_fork():
         blocks = load()
+        if staging is not None:
+            staging.settle(())
         assessments = assess_night(session, blocks, night, as_of=as_of, update=update, timings=timings)
         return assessments, _prepare(session, assessments, revision_mode=mode, timings=timings), blocks
     bounds = forking.share_bounds(len(block_ids), n_workers, OWN_SHARE_WEIGHT)
@@ -1417,9 +1430,11 @@ def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date,
                                    for c, payload in zip(p.composed, p.payloads, strict=True) if c])
                 _lap(timings, "hand over to the outbox writer")
             return own, p
-        return _assess_share(db.url, list(block_ids[a:b]), night, now, update, staging)
+        return _assess_share(db.url, list(block_ids[a:b]), night, now, update, staging, k)
 
     results = forking.fork_map(share, list(range(n_workers)), n_workers, own_weight=1.0 + 1e-9)
+    if staging is not None:  # a worker that handed its files over said so; a stopped one did not
+        staging.settle([k for k, (_, p) in enumerate(results) if k and p.staged])
     _lap(timings, "wait for workers")
     assessments: list[asm.Assessment] = []
     prepared = Prepared([], [], [], [])
@@ -1440,7 +1455,7 @@ def _shared_database(db) -> bool:
 
 
 def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.datetime, update: bool,
-                  staging: _Staging | None = None) -> tuple[list[asm.Assessment], Prepared]:
+                  staging: _Staging | None = None, k: int = 1) -> tuple[list[asm.Assessment], Prepared]:
     """One worker's share of :func:`_assess_prepared` (runs in a forked process; reads the database,
     and with ``staging`` writes its notices' outbox files ahead)."""
     from advisory.store.db import Database
@@ -1456,9 +1471,9 @@ def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.dateti
     # each notice goes back as the bytes already made of it (read again only where it is rendered)
     composed = [c if c is None else (c[0], c[1], compose.EncodedBlockNotice.of(c[2], c[3], payload), c[3])
                 for c, payload in zip(p.composed, p.payloads, strict=True)]
-    staged = staging.write_share([(c[0], c[2], (c[3], payload)) for c, payload in zip(
-        composed, p.payloads, strict=True) if c]) if staging is not None else []
-    return assessments, Prepared(p.todo, p.payloads, composed, p.skipped, staged)
+    mine = [(c[0], c[2], (c[3], payload)) for c, payload in zip(composed, p.payloads, strict=True) if c]
+    fed = staging is not None and staging.write_share(k, mine)
+    return assessments, Prepared(p.todo, p.payloads, composed, p.skipped, [key for key, _, _ in mine] if fed else [])
 
 
 def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, block_ids, farm, names, *,
