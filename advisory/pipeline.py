@@ -1406,7 +1406,7 @@ def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date,
     n_workers = min(int(workers or 1), len(block_ids) // max(1, PARALLEL_FROM_BLOCKS // 2))
     load = load or (lambda: _load_blocks(session, block_ids, equipment=False) if block_ids else [])
     if n_workers < 2 or not _shared_database(db) or not forking.can_fork():
-        blocks = load()
+        blocks = load() if block_ids else []
         if staging is not None:
             staging.settle(())
         assessments = assess_night(session, blocks, night, as_of=as_of, update=update, timings=timings)
