@@ -5,8 +5,13 @@ A nightly run for thousands of blocks is pure Python for most of its time
 :func:`fork_map` cuts a list of work items into consecutive shares: this process
 does the first, forked copies of it the others.  A fork sees this process's
 memory as it was, so the items and the function are not sent anywhere; only
-the results come back (pickled).  The copies never write to the database; the
-caller stores the results, so a run stays one transaction.
+the results come back (pickled, through memory shared with this process: an
+:class:`Arena`).  The copies never write to the database; the caller stores the
+results, so a run stays one transaction.
+
+A :class:`Spooler` is a copy that writes files while this process goes on (the
+outbox files of a large run), fed by this process and by the workers forked
+after it.
 
 Forking is used only where it is safe: the platform forks, no other thread runs
 in this process (a fork would copy the locks another thread holds), and this
