@@ -17,8 +17,9 @@ own), it measures:
   load observations, sun and evening state, forecast, risk and plan, compose,
   store (one transaction), delivery to the outbox (the only channel: the
   recipients have no e-mail, webhook or text-message address) -- with the
-  pipeline's per-stage breakdown, the wall time and the peak RSS of the run's
-  process; with ``--tree-memory``, also the peak proportional set size (PSS) of
+  pipeline's per-stage breakdown, the wall time, the processor time of the run's
+  process and of its forked copies, and the peak RSS of the run's process; with
+  ``--tree-memory``, also the peak proportional set size (PSS) of
   it and its forked copies together, sampled every 100 ms from ``/proc`` (a page
   shared after a fork counts once; reading it slows the run, so time without it);
 * ``rerun``: the same run again (everything is already done: nothing stored
