@@ -205,9 +205,9 @@ def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_
     _same(got, want)
 
 
-@pytest.mark.parametrize("writer_fails", [False, True])
+@pytest.mark.parametrize("writer_fails, workers", [(False, 2), (True, 2), (False, 3)])
 def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo_farm, tmp_path, monkeypatch,
-                                                                  caplog, writer_fails):
+                                                                  caplog, writer_fails, workers):
     """A large run's outbox files, written ahead by a forked copy while the run stores, are published
     only by the delivery and are the files one process writes; a stopped run's leftovers are removed."""
     import os
@@ -220,7 +220,7 @@ def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo
     pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
     serial_db.dispose()
 
-    two = dataclasses.replace(one, db_url=spring_db.url, workers=2, outbox=tmp_path / "outbox-two")
+    two = dataclasses.replace(one, db_url=spring_db.url, workers=workers, outbox=tmp_path / "outbox-two")
     night_dir = two.outbox / NIGHT.isoformat()
     night_dir.mkdir(parents=True)
     stale, fresh = night_dir / ".x.json.0badc0ffee00.staged", night_dir / ".y.json.0ddba11fee00.staged"
@@ -228,6 +228,7 @@ def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo
         p.write_text("{}")
     os.utime(stale, (time.time() - 2 * deliver.STALE_STAGED_S,) * 2)
     monkeypatch.setattr(pipeline, "STAGE_OUTBOX_FROM", 2)  # the demo farm has six blocks
+    monkeypatch.setattr(pipeline, "PARALLEL_FROM_BLOCKS", 2)  # and its workers hand their files over
     if writer_fails:
         def broken(*args, **kw):
             raise OSError("disk full")
@@ -235,6 +236,7 @@ def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo
     caplog.set_level("WARNING", logger="advisory.pipeline")
     res = pipeline.run_night(spring_db, NIGHT, now=NOW, settings=two, sleep=lambda s: None)
     assert ("outbox files written ahead" in res.timings) is not writer_fails
+    assert "wait for workers" in res.timings
     assert ("disk full" in caplog.text) is writer_fails
 
     files = {p.relative_to(one.outbox): p.read_bytes() for p in one.outbox.rglob("*") if p.is_file()}
