@@ -65,7 +65,7 @@ class ProtectionStep:
     caution_keys: list[str] = field(default_factory=list)
 
 
-def _pickle_by_fields(cls) -> None:
+def pickle_by_fields(cls) -> None:
     """Pickle instances of the dataclass ``cls`` as its class and field values in order (not a
     dict of its state): about half the time, for the hundreds of thousands of curve points a
     large run's worker processes hand back."""
@@ -77,8 +77,8 @@ def _pickle_by_fields(cls) -> None:
     copyreg.pickle(cls, reduce)
 
 
-_pickle_by_fields(CurvePoint)
-_pickle_by_fields(ProtectionStep)
+pickle_by_fields(CurvePoint)
+pickle_by_fields(ProtectionStep)
 
 
 @dataclass

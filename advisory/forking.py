@@ -206,6 +206,8 @@ class Spooler:
                  feeders: int = 0):
         ctx = multiprocessing.get_context("fork")
         pipes = [ctx.Pipe(duplex=False) for _ in range(1 + int(feeders))]
+        for _, w in pipes:
+            _widen(w)
         self._inbox = pipes[0][1]
         self._feeds = [w for _, w in pipes[1:]]
         self._report, report_w = ctx.Pipe(duplex=False)
@@ -285,6 +287,15 @@ class Spooler:
             self._proc.join()
         for conn in (self._inbox, self._report, *self._feeds):
             conn.close()
+
+
+def _widen(conn) -> None:
+    """Let a pipe hold up to 1 MiB (Linux; elsewhere, or above the system's limit, it stays as it is):
+    a large message then crosses in a few steps, each of which waits for the reading thread's turn."""
+    import fcntl
+
+    with contextlib.suppress(OSError, AttributeError):
+        fcntl.fcntl(conn.fileno(), getattr(fcntl, "F_SETPIPE_SZ", 1031), 1 << 20)
 
 
 class Feeder:

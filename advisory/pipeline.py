@@ -190,6 +190,36 @@ def _populate(session: Session, blocks: list[Block], *, equipment: bool) -> None
             set_committed_value(b, "equipment", gear.get(b.id, []))
 
 
+@dataclass
+class _BlockLinks:
+    """What storing and delivering a block's notices needs of the block: its farm and recipients."""
+
+    id: int
+    farm_id: int
+    recipients: list = field(default_factory=list)
+
+
+def _block_links(session: Session, block_ids: Sequence[int]) -> dict[int, _BlockLinks]:
+    """:class:`_BlockLinks` of ``block_ids`` (recipients in the order :func:`_populate` gives them)."""
+    from advisory.store.schema import BlockRecipient, Recipient
+
+    out: dict[int, _BlockLinks] = {}
+    for chunk in _chunked(block_ids):
+        out.update((i, _BlockLinks(i, f)) for i, f in session.execute(
+            select(Block.id, Block.farm_id).where(Block.id.in_(chunk))))
+    links: list[tuple[int, int]] = []
+    for chunk in _chunked(block_ids):
+        links += session.execute(select(BlockRecipient.block_id, BlockRecipient.recipient_id)
+                                 .where(BlockRecipient.block_id.in_(chunk))
+                                 .order_by(BlockRecipient.block_id, BlockRecipient.recipient_id)).all()
+    recipients = {}
+    for chunk in _chunked(sorted({r for _, r in links})):
+        recipients.update({r.id: r for r in session.scalars(select(Recipient).where(Recipient.id.in_(chunk)))})
+    for bid, rid in links:
+        out[bid].recipients.append(recipients[rid])
+    return out
+
+
 def _equipment_of(session: Session, blocks: list[Block]) -> dict[int, list[dict]]:
     """Each block's protection equipment as ``{"kind": ..., **params}`` dicts, in id order (one query per
     5000 blocks; the ``equipment`` collections are used where already loaded)."""
@@ -805,7 +835,8 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     workers : int
         Processes that may compose the farm summaries of a large run (see :mod:`advisory.forking`).
     known_blocks : mapping, optional
-        The assessed blocks by id, when the caller has them loaded (else each is looked up).
+        The assessed blocks by id (or their :class:`_BlockLinks`), when the caller has them
+        (else each is looked up).
     stage : callable, optional
         Called with ``[(key, block notice, (stored JSON, payload JSON))]``, ``[(key, farm
         summary)]`` and the files already written ahead by worker processes once every notice
@@ -1384,9 +1415,10 @@ OWN_SHARE_WEIGHT = 1.5
 def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date, *, now: dt.datetime,
                      update: bool, workers: int = 1, timings: StageTimes | None = None,
                      staging: _Staging | None = None, load: Callable[[], list[Block]] | None = None
-                     ) -> tuple[list[asm.Assessment], Prepared, list[Block]]:
+                     ) -> tuple[list[asm.Assessment], Prepared, dict[int, Any]]:
     """Load and assess the blocks ``block_ids`` (in that order) and prepare what to store
-    (:func:`assess_night`, then :func:`_prepare`); also the blocks, loaded.
+    (:func:`assess_night`, then :func:`_prepare`); also the blocks by id (those assessed by workers
+    as :class:`_BlockLinks`).
 
     A large run (:data:`PARALLEL_FROM_BLOCKS` blocks or more, ``workers`` > 1, a database
     other processes can open, and no other thread in this process) is cut into
@@ -1397,7 +1429,7 @@ def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date,
     result is the one a single process gives.  A share that fails raises here, and the
     run stores nothing.  With ``staging``, a worker also writes its own notices' outbox
     files ahead (:meth:`_Staging.write_share`) before it hands them back.  ``load()`` loads
-    the blocks (default: by their ids).
+    the blocks of a run in one process (default: by their ids).
     """
     from advisory import forking
 
@@ -1410,20 +1442,21 @@ def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date,
         if staging is not None:
             staging.settle(())
         assessments = assess_night(session, blocks, night, as_of=as_of, update=update, timings=timings)
-        return assessments, _prepare(session, assessments, revision_mode=mode, timings=timings), blocks
+        return (assessments, _prepare(session, assessments, revision_mode=mode, timings=timings),
+                {b.id: b for b in blocks})
     bounds = forking.share_bounds(len(block_ids), n_workers, OWN_SHARE_WEIGHT)
     home = os.getpid()
-    loaded: list[Block] = []
+    known: dict[int, Any] = {}
 
     def share(k: int) -> tuple[list[asm.Assessment], Prepared]:
         a, b = bounds[k]
-        if os.getpid() == home:  # this process: every block (it stores them all), its own share assessed
-            if not loaded:  # (once: a share whose worker stopped is done here too)
-                loaded.extend(load())
-                if [x.id for x in loaded] != list(block_ids):
-                    raise RuntimeError("the blocks changed while the run started; run it again")
-                _lap(timings, "load blocks")
-            own = assess_night(session, loaded[a:b], night, as_of=as_of, update=update, timings=timings)
+        if os.getpid() == home:  # this process: its own share (or that of a worker that stopped)
+            mine = _load_blocks(session, block_ids[a:b], equipment=False)
+            if [x.id for x in mine] != list(block_ids[a:b]):
+                raise RuntimeError("the blocks changed while the run started; run it again")
+            known.update((x.id, x) for x in mine)
+            _lap(timings, "load blocks")
+            own = assess_night(session, mine, night, as_of=as_of, update=update, timings=timings)
             p = _prepare(session, own, revision_mode=mode, timings=timings)
             if staging is not None:  # the writer starts on these while the workers finish
                 staging.hand_over([(c[0], c[2], (c[3], payload))
@@ -1443,7 +1476,9 @@ def _assess_prepared(db, session: Session, block_ids: list[int], night: dt.date,
         prepared = Prepared(prepared.todo + p.todo, prepared.payloads + p.payloads,
                             prepared.composed + p.composed, prepared.skipped + p.skipped,
                             prepared.staged + p.staged)
-    return assessments, prepared, loaded
+    # the workers' blocks: only what storing and delivering their notices needs
+    known.update(_block_links(session, [i for i in block_ids if i not in known]))
+    return assessments, prepared, known
 
 
 def _shared_database(db) -> bool:
@@ -1500,7 +1535,7 @@ def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, bl
                     staging.defer_checkpoints(session, db.url)
             timings.lap("load blocks")
             wanted = {r.id for r in rows}
-            res.assessments, prepared, blocks = _assess_prepared(
+            res.assessments, prepared, known_blocks = _assess_prepared(
                 db, session, [r.id for r in rows], night, now=now, update=update,
                 workers=getattr(settings, "workers", 1), timings=timings, staging=staged[0] if staged else None,
                 load=lambda: [b for b in _load_blocks(session, block_ids, farm, names, equipment=False)
@@ -1510,7 +1545,7 @@ def _run_stages(db, res: RunResult, staged: list, state: str, night: dt.date, bl
                                          timings=timings, prepared=prepared,
                                          workers=getattr(settings, "workers", 1),
                                          stage=staged[0].hand_over if staged else None,
-                                         known_blocks={b.id: b for b in blocks})
+                                         known_blocks=known_blocks)
             res.skipped = done_before + res.skipped
             res.notices = [n.id for n, _ in stored]
             known = {n.id: (n, recips) for n, recips in stored}

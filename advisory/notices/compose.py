@@ -65,7 +65,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from advisory import assessment as asm
-from advisory.assessment import Assessment
+from advisory.assessment import Assessment, pickle_by_fields
 from advisory.notices import words as w
 from advisory.risk import cautions as caution_texts
 from advisory.store import jsoncodec
@@ -236,6 +236,9 @@ class FarmRow:
     critical: str
     action: str
     kind: str = "frost"
+
+
+pickle_by_fields(FarmRow)  # a large run's worker processes hand back thousands of rows
 
 
 @dataclass
