@@ -839,8 +839,9 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         (else each is looked up).
     stage : callable, optional
         Called with ``[(key, block notice, (stored JSON, payload JSON))]``, ``[(key, farm
-        summary)]`` and the files already written ahead by worker processes once every notice
-        of the batch is composed, before anything is written (see :meth:`_Staging.hand_over`).
+        summary)]`` and the keys of the block notices worker processes handed over themselves,
+        once every notice of the batch is composed, before anything is written (see
+        :meth:`_Staging.hand_over`).
     """
     if prepared is None:
         prepared = _prepare(session, assessments, revision_mode=revision_mode, timings=timings)
@@ -1036,15 +1037,17 @@ _ARENA_PER_BLOCK = 32 * 1024
 class _Staging:
     """A large run's outbox files, written ahead by a forked copy of the run's process.
 
-    Started once the blocks are loaded (while the process is still small: the copy
+    Started once the run knows its blocks (while the process is still small: the copy
     shares its memory, and a page either process changes afterwards is copied), the copy
-    waits until every notice is composed; then, while this process stores the notices,
-    it writes the block notices' JSON and short text (handed over as bytes) and renders
-    and writes every file of the farm summaries, all under hidden names
-    (:func:`advisory.notices.deliver.staged_path`).  After the commit, the delivery only
-    moves each file to its own name, and writes itself whatever is missing.  The other
-    formats of a block notice take templates (and a chart, which depends on how each
-    notice goes out): the delivery's writers render those, in parallel.
+    is handed each share's block notices as soon as they are composed (by this process,
+    the JSON through shared memory; by each worker, through an inbox of its own) and then
+    the farm summaries, and writes them while the run goes on: the block notices' JSON and
+    short text, and every file of the farm summaries (rendered there), all under hidden
+    names (:func:`advisory.notices.deliver.staged_path`).  After the commit it moves them to
+    their own names (:meth:`publish`) and copies the run's SQLite log into the database
+    file (:meth:`checkpoint`); the delivery records what is in place and writes whatever is
+    missing.  The other formats of a block notice take templates (and a chart, which
+    depends on how each notice goes out): the delivery's writers render those, in parallel.
 
     A copy rather than a thread: a thread of this process would share one interpreter
     lock with the inserts, and slowed them by more than it saved.  Nothing the copy

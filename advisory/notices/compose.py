@@ -306,7 +306,7 @@ class EncodedBlockNotice(BlockNotice):
     HEAD = ("key", "kind", "status", "farm", "block_id", "block", "night", "revision", "is_update", "level",
             "level_rank", "subject", "sms")
 
-    def __init__(self, head: tuple, stored: bytes, data: bytes):  # noqa: D107 (see the class)
+    def __init__(self, head: tuple, stored: bytes, data: bytes):
         d = self.__dict__
         d.update(zip(self.HEAD, head, strict=True))
         d["_encoded"] = (stored, data)
