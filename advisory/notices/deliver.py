@@ -327,8 +327,9 @@ def staged_block_files(outbox: str | Path, items: Iterable[StageItem], formats: 
     A large run has another process write these while it stores the notices: the files
     may not be published before the notices are stored (a stop in between would leave files
     for notices that were never stored, and the next run would store and send them again), so
-    they wait under hidden names (:func:`staged_path`), and the delivery only renames each to
-    its own name (:func:`_send_outbox` with ``staged``), writing itself whatever is missing.
+    they wait under hidden names (:func:`staged_path`) until the writer moves them to their own
+    names after the commit (:func:`publish_staged`); the delivery moves or writes whatever is
+    left (:func:`_send_outbox` with ``staged``).
 
     Parameters
     ----------
@@ -372,27 +373,27 @@ def staged_summary_files(outbox: str | Path, summaries: Sequence[tuple[str, Farm
     return out
 
 
-def stage_outbox(files: Iterable[tuple], swept: set[str] | None = None,
+def stage_outbox(files: Iterable[tuple[str, Any, str]], swept: set[str] | None = None,
                  written: list[tuple[str, str]] | None = None, arena=None) -> int:
     """Write outbox files ahead under their hidden names (:func:`staged_block_files`); how many.
 
     Folders are made as needed; in each folder met for the first time (``swept`` keeps
     them across calls) the staged files a stopped run left behind are removed first
-    (:data:`STALE_STAGED_S`).  ``written`` gets (notice key, hidden name) of each file
-    (for :func:`publish_staged`).  A file's contents are bytes, or where they are in
-    ``arena`` (:class:`advisory.forking.Arena`).
+    (:data:`STALE_STAGED_S`).  ``files`` are (hidden name, contents, notice key); the
+    contents are bytes, or where they are in ``arena`` (:class:`advisory.forking.Arena`).
+    ``written`` gets (notice key, hidden name) of each file (for :func:`publish_staged`).
     """
     swept = set() if swept is None else swept
     count = 0
-    for path, data, *whose in files:
+    for path, data, key in files:
         head = os.path.dirname(path)
         if head not in swept:
             swept.add(head)
             _folder(head)
             discard_staged(head, older_than_s=STALE_STAGED_S)
         _put(path, arena.view(data) if isinstance(data, tuple) else data)
-        if written is not None and whose:
-            written.append((whose[0], path))
+        if written is not None:
+            written.append((key, path))
         count += 1
     return count
 
@@ -498,12 +499,14 @@ def _send_outbox(r: _Rendered, settings, formats: Sequence[str], chart: bool, st
     if isinstance(r.n, FarmSummary):
         parts = _summary_parts(r.n, formats, r.get)
     else:
-        parts = [(f".{EXTENSIONS[fmt]}", lambda fmt=fmt: r.get(fmt, name + ".png" if (fmt == "html" and png) else None))
+        chart_src = name + ".png" if png else None  # (only the HTML shows the chart)
+        parts = [(f".{EXTENSIONS[fmt]}", lambda fmt=fmt: r.get(fmt, chart_src if fmt == "html" else None))
                  for fmt in formats]
     for end, text in parts:
         path = base + end
         # a file written ahead by this run (see stage_outbox) is only moved to its name
-        if not (staged and (isinstance(r.n, FarmSummary) or end[1:] in STAGED_EXTENSIONS) and _publish(path, staged)):
+        ahead = staged and (isinstance(r.n, FarmSummary) or end[1:] in STAGED_EXTENSIONS)
+        if not (ahead and _publish(path, staged)):
             _write(path, text().encode("utf-8"))
     return head
 
@@ -834,11 +837,10 @@ FORK_OUTBOX_FROM = 1000
 
 def _outbox_weight(n: BlockNotice | FarmSummary, formats: Sequence[str], chart: bool, staged: str | None) -> int:
     """Rough work of writing a notice to the outbox: one per block notice, one per row of a farm
-    summary; none for a notice whose every file was written ahead (``staged``: a farm summary's
-    files, and a block notice's when it has no chart and only formats of :data:`STAGED_FORMATS`)."""
-    if isinstance(n, FarmSummary):
-        return 0 if staged else max(1, len(n.rows))
-    return 0 if (staged and not chart and set(formats) <= set(STAGED_FORMATS)) else 1
+    summary; none for a notice whose every file was written ahead (``staged``; see :func:`_written_ahead`)."""
+    if staged and _written_ahead(n, formats, chart):
+        return 0
+    return max(1, len(n.rows)) if isinstance(n, FarmSummary) else 1
 
 
 def _attempt_all(jobs: list[_Job], settings) -> list[tuple[str, str, str, bool]]:
