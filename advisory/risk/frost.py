@@ -1182,17 +1182,17 @@ def _method_plan(method, params, i, b, st, fams, crit, margin, s_margin, area, w
             elif rate + 1e-9 < req_rate:
                 usable = False
                 notes.append(f"System rate {rate:g} mm/h is below the {req_rate:.1f} mm/h needed for "
-                             f"wind up to {wind_max:.1f} m/s and a minimum near {forecast.p50_c[i]:.1f} °C; "
+                             f"wind up to {wind_max:.1f} m/s and a minimum near {_c(forecast.p50_c[i])} °C; "
                              "too little water can freeze buds harder than none.")
                 keys.insert(0, "sprinkler_rate_short")
             else:
                 notes.append(f"System rate {rate:g} mm/h meets the {req_rate:.1f} mm/h needed for the "
-                             f"forecast minimum near {forecast.p50_c[i]:.1f} °C.")
+                             f"forecast minimum near {_c(forecast.p50_c[i])} °C.")
                 cold_need = float(req_rate_cold)
                 if not np.isfinite(cold_need) or rate + 1e-9 < cold_need:
                     need_txt = "more than the guidance covers" if not np.isfinite(cold_need) \
                         else f"about {cold_need:.1f} mm/h"
-                    notes.append(f"If the night runs as cold as {forecast.p10_c[i]:.1f} °C, {need_txt} would be "
+                    notes.append(f"If the night runs as cold as {_c(forecast.p10_c[i])} °C, {need_txt} would be "
                                  "needed: watch the block thermometers and the ice (clear, dripping ice is "
                                  "working; milky, dry ice is not).")
     else:
@@ -1215,10 +1215,10 @@ def _method_plan(method, params, i, b, st, fams, crit, margin, s_margin, area, w
                          "on wind machines.")
         elif inv < st.wind_machine_min_inversion_c:
             usable = False
-            notes.append(f"Inversion {inv:.1f} °C ({label}) is weaker than the "
+            notes.append(f"Inversion {_c(inv)} °C ({label}) is weaker than the "
                          f"{st.wind_machine_min_inversion_c:g} °C a wind machine needs.")
         else:
-            notes.append(f"Inversion {inv:.1f} °C ({label}).")
+            notes.append(f"Inversion {_c(inv)} °C ({label}).")
         if np.isfinite(wind_mean) and wind_mean > st.wind_machine_max_wind_ms:
             usable = False
             notes.append(f"Wind {wind_mean:.1f} m/s is above the {st.wind_machine_max_wind_ms:g} m/s "
@@ -1309,14 +1309,20 @@ _QUANTITY_KEYS = {
 }
 
 
+def _c(value_c: float) -> str:
+    """A temperature to one decimal, for the texts of a plan (never "-0.0")."""
+    s = f"{value_c:.1f}"
+    return "0.0" if s == "-0.0" else s
+
+
 def start_rule_text(risk: BlockRisk, plan: MethodPlan) -> str:
     """Plain-language start rule in °C, e.g. "when the wet bulb falls to -1.2 °C"."""
     if plan.method == "none":
         return ""
     if plan.start_wet_bulb_c is not None:
-        return (f"when the wet bulb falls to {plan.start_wet_bulb_c:.1f} °C "
-                f"(air about {plan.start_air_temp_c:.1f} °C at the forecast dew point)")
-    return f"when the air falls to {plan.start_air_temp_c:.1f} °C"
+        return (f"when the wet bulb falls to {_c(plan.start_wet_bulb_c)} °C "
+                f"(air about {_c(plan.start_air_temp_c)} °C at the forecast dew point)")
+    return f"when the air falls to {_c(plan.start_air_temp_c)} °C"
 
 
 def stop_rule_text(risk: BlockRisk, plan: MethodPlan) -> str:
@@ -1324,9 +1330,9 @@ def stop_rule_text(risk: BlockRisk, plan: MethodPlan) -> str:
     if plan.method == "none":
         return ""
     if plan.method == "overtree_sprinkler":
-        return (f"after sunrise, once the wet bulb is above {risk.critical_c:.1f} °C and the ice is "
+        return (f"after sunrise, once the wet bulb is above {_c(risk.critical_c)} °C and the ice is "
                 "melting; never earlier")
-    return f"after sunrise, once the air is back above {plan.start_air_temp_c:.1f} °C"
+    return f"after sunrise, once the air is back above {_c(plan.start_air_temp_c)} °C"
 
 
 def protection_steps(risk: BlockRisk) -> list:

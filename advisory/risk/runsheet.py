@@ -172,13 +172,12 @@ def build_run_sheet(farm: str, night: date, timezone: str, risks: Sequence[Block
 def _t(sheet: RunSheet, value_c: float | None, digits: int = 1) -> str:
     if value_c is None:
         return "-"
-    if sheet.units == "imperial":
-        return f"{value_c * 1.8 + 32:.{digits}f} °F"
-    return f"{value_c:.{digits}f} °C"
+    return f"{_tnum(sheet, value_c, digits)} {'°F' if sheet.units == 'imperial' else '°C'}"
 
 
-def _tnum(sheet: RunSheet, value_c: float) -> str:
-    return f"{value_c * 1.8 + 32:.1f}" if sheet.units == "imperial" else f"{value_c:.1f}"
+def _tnum(sheet: RunSheet, value_c: float, digits: int = 1) -> str:
+    s = f"{value_c * 1.8 + 32 if sheet.units == 'imperial' else value_c:.{digits}f}"
+    return s.lstrip("-") if float(s) == 0.0 else s  # never "-0.0"
 
 
 def _clock(t: datetime | None) -> str:

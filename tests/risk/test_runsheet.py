@@ -147,3 +147,13 @@ def test_sheet_from_stored_assessments_matches():
     b = rs.render_text(sheet(assessments))
     assert [line for line in a.splitlines() if line.startswith(("1.", "2.", "3.", "   ready", "   start"))] == \
         [line for line in b.splitlines() if line.startswith(("1.", "2.", "3.", "   ready", "   start"))]
+
+
+def test_a_temperature_that_rounds_to_zero_reads_0_0_not_minus_0_0():
+    """common practice: a crew reads "0.0 °C", never "-0.0 °C"."""
+    p = plan("overtree_sprinkler", datetime(2024, 4, 10, 9, tzinfo=UTC), datetime(2024, 4, 10, 14, tzinfo=UTC),
+             start_air_temp_c=-0.04, start_wet_bulb_c=-1.2)
+    r = risk("Creek", [p])
+    assert "air about 0.0 °C" in fr.start_rule_text(r, p)
+    text = rs.render_text(sheet([r]))
+    assert "-0.0" not in text and "0.0 °C" in text
