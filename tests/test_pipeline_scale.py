@@ -26,12 +26,48 @@ def test_fast_payload_equals_to_dict(spring_db):
         "np_nan": np.float64("nan"), "nan": float("nan"), "n": np.int64(3), "pair": (1, 2.5),
         "day": dt.date(2026, 1, 2), "when": dt.datetime(2026, 1, 2, 3, tzinfo=dt.timezone(dt.timedelta(hours=2))),
         "nested": [{"x": 1.5}, None, True]})
-    for a in [*res.assessments, odd]:
+    for a in res.assessments:
         # the payload the run stores (encoded straight from the assessment), compared as stored JSON
         # text (NaN != NaN as Python values; stored, NaN is null)
         assert jsoncodec.dumps(jsoncodec.loads(jsoncodec.encode(a))) == jsoncodec.dumps(asm.to_dict(a))
+    fast, plain = jsoncodec.loads(jsoncodec.encode(odd)), jsoncodec.loads(jsoncodec.dumps(asm.to_dict(odd)))
+    # an instant with another offset keeps it (the same instant; the run's own instants are UTC, below)
+    assert dt.datetime.fromisoformat(fast["details"].pop("when")) == dt.datetime.fromisoformat(
+        plain["details"].pop("when"))
+    assert jsoncodec.dumps(fast) == jsoncodec.dumps(plain)
     infinite = dataclasses.replace(odd, details={"x": float("inf"), "y": -np.inf})
     assert jsoncodec.loads(jsoncodec.encode(infinite))["details"] == {"x": None, "y": None}  # JSON has no infinity
+
+
+def _utc_written(value) -> bytes:
+    """``value`` as JSON with every instant turned to UTC first (the stored form's rule)."""
+    import orjson
+
+    def fallback(x):
+        if isinstance(x, dt.datetime):
+            return x.astimezone(dt.UTC).isoformat()
+        return jsoncodec._fallback(x)
+
+    return orjson.dumps(value, default=fallback, option=jsoncodec._OPTIONS | orjson.OPT_PASSTHROUGH_DATETIME)
+
+
+def test_the_runs_instants_are_utc_so_stored_json_writes_them_in_utc(spring_db):
+    """orjson writes an instant with its own offset: every instant of a run's assessments and notices
+    must be UTC already for the stored JSON to be in UTC (:mod:`advisory.store.jsoncodec`)."""
+    from advisory import heat_pipeline
+    from advisory.notices import compose
+
+    frost = pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False).assessments
+    update = pipeline.run_night(spring_db, NIGHT, now=NOW + dt.timedelta(hours=4), update=True,
+                                deliver=False).assessments
+    heat = heat_pipeline.run_heat(spring_db, NIGHT, now=dt.datetime(2026, 4, 8, 16, tzinfo=dt.UTC),
+                                  deliver=False).assessments
+    values = [*frost, *update, *heat]
+    values += [compose.compose_block(a) for a in frost + heat]
+    values.append(compose.compose_farm(frost))
+    assert frost and update and heat
+    for v in values:
+        assert jsoncodec.encode(v) == _utc_written(v)
 
 
 def test_cdf_equals_column_by_column_table_lookup():

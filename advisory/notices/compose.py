@@ -62,6 +62,7 @@ import logging
 import math
 import re
 from dataclasses import dataclass, field
+from functools import lru_cache
 from typing import Any
 
 from advisory import assessment as asm
@@ -451,12 +452,13 @@ def notice_key(kind: str, farm: str, block_id: int | None, night, revision: int)
 # --------------------------------------------------------------------------------------------------
 
 class _Fmt:
-    """Formatting bound to one farm's zone and units."""
+    """Formatting bound to one farm's zone and units (one per zone and units: see :func:`_fmt`)."""
 
     def __init__(self, tz: str, units: str):
         self.tz, self.units = tz, units
         self.imp = w.imperial(units)
         self.unit = w.temp_unit(units)
+        self._clocks: dict = {}  # instant -> clock text, in this zone
 
     def t(self, c):
         """Same as :func:`words.temp` (kept in step by the tests), without re-reading the units each time."""
@@ -472,10 +474,24 @@ class _Fmt:
         return w.temp_delta(c, self.units, signed=signed)
 
     def clock(self, t):
-        return w.clock(t, self.tz)
+        """Same as :func:`words.clock` in this zone (a night's notices repeat the same instants)."""
+        try:
+            return self._clocks[t]
+        except KeyError:
+            if len(self._clocks) > 20_000:
+                self._clocks.clear()
+            s = self._clocks[t] = w.clock(t, self.tz)
+            return s
+        except TypeError:  # unhashable
+            return w.clock(t, self.tz)
 
     def when(self, t):
         return w.when(t, self.tz)
+
+
+@lru_cache(maxsize=64)
+def _fmt(tz: str, units: str) -> _Fmt:
+    return _Fmt(tz, units)
 
 
 def _finite(x) -> bool:
@@ -1118,7 +1134,7 @@ def changes(a: Assessment, previous: Assessment | None) -> list[str]:
     """What changed between the previous notice's assessment and this one, in plain words."""
     if previous is None:
         return []
-    f = _Fmt(a.farm_tz, a.units)
+    f = _fmt(a.farm_tz, a.units)
     out = []
     if previous.status != a.status or previous.level != a.level:
         out.append(f"level {_status_name(previous)} → {_status_name(a)}")
@@ -1181,7 +1197,7 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
     if data is None:
         data = _plain(a)
     a = _clean_names(a)
-    f = _Fmt(a.farm_tz, a.units)
+    f = _fmt(a.farm_tz, a.units)
     style = w.level_style(a.kind, a.level, a.level_rank, a.status)
     name = style.name
     if a.status != asm.STATUS_OK:
@@ -1278,7 +1294,7 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
     if len(farms) > 1:
         raise ValueError(f"assessments of several farms: {sorted(farms)}")
     a0 = items[0]
-    f = _Fmt(a0.farm_tz, a0.units)
+    f = _fmt(a0.farm_tz, a0.units)
     kind = a0.kind
     far = dt.datetime.max.replace(tzinfo=dt.UTC)
     items.sort(key=lambda x: (-_severity(x), -(x.expected_kill_pct or 0.0) if x.status == asm.STATUS_OK else 0.0,

@@ -291,6 +291,8 @@ def parse_time(value) -> dt.datetime | None:
 
 
 def iso(value) -> str | None:
+    if type(value) is dt.datetime and value.tzinfo is dt.UTC:  # the common case: an instant of the run
+        return value.isoformat()
     t = parse_time(value)
     return None if t is None else t.astimezone(dt.UTC).isoformat()
 
@@ -315,25 +317,35 @@ def _remembered(fn):
     return wrapper
 
 
+#: Day and month names in the notices (English whatever the machine's locale; ``strftime`` is slower too).
+_DAYS = ("Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun")
+_MONTHS = ("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec")
+
+
+def _hm_zone(t: dt.datetime) -> str:
+    """``02:40 PDT`` (what ``strftime("%H:%M %Z")`` gives)."""
+    return f"{t.hour:02d}:{t.minute:02d} {t.tzname() or ''}".rstrip()
+
+
 @_remembered
 def clock(value, tz: str) -> str:
     """``02:40 PDT``."""
     t = local(value, tz)
-    return "n/a" if t is None else t.strftime("%H:%M %Z")
+    return "n/a" if t is None else _hm_zone(t)
 
 
 @_remembered
 def clock_day(value, tz: str) -> str:
     """``Tue 02:40 PDT``."""
     t = local(value, tz)
-    return "n/a" if t is None else f"{t:%a} {t:%H:%M %Z}"
+    return "n/a" if t is None else f"{_DAYS[t.weekday()]} {_hm_zone(t)}"
 
 
 @_remembered
 def when(value, tz: str) -> str:
     """``Mon 6 Apr 14:05 PDT``."""
     t = local(value, tz)
-    return "n/a" if t is None else f"{t:%a} {t.day} {t:%b %H:%M %Z}"
+    return "n/a" if t is None else f"{_DAYS[t.weekday()]} {t.day} {_MONTHS[t.month - 1]} {_hm_zone(t)}"
 
 
 @lru_cache(maxsize=1024)  # a run names the same few nights thousands of times

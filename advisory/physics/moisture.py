@@ -68,6 +68,10 @@ def saturation_vapour_pressure_kpa(temp_c, over_ice=False):
     .. [1] Alduchov & Eskridge (1996), AERK and AERKi.
     """
     t = _asfloat(temp_c)
+    if type(over_ice) is bool:  # one surface for all: only its curve
+        if over_ice:
+            return _out(_A_ICE_KPA * np.exp(_B_ICE * t / (t + _C_ICE_C)))
+        return _out(_A_WATER_KPA * np.exp(_B_WATER * t / (t + _C_WATER_C)))
     water = _A_WATER_KPA * np.exp(_B_WATER * t / (t + _C_WATER_C))
     ice = _A_ICE_KPA * np.exp(_B_ICE * t / (t + _C_ICE_C))
     return _out(np.where(np.asarray(over_ice, dtype=bool), ice, water))
@@ -212,7 +216,11 @@ def _wet_bulb_humidity_ratio(wet_bulb_c, air_temp_c, pressure_kpa, ice):
     t = air_temp_c
     es = np.asarray(saturation_vapour_pressure_kpa(tw, over_ice=ice))
     ws = _EPSILON * es / (pressure_kpa - es)
+    if ice is True:
+        return ((2830.0 - 0.24 * tw) * ws - 1.006 * (t - tw)) / (2830.0 + 1.86 * t - 2.1 * tw)
     water_w = ((2501.0 - 2.326 * tw) * ws - 1.006 * (t - tw)) / (2501.0 + 1.86 * t - 4.186 * tw)
+    if ice is False:
+        return water_w
     ice_w = ((2830.0 - 0.24 * tw) * ws - 1.006 * (t - tw)) / (2830.0 + 1.86 * t - 2.1 * tw)
     return np.where(ice, ice_w, water_w)
 

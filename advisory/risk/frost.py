@@ -119,6 +119,7 @@ import warnings
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, fields
 from datetime import UTC, datetime
+from functools import lru_cache
 
 import numpy as np
 import pandas as pd
@@ -1087,44 +1088,70 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
     first_valid = np.argmax(valid, axis=1)
     evening_wind = curves.wind_speed_ms[np.arange(n), first_valid]
 
+    # Per block from here: the arrays as Python lists (indexing those is many times cheaper).
+    fams = {k: tuple(tuple(x.tolist() for x in rule) for rule in v) for k, v in fams.items()}
+    col = _Columns(t10=t10, t90=t90, crit=crit, margin=margin, s_margin=s_margin, area=area,
+                   wind_mean=wind_mean, wind_max=wind_max_spr, req_rate=req_rate, req_rate_cold=req_rate_cold,
+                   spr_start_air=spr_start_air, evening_wind=evening_wind, no_sunrise=no_sunrise,
+                   first_valid=first_valid, p10=forecast.p10_c, p50=forecast.p50_c, p90=forecast.p90_c,
+                   level=dmg.level_index, time_of_min=dmg.time_of_min_ns, sustained=dmg.sustained_offset_c,
+                   shift=dmg.duration_shift_c, near_min=dmg.near_min_hours, hours_t10=hours_t10,
+                   hours_t10_k=hours_t10_k, kill=dmg.expected_kill, kill_10=dmg.p_kill_10, kill_90=dmg.p_kill_90,
+                   p_t10=p_min_t10, p_t90=p_min_t90, crit_time=crit_time)
     out: list[BlockRisk] = []
     for i, b in enumerate(blocks):
         st = s[i]
         kinds = kinds_per_block[i]
-        needs = int(dmg.level_index[i]) >= st.protect_level_index
+        level_i = col.level[i]
+        needs = level_i >= st.protect_level_index
         plans: list[MethodPlan] = []
         for method in METHODS:
             if method not in kinds:
                 continue
-            plans.append(_method_plan(
-                method, kinds[method], i, b, st, fams, crit[i], margin[i], s_margin[i], area[i],
-                wind_mean[i], wind_max_spr[i], (req_rate[i], req_rate_cold[i]), spr_start_air[i],
-                evening_wind[i], forecast, dmg, no_sunrise[i], int(first_valid[i])))
-        plans = _recommend(plans, needs, forecast.p50_c[i], crit[i], st)
+            plans.append(_method_plan(method, kinds[method], i, b, st, fams, col))
+        plans = _recommend(plans, needs, col.p50[i], col.crit[i], st)
         if not plans:
             note = ("No protection equipment recorded for this block."
-                    + (f" Tonight's risk is {LEVELS[dmg.level_index[i]]}: about "
-                       f"{100 * dmg.expected_kill[i]:.0f} % of buds expected killed, "
-                       f"{100 * dmg.p_kill_10[i]:.0f} % chance of 10 % kill or more." if needs else ""))
+                    + (f" Tonight's risk is {LEVELS[level_i]}: about "
+                       f"{100 * col.kill[i]:.0f} % of buds expected killed, "
+                       f"{100 * col.kill_10[i]:.0f} % chance of 10 % kill or more." if needs else ""))
             plans = [MethodPlan("none", usable=False, recommended=needs, notes=(note,),
                                 caution_keys=cautions.cautions_for_method("none"))]
         out.append(BlockRisk(
-            block=b.name, crop=b.crop, stage=b.stage, t10_c=float(t10[i]), t90_c=float(t90[i]),
-            critical_c=float(crit[i]), min_p10_c=float(forecast.p10_c[i]), min_p50_c=float(forecast.p50_c[i]),
-            min_p90_c=float(forecast.p90_c[i]), time_of_min_utc=_to_dt(dmg.time_of_min_ns[i]),
-            sustained_min_offset_c=float(dmg.sustained_offset_c[i]),
-            duration_shift_c=float(dmg.duration_shift_c[i]), near_min_hours=float(dmg.near_min_hours[i]),
-            hours_below_t10=float(hours_t10[i]), hours_below_t10_cold=float(hours_t10_k[i]),
-            expected_kill=float(dmg.expected_kill[i]), p_kill_10=float(dmg.p_kill_10[i]),
-            p_kill_90=float(dmg.p_kill_90[i]), level=LEVELS[int(dmg.level_index[i])],
-            needs_protection=bool(needs), plans=tuple(plans), p_min_below_t10=float(p_min_t10[i]),
-            p_min_below_t90=float(p_min_t90[i]), critical_time_utc=_to_dt(crit_time[i])))
+            block=b.name, crop=b.crop, stage=b.stage, t10_c=col.t10[i], t90_c=col.t90[i],
+            critical_c=col.crit[i], min_p10_c=col.p10[i], min_p50_c=col.p50[i],
+            min_p90_c=col.p90[i], time_of_min_utc=_to_dt(col.time_of_min[i]),
+            sustained_min_offset_c=col.sustained[i],
+            duration_shift_c=col.shift[i], near_min_hours=col.near_min[i],
+            hours_below_t10=col.hours_t10[i], hours_below_t10_cold=col.hours_t10_k[i],
+            expected_kill=col.kill[i], p_kill_10=col.kill_10[i],
+            p_kill_90=col.kill_90[i], level=LEVELS[level_i],
+            needs_protection=bool(needs), plans=tuple(plans), p_min_below_t10=col.p_t10[i],
+            p_min_below_t90=col.p_t90[i], critical_time_utc=_to_dt(col.crit_time[i])))
     return out
 
 
-def _method_plan(method, params, i, b, st, fams, crit, margin, s_margin, area, wind_mean, wind_max,
-                 req_rates, spr_start_air, evening_wind, forecast, dmg, no_sunrise, first_valid) -> MethodPlan:
-    req_rate, req_rate_cold = req_rates
+class _Columns:
+    """Per-block figures of :func:`plan_night` as Python lists: ``float`` but for the level
+    (``int``), the first valid hour (``int``), ``no_sunrise`` (``bool``) and the two instants
+    (nanoseconds, for :func:`_to_dt`)."""
+
+    _KEEP = ("level", "first_valid", "no_sunrise", "time_of_min", "crit_time")
+
+    def __init__(self, **arrays):
+        for name, values in arrays.items():
+            values = np.asarray(values) if name in self._KEEP else np.asarray(values, dtype=float)
+            setattr(self, name, values.tolist())
+
+
+def _method_plan(method, params, i, b, st, fams, col: _Columns) -> MethodPlan:
+    """One method's plan for block ``i`` of :func:`plan_night` (``fams``: its rule times as lists)."""
+    crit, margin, s_margin, area = col.crit[i], col.margin[i], col.s_margin[i], col.area[i]
+    wind_mean, wind_max = col.wind_mean[i], col.wind_max[i]
+    req_rate, req_rate_cold = col.req_rate[i], col.req_rate_cold[i]
+    spr_start_air, evening_wind, no_sunrise, first_valid = (col.spr_start_air[i], col.evening_wind[i],
+                                                            col.no_sunrise[i], col.first_valid[i])
+    p50_c, p10_c = col.p50[i], col.p10[i]
     use_wb = method in ("overtree_sprinkler", "undertree_sprinkler")
     (cs, cf, ci, ct, csf), (ks, kf, _, kt, ksf) = fams[use_wb]
     rnd = st.round_minutes
@@ -1182,17 +1209,17 @@ def _method_plan(method, params, i, b, st, fams, crit, margin, s_margin, area, w
             elif rate + 1e-9 < req_rate:
                 usable = False
                 notes.append(f"System rate {rate:g} mm/h is below the {req_rate:.1f} mm/h needed for "
-                             f"wind up to {wind_max:.1f} m/s and a minimum near {_c(forecast.p50_c[i])} °C; "
+                             f"wind up to {wind_max:.1f} m/s and a minimum near {_c(p50_c)} °C; "
                              "too little water can freeze buds harder than none.")
                 keys.insert(0, "sprinkler_rate_short")
             else:
                 notes.append(f"System rate {rate:g} mm/h meets the {req_rate:.1f} mm/h needed for the "
-                             f"forecast minimum near {_c(forecast.p50_c[i])} °C.")
+                             f"forecast minimum near {_c(p50_c)} °C.")
                 cold_need = float(req_rate_cold)
                 if not np.isfinite(cold_need) or rate + 1e-9 < cold_need:
                     need_txt = "more than the guidance covers" if not np.isfinite(cold_need) \
                         else f"about {cold_need:.1f} mm/h"
-                    notes.append(f"If the night runs as cold as {_c(forecast.p10_c[i])} °C, {need_txt} would be "
+                    notes.append(f"If the night runs as cold as {_c(p10_c)} °C, {need_txt} would be "
                                  "needed: watch the block thermometers and the ice (clear, dripping ice is "
                                  "working; milky, dry ice is not).")
     else:
@@ -1345,7 +1372,7 @@ def protection_steps(risk: BlockRisk) -> list:
     """
     from advisory.assessment import ProtectionStep
 
-    have = {f.name for f in fields(ProtectionStep)}
+    have = _step_fields(ProtectionStep)
     out = []
     for p in risk.plans:
         q = {key: float(getattr(p, attr)) for attr, key in _QUANTITY_KEYS.items()
@@ -1366,6 +1393,11 @@ def protection_steps(risk: BlockRisk) -> list:
                                   stop_rule=stop_rule_text(risk, p), quantities=q, notes=list(p.notes),
                                   estimated=p.inversion_estimated, **kw))
     return out
+
+
+@lru_cache(maxsize=4)
+def _step_fields(cls) -> frozenset[str]:
+    return frozenset(f.name for f in fields(cls))
 
 
 def assessment_fields(risk: BlockRisk) -> dict:

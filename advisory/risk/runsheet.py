@@ -181,7 +181,7 @@ def _tnum(sheet: RunSheet, value_c: float, digits: int = 1) -> str:
 
 
 def _clock(t: datetime | None) -> str:
-    return "-" if t is None else t.strftime("%H:%M %Z")
+    return "-" if t is None else f"{t.hour:02d}:{t.minute:02d} {t.tzname() or ''}".rstrip()  # as %H:%M %Z
 
 
 def _min_range(sheet: RunSheet, r: BlockRisk) -> str:

@@ -2,7 +2,11 @@
 
 The stored forms are those of :func:`advisory.assessment.to_dict`: dataclasses
 as objects (fields in declaration order), instants as ISO 8601 in UTC, dates as
-``YYYY-MM-DD``, NaN as ``null``.  :mod:`orjson` writes them directly from the
+``YYYY-MM-DD``, NaN as ``null``.  The run's instants are UTC already (``datetime``
+with ``tzinfo=UTC``, written ``+00:00`` by orjson itself, as ``isoformat`` would;
+a test holds the pipeline to it); an instant with another offset keeps its offset
+(the same instant), and a naive one or a ``pandas.Timestamp`` goes through
+:func:`_fallback`.  :mod:`orjson` writes them directly from the
 objects (dataclasses, ``datetime``, numpy scalars), so a run for thousands of
 blocks does not first copy every assessment and notice into plain dicts and
 then walk the copies again in the standard library's encoder.
@@ -21,9 +25,8 @@ from typing import Any
 
 import orjson
 
-#: Instants are handed to :func:`_fallback` (orjson would keep their own UTC offset).
-_OPTIONS = orjson.OPT_NON_STR_KEYS | orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_PASSTHROUGH_DATETIME
-_ISO: dict[dt.datetime, str] = {}
+#: Plain ``datetime`` objects are written by orjson (see the module's note); the rest by :func:`_fallback`.
+_OPTIONS = orjson.OPT_NON_STR_KEYS | orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NAIVE_UTC
 
 
 class Encoded(Mapping):
@@ -68,18 +71,10 @@ class Encoded(Mapping):
 
 
 def _fallback(value: Any):
-    s = _ISO.get(value) if type(value) is dt.datetime else None  # the common case first: an instant seen before
-    if s is not None:
-        return s
     if isinstance(value, Encoded):
         return orjson.Fragment(value.raw)
-    if isinstance(value, dt.datetime):  # also pandas.Timestamp
-        s = _ISO.get(value)
-        if s is None:
-            if len(_ISO) > 50_000:
-                _ISO.clear()
-            s = _ISO[value] = value.astimezone(dt.UTC).isoformat()
-        return s
+    if isinstance(value, dt.datetime):  # pandas.Timestamp (orjson writes plain datetimes itself)
+        return value.astimezone(dt.UTC).isoformat()
     if isinstance(value, dt.date):
         return value.isoformat()
     if dataclasses.is_dataclass(value) and not isinstance(value, type):
