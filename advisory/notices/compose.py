@@ -442,9 +442,14 @@ def notice_key(kind: str, farm: str, block_id: int | None, night, revision: int)
         e.g. ``frost:quillback-ridge-orchards-3f2a9c1d:b12:2026-04-06:r0`` (at most 110 characters).
     """
     night_s = night.isoformat() if isinstance(night, dt.date) else str(night)
-    digest = hashlib.sha256(farm.encode("utf-8")).hexdigest()[:8]
     who = "farm" if block_id is None else f"b{int(block_id)}"
-    return f"{w.slug(kind, 20)}:{w.slug(farm, 40, 'farm')}-{digest}:{who}:{night_s}:r{int(revision)}"
+    return f"{w.slug(kind, 20)}:{_farm_key(farm)}:{who}:{night_s}:r{int(revision)}"
+
+
+@lru_cache(maxsize=4096)
+def _farm_key(farm: str) -> str:
+    """The farm's part of a notice key: its name as a slug and a short hash of the name."""
+    return f"{w.slug(farm, 40, 'farm')}-{hashlib.sha256(farm.encode('utf-8')).hexdigest()[:8]}"
 
 
 # --------------------------------------------------------------------------------------------------
@@ -763,8 +768,7 @@ def _verification_section(a: Assessment, f: _Fmt) -> Section | None:
 
 def _frost(a: Assessment, f: _Fmt, name: str):
     d = a.details or {}
-    t_min, _ = _curve_extreme(a, lowest=True)
-    t_min = w.parse_time(d.get("time_of_min_utc")) or t_min
+    t_min = w.parse_time(d.get("time_of_min_utc")) or _curve_extreme(a, lowest=True)[0]
     advised, none_advised = _steps(a)
     lead: list[str] = []
     if _finite(a.p50_c):

@@ -122,7 +122,11 @@ def crop_name(crop: str) -> str:
 # --------------------------------------------------------------------------------------------------
 
 def imperial(units: str | None) -> bool:
-    return (units or "").strip().lower() == "imperial"
+    known = _UNITS.get(units)  # the usual spellings first
+    return known if known is not None else (units or "").strip().lower() == "imperial"
+
+
+_UNITS = {"imperial": True, "metric": False}
 
 
 def temp_value(temp_c: float | None, units: str) -> float | None:
