@@ -38,6 +38,14 @@ short text per block, ``--outbox json`` one JSON file per block (the short text
 is inside it), both with charts only for notices that go out by e-mail (none
 here); farm summaries always get every format.
 
+Where the outbox lives matters: on an ext4 file system without a journal (this
+machine's disk), the kernel skips the inodes freed in the last few minutes when
+it makes a new file (``recently_deleted`` in its inode allocator), so a run made
+within minutes of deleting another run's 10,000 files (this script deletes its
+temporary folder at the end) pays seconds of processor time for its own files.
+Space runs on disk apart, or keep their folders (``--keep``) until the
+measurements are done; ``TMPDIR=/dev/shm`` measures with the outbox in memory.
+
 ``--history-nights N`` first stores N earlier nights for every block (a
 forecast, its notice and outbox delivery, the morning verification), as in the
 middle of a season; ``--runs`` picks the measurements.
