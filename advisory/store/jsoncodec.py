@@ -5,8 +5,8 @@ as objects (fields in declaration order), instants as ISO 8601 in UTC, dates as
 ``YYYY-MM-DD``, NaN as ``null``.  The run's instants are UTC already (``datetime``
 with ``tzinfo=UTC``, written ``+00:00`` by orjson itself, as ``isoformat`` would;
 a test holds the pipeline to it); an instant with another offset keeps its offset
-(the same instant), and a naive one or a ``pandas.Timestamp`` goes through
-:func:`_fallback`.  :mod:`orjson` writes them directly from the
+(the same instant), a naive one is taken as UTC (as the database hands them back),
+and a ``pandas.Timestamp`` goes through :func:`_fallback`.  :mod:`orjson` writes them directly from the
 objects (dataclasses, ``datetime``, numpy scalars), so a run for thousands of
 blocks does not first copy every assessment and notice into plain dicts and
 then walk the copies again in the standard library's encoder.
