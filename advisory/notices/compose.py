@@ -626,7 +626,11 @@ def _plan_section(a: Assessment, f: _Fmt) -> Section:
         if s.method == "none":
             title = "No usable protection" if has_equipment else w.method_name("none").capitalize()
             g = Group(title, "AT RISK" if s.advised else "")
-            g.lines.extend(s.notes)
+            if has_equipment:  # each method's own group says why (its note would say it twice)
+                g.lines.append("None of the equipment recorded for this block can be used tonight; "
+                               "why, method by method, below.")
+            else:
+                g.lines.extend(s.notes)
             sec.groups.append(g)
             continue
         ready = w.parse_time(getattr(s, "ready_by_utc", None))

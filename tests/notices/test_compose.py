@@ -344,6 +344,25 @@ def test_method_not_advised_shows_why_not_when():
     assert "rate needed 10.2 mm/h" in lines and "below the 10.2 mm/h" in lines
 
 
+def test_no_usable_protection_gives_each_reason_once():
+    """The "none" step's note repeats every method's reason; the notice shows each reason once, in
+    its method's group."""
+    a = samples.frost_assessment(level="grave", level_rank=4)
+    a.plan[0].advised = False
+    a.plan[0].notes = ["System rate 3.8 mm/h is below the 10.2 mm/h needed."]
+    a.plan.append(ProtectionStep(method="none", advised=True, notes=[
+        "No usable protection tonight. Over-tree sprinklers: System rate 3.8 mm/h is below the 10.2 mm/h needed."]))
+    n = compose_block(a)
+    plan = n.sections[1]
+    text = " ".join(line for g in plan.groups for line in g.lines)
+    assert text.count("below the 10.2 mm/h needed") == 1
+    assert [g.title for g in plan.groups][:2] == ["No usable protection", "Over-tree sprinklers"]
+    assert "method by method, below" in " ".join(plan.groups[0].lines)
+    bare = samples.frost_assessment(level="grave", level_rank=4)  # no equipment: the step's own note stays
+    bare.plan = [ProtectionStep(method="none", advised=True, notes=["No protection equipment recorded."])]
+    assert compose_block(bare).sections[1].groups[0].lines == ["No protection equipment recorded."]
+
+
 def test_ready_by_before_start_is_said():
     a = samples.frost_assessment()
     a.plan[0].ready_by_utc = dt.datetime(2026, 4, 7, 7, 30, tzinfo=UTC)
