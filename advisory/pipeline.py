@@ -1097,17 +1097,26 @@ class _Staging:
         if not self.formats or k not in self._feeders:
             return False
         feeder = self._spooler.feeder(k)
-        items = [deliver_mod.stage_item(key, n, deliver_mod.json_file(*parts) if "json" in self.formats else b"")
-                 for key, n, parts in blocks]
         try:
-            for j in range(0, len(items), _STAGE_CHUNK):
-                feeder.call(deliver_mod.staged_block_files, self.outbox, items[j:j + _STAGE_CHUNK], self.formats,
-                            self.token)
+            self._send_blocks(feeder, [deliver_mod.stage_item(key, n, self._json(parts)) for key, n, parts in blocks])
             feeder.done()
         except (OSError, ValueError) as exc:  # the writer is gone: the run's process finds out too
             log.warning("a worker could not hand its outbox files to the writer (%s)", exc)
             return False
         return True
+
+    def _json(self, parts: tuple[bytes, bytes]) -> bytes:
+        """A block notice's JSON file from its stored JSON and its payload's (empty without JSON)."""
+        return compose.json_file(*parts) if "json" in self.formats else b""
+
+    def _send_blocks(self, inbox, items: list) -> None:
+        """Have the writer write ``items`` (stage items), a few hundred at a time, through ``inbox``
+        (the spooler, or a worker's feeder)."""
+        from advisory.notices import deliver as deliver_mod
+
+        for j in range(0, len(items), _STAGE_CHUNK):
+            inbox.call(deliver_mod.staged_block_files, self.outbox, items[j:j + _STAGE_CHUNK], self.formats,
+                       self.token)
 
     def settle(self, fed: Collection[int]) -> None:
         """The workers are back: stop waiting for those that did not hand their files over (``fed``
@@ -1120,7 +1129,7 @@ class _Staging:
                   summaries: list[tuple[str, Any]] = (), fed: Collection[str] = ()) -> None:
         """Give the writer composed notices (as soon as they are composed; each once): ``blocks`` are
         each block notice's key, the notice, and its stored JSON and its payload's (joined by
-        :func:`advisory.notices.compose.whole_json`); ``summaries`` each farm summary's key and the
+        :func:`advisory.notices.compose.json_file`); ``summaries`` each farm summary's key and the
         summary; ``fed`` the keys of notices worker processes handed over themselves
         (:meth:`write_share`), which are left out, as are those handed over before."""
         from advisory.notices import deliver as deliver_mod
@@ -1130,17 +1139,15 @@ class _Staging:
         nights = {n.night for _, n, _ in blocks} | {n.night for _, n in summaries}
         self.folders |= {os.path.join(self.outbox, words.slug(night, 10, "undated")) for night in nights}
         if self.formats:  # plain values, quick to send; the names are made there
-            put, whole, handed = self._arena.put, deliver_mod.json_file, self._handed
+            put, handed = self._arena.put, self._handed
             items = []
             for key, n, parts in blocks:
                 if key in handed:
                     continue
                 handed.add(key)
-                data = whole(*parts) if "json" in self.formats else b""
+                data = self._json(parts)
                 items.append(deliver_mod.stage_item(key, n, put(data) or data))
-            for k in range(0, len(items), _STAGE_CHUNK):
-                self._spooler.call(deliver_mod.staged_block_files, self.outbox, items[k:k + _STAGE_CHUNK],
-                                   self.formats, self.token)
+            self._send_blocks(self._spooler, items)
         if summaries:  # rendered there
             self._spooler.call(deliver_mod.staged_summary_files, self.outbox, list(summaries), self.token)
 
@@ -1488,8 +1495,7 @@ def _shared_database(db) -> bool:
     """Whether another process can open the run's database (not an in-memory SQLite)."""
     from sqlalchemy.engine import make_url
 
-    u = make_url(db.url)
-    return u.get_backend_name() != "sqlite" or (bool(u.database) and u.database != ":memory:")
+    return make_url(db.url).get_backend_name() != "sqlite" or db_mod.sqlite_file(db.url) is not None
 
 
 def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.datetime, update: bool,

@@ -404,6 +404,12 @@ def whole_json(stored: bytes, data: bytes) -> bytes:
     return stored[:-1] + b',"data":' + data + b"}"
 
 
+def json_file(stored: bytes, data: bytes) -> bytes:
+    """A block notice's outbox JSON file: :func:`whole_json` and a line end (the same bytes
+    whether written ahead by a large run or rendered at delivery)."""
+    return whole_json(stored, data) + b"\n"
+
+
 _BLOCK_FIELDS = tuple(f.name for f in dataclasses.fields(BlockNotice))
 
 

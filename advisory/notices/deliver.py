@@ -75,7 +75,7 @@ from sqlalchemy.orm import Session
 
 from advisory import __version__
 from advisory.notices import words as w
-from advisory.notices.compose import BlockNotice, FarmSummary, whole_json
+from advisory.notices.compose import BlockNotice, FarmSummary
 from advisory.notices.render import EXTENSIONS, as_notice, render
 from advisory.store.schema import Delivery, Notice, Recipient
 
@@ -311,12 +311,6 @@ def stage_item(key: str, n: BlockNotice, json_file: Any) -> StageItem:
     the parts of its file names, its short text, and its JSON file (the bytes, or where they are
     in memory shared with the writer: see :func:`stage_outbox`)."""
     return (key, n.farm, n.block, n.kind, n.revision, n.night, n.sms, json_file)
-
-
-def json_file(stored: bytes, payload: bytes) -> bytes:
-    """A block notice's outbox JSON file from its JSON as stored and its data's
-    (:func:`~advisory.notices.compose.whole_json`)."""
-    return whole_json(stored, payload) + b"\n"
 
 
 def staged_block_files(outbox: str | Path, items: Iterable[StageItem], formats: Sequence[str], token: str
