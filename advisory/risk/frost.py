@@ -1112,9 +1112,8 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
         plans = _recommend(plans, needs, col.p50[i], col.crit[i], st)
         if not plans:
             note = ("No protection equipment recorded for this block."
-                    + (f" Tonight's risk is {LEVELS[level_i]}: about "
-                       f"{100 * col.kill[i]:.0f} % of buds expected killed, "
-                       f"{100 * col.kill_10[i]:.0f} % chance of 10 % kill or more." if needs else ""))
+                    + (f" Unprotected, about {100 * col.kill[i]:.0f} % of buds are expected killed tonight, "
+                       f"with a {100 * col.kill_10[i]:.0f} % chance of losing 10 % or more." if needs else ""))
             plans = [MethodPlan("none", usable=False, recommended=needs, notes=(note,),
                                 caution_keys=cautions.cautions_for_method("none"))]
         out.append(BlockRisk(
