@@ -619,6 +619,8 @@ def _rules(a: Assessment, s, f: _Fmt) -> tuple[str, str]:
 
 #: Quantities shown for a method that is not advised (they explain why).
 _ADEQUACY_KEYS = ("rate_needed_mm_h", "required_rate_mm_h", "rate_available_mm_h", "rate_mm_h", "inversion_c")
+#: How the plan's note on a wind machine's inversion begins (``risk.frost``).
+_INVERSION_NOTE = "Inversion "
 
 
 def _plan_section(a: Assessment, f: _Fmt) -> Section:
@@ -650,6 +652,8 @@ def _plan_section(a: Assessment, f: _Fmt) -> Section:
         start_rule, stop_rule = _rules(a, s, f)
         q = {k: v for k, v in (s.quantities or {}).items()
              if k not in ("start_air_temp_c", "start_wet_bulb_c") and v is not None}
+        if any(n.startswith(_INVERSION_NOTE) for n in s.notes):
+            q.pop("inversion_c", None)  # the note gives it, and says whether it was measured or estimated
         if not s.advised:
             # Why not, and the figures that say so; no times, amounts or run instructions ("keep running
             # until ...") that could read as an order for a method the plan does not advise.
