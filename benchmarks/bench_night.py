@@ -18,7 +18,9 @@ own), it measures:
   store (one transaction), delivery to the outbox (the only channel: the
   recipients have no e-mail, webhook or text-message address) -- with the
   pipeline's per-stage breakdown, the wall time, the processor time of the run's
-  process and of its forked copies, and the peak RSS of the run's process; with
+  process and of its forked copies, the processor time the host took from this
+  virtual machine meanwhile (``steal``: a slow run with much of it was slowed
+  by the host), and the peak RSS of the run's process; with
   ``--tree-memory``, also the peak proportional set size (PSS) of
   it and its forked copies together, sampled every 100 ms from ``/proc`` (a page
   shared after a fork counts once; reading it slows the run, so time without it);
@@ -354,6 +356,18 @@ def _cpu_s() -> tuple[float, float]:
     return me.ru_utime + me.ru_stime, kids.ru_utime + kids.ru_stime
 
 
+def _steal_s() -> float | None:
+    """Processor time the hypervisor gave this machine's virtual processors to others since boot [s]
+    (``steal`` in ``/proc/stat``; None where it cannot be read).  Much of it during a run means a run
+    slowed down by the host, not by the code."""
+    try:
+        with open("/proc/stat") as fh:
+            fields = fh.readline().split()
+        return int(fields[8]) / os.sysconf("SC_CLK_TCK")
+    except (OSError, IndexError, ValueError):
+        return None
+
+
 def _levels(assessments) -> dict:
     out: dict[str, int] = {}
     for a in assessments:
@@ -373,6 +387,7 @@ def _run_child(what: str, args, db_url: str, outbox: Path, profile: str | None =
     if profile:
         cmd += ["--profile", profile]
     os.sync()  # the set-up's (or the previous run's) writes reach the disk first, not during this run
+    steal0 = _steal_s()
     with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
         proc = subprocess.Popen(cmd, stdout=out, stderr=err, text=True)
         peak_pss = None
@@ -387,6 +402,8 @@ def _run_child(what: str, args, db_url: str, outbox: Path, profile: str | None =
             raise SystemExit(f"{what} failed (exit {proc.returncode})")
         res = json.loads(out.read().strip().splitlines()[-1])
     res["peak_tree_pss_mib"] = peak_pss
+    steal1 = _steal_s()
+    res["steal_s"] = None if steal0 is None or steal1 is None else steal1 - steal0
     return res
 
 
@@ -422,8 +439,10 @@ def _print_run(r: dict) -> None:
           f"(process at start {r['start_rss_mib']:.0f} MiB{tree}); assessed {r['assessed']}, "
           f"skipped {r['skipped']}, notices {r['notices']}, deliveries {r['deliveries']}")
     if r.get("cpu_s") is not None:
+        steal = (f"; taken by the host (steal, whole machine): {r['steal_s']:.2f} s"
+                 if r.get("steal_s") is not None else "")
         print(f"    processor time: {r['cpu_s']:.2f} s in the run's process, {r['copies_cpu_s']:.2f} s in its "
-              f"forked copies")
+              f"forked copies{steal}")
     shown = set()
     for k in STAGES:
         if k in st:
