@@ -63,6 +63,9 @@ class ProtectionStep:
     stop_open: bool = False
     #: Keys into advisory.risk.cautions for this method.
     caution_keys: list[str] = field(default_factory=list)
+    #: In an update: when an earlier notice of the night had this method start (the crew should have it
+    #: running by now); the update keeps it running (see :mod:`advisory.risk.continuity`).
+    started_utc: dt.datetime | None = None
 
 
 def pickle_by_fields(cls) -> None:
@@ -162,7 +165,7 @@ def to_dict(a: Assessment) -> dict[str, Any]:
 
 
 _TIME_FIELDS = {"reference_time_utc", "sunset_utc", "sunrise_utc", "critical_time_utc", "time_utc",
-                "start_utc", "stop_utc", "ready_by_utc"}
+                "start_utc", "stop_utc", "ready_by_utc", "started_utc"}
 
 
 def _dt(v):

@@ -51,22 +51,105 @@ def test_update_notice_only_on_material_change(spring_db):
     assert _count(spring_db, Notice) == n0
 
 
-def test_material_change_rules():
-    base = asm.Assessment(kind="frost", farm="F", farm_tz="UTC", units="metric", block_id=1, block="B",
+def _noticed(level="marked", rank=2, needs=False, p50=-1.0, start=None, ready=None, method="wind_machine",
+             clock=NOW - dt.timedelta(hours=3)):
+    return asm.Assessment(kind="frost", farm="F", farm_tz="UTC", units="metric", block_id=1, block="B",
                           station="S", crop="apple", variety=None, stage="full bloom", area_ha=1.0,
-                          night=NIGHT, level="marked", p50_c=-1.0,
-                          plan=[asm.ProtectionStep("wind_machine", True, start_utc=NOW)])
-    same = asm.from_dict(asm.to_dict(base))
-    assert pipeline.material_change(same, base) == []
-    later = asm.from_dict(asm.to_dict(base))
-    later.plan[0].start_utc = NOW + dt.timedelta(minutes=pipeline.MATERIAL_START_SHIFT_MIN)
-    assert pipeline.material_change(later, base)
-    small = asm.from_dict(asm.to_dict(base))
-    small.plan[0].start_utc = NOW + dt.timedelta(minutes=pipeline.MATERIAL_START_SHIFT_MIN - 1)
-    assert pipeline.material_change(small, base) == []
-    worse = asm.from_dict(asm.to_dict(base))
-    worse.level = "serious"
-    assert pipeline.material_change(worse, base)
+                          night=NIGHT, level=level, level_rank=rank, p50_c=p50, reference_time_utc=clock,
+                          details={"needs_protection": needs},
+                          plan=[asm.ProtectionStep(method, True, start_utc=start, ready_by_utc=ready)])
+
+
+def _update(old, **changes):
+    """``old`` an hour later, with ``changes`` (attributes, or ``start``/``ready`` of its one step)."""
+    new = asm.from_dict(asm.to_dict(old))
+    new.reference_time_utc = old.reference_time_utc + dt.timedelta(hours=1)
+    for k in ("start", "ready"):
+        if k in changes:
+            setattr(new.plan[0], "start_utc" if k == "start" else "ready_by_utc", changes.pop(k))
+    for k, v in changes.items():
+        setattr(new, k, v)
+    return new
+
+
+def test_material_change_rules():
+    """A notice at night wakes someone: what changes the crew's work goes out, flips near an edge do not
+    (the rules of pipeline.material_change)."""
+    start = NOW + dt.timedelta(hours=2)   # still ahead at the update's clock
+    base = _noticed(start=start)
+    assert pipeline.material_change(_update(base), base) == []
+    m = pipeline.MATERIAL_START_SHIFT_MIN
+    assert pipeline.material_change(_update(base, start=start - dt.timedelta(minutes=m)), base)
+    assert pipeline.material_change(_update(base, start=start - dt.timedelta(minutes=m - 1)), base) == []
+    # later: a larger shift is needed, the crew is ready anyway
+    assert pipeline.material_change(_update(base, start=start + dt.timedelta(minutes=m)), base) == []
+    assert pipeline.material_change(
+        _update(base, start=start + dt.timedelta(minutes=pipeline.MATERIAL_LATER_SHIFT_MIN)), base)
+    # a firm start where the last notice said only "be ready"
+    ready = _noticed(ready=start)
+    assert pipeline.material_change(_update(ready, start=start, ready=None), ready) == ["start time set"]
+    assert pipeline.material_change(_update(ready, ready=start - dt.timedelta(minutes=m)), ready)
+    assert pipeline.material_change(_update(ready, ready=start + dt.timedelta(minutes=2 * m)), ready) == []
+    # once the noticed start has passed, the crew is running: a new "start" is not news
+    running = _noticed(start=NOW - dt.timedelta(hours=2.5))
+    assert pipeline.material_change(_update(running, start=NOW - dt.timedelta(minutes=90)), running) == []
+
+
+def test_material_change_levels_move_by_action_not_by_name():
+    quiet = _noticed(level="nil", rank=0, p50=2.0)
+    assert pipeline.material_change(_update(quiet, level="slight", level_rank=1), quiet) == []
+    protect = _noticed(level="serious", rank=3, needs=True, p50=-1.0)
+    assert pipeline.material_change(_update(protect, level="grave", level_rank=4, p50_c=-1.4), protect) == []
+    assert pipeline.material_change(_update(quiet, level="serious", level_rank=3, p50_c=-1.0,
+                                            details={"needs_protection": True}), quiet)
+    # standing down must hold by a margin: 0.3 °C warmer is a flip near the edge, 0.6 °C is news
+    down = {"level": "slight", "level_rank": 1, "details": {"needs_protection": False}}
+    assert pipeline.material_change(_update(protect, p50_c=-0.7, **down), protect) == []
+    assert pipeline.material_change(_update(protect, p50_c=-1.0 + pipeline.MATERIAL_STAND_DOWN_C, **down), protect)
+    # a method dropped, the same margin; a method added goes out at once
+    dropped = _update(protect, p50_c=-0.8)
+    dropped.plan[0].advised = False
+    assert pipeline.material_change(dropped, protect) == []
+    added = _update(protect)
+    added.plan.append(asm.ProtectionStep("heater", True, start_utc=NOW + dt.timedelta(hours=1)))
+    assert "advised protection changed" in pipeline.material_change(added, protect)
+
+
+def test_updates_through_a_frost_night_never_stop_sprinklers_once_started(spring_db, quiet_channels):
+    """Hourly updates until sunrise, as the scheduler places them: once a notice has had the over-tree
+    sprinklers start, every later revision keeps them running (stopping them before the ice melts does
+    more harm than none; common practice), and update notices stay few."""
+    from advisory import schedule
+    from advisory.risk import continuity
+
+    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    clocks = schedule.load_block_clocks(spring_db)
+    noon = dt.datetime.combine(NIGHT, dt.time(12), dt.UTC)
+    runs = [r for r in schedule.plan(clocks, noon, noon + dt.timedelta(days=1),
+                                     schedule.PlannerSettings(kinds=(schedule.UPDATE,))) if r.night == NIGHT]
+    assert len(runs) >= 6
+    for r in runs:
+        pipeline.run_night(spring_db, NIGHT, list(r.block_ids), now=r.run_at, update=True, sleep=lambda s: None)
+    with spring_db.transaction() as s:
+        rows = s.execute(select(Forecast.block_id, Forecast.revision, Forecast.payload)
+                         .where(Forecast.night == NIGHT).order_by(Forecast.block_id, Forecast.revision)).all()
+        noticed = set(s.execute(select(Notice.block_id, Notice.revision).where(Notice.night == NIGHT)).all())
+    checked = 0
+    told: dict[int, dt.datetime] = {}  # the start the last notice gave the crew
+    for bid, rev, payload in rows:
+        a = asm.from_dict(payload)
+        over = [p for p in a.plan if p.method in continuity.KEEP_RUNNING]
+        if bid in told and told[bid] <= a.reference_time_utc:  # under way
+            assert over and over[0].advised and over[0].started_utc == told[bid], (bid, rev)
+            checked += 1
+        elif (bid, rev) in noticed:  # before the start, a notice may still move or call off the run
+            if over and over[0].advised and over[0].start_utc is not None:
+                told[bid] = over[0].start_utc
+            else:
+                told.pop(bid, None)
+    assert checked >= 4  # the sprinkler blocks ran on through several updates
+    updates = [(b, r) for b, r in noticed if r > 0]
+    assert len(updates) <= 2 * 6, updates  # at most about two update notices per block on this night
 
 
 def test_silent_station_gets_an_explicit_notice(spring_db):

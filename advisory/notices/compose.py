@@ -642,7 +642,10 @@ def _plan_section(a: Assessment, f: _Fmt) -> Section:
             sec.groups.append(g)
             continue
         ready = w.parse_time(getattr(s, "ready_by_utc", None))
-        if s.advised and s.start_utc is not None:
+        started = getattr(s, "started_utc", None)
+        if s.advised and started is not None:
+            tag = "KEEP RUNNING"
+        elif s.advised and s.start_utc is not None:
             tag = "RUN"
         elif s.advised:
             tag = "BE READY"
@@ -665,7 +668,9 @@ def _plan_section(a: Assessment, f: _Fmt) -> Section:
                 g.lines.append(f"Its start rule: {start_rule}")
             sec.groups.append(g)
             continue
-        if s.start_utc is not None:
+        if started is not None:
+            g.lines.append(f"Running since {f.clock(started)} (started on an earlier notice of the night)")
+        elif s.start_utc is not None:
             g.lines.append(f"Start {f.clock(s.start_utc)}" + (f", {start_rule}" if start_rule else ""))
             if ready is not None and ready < s.start_utc:
                 g.lines.append(f"Be ready by {f.clock(ready)}: that is when it starts if the night runs colder")
@@ -806,7 +811,13 @@ def _frost(a: Assessment, f: _Fmt, name: str):
     for s in advised:
         m = w.method_name(s.method)
         ready = w.parse_time(getattr(s, "ready_by_utc", None))
-        if s.start_utc is not None:
+        started = getattr(s, "started_utc", None)
+        if started is not None:  # under way since an earlier notice
+            txt = f"Keep {m} running (started {f.clock(started)})"
+            if s.stop_utc is not None:
+                txt += f", stop {'not before' if s.stop_open else 'about'} {f.clock(s.stop_utc)}"
+            actions.append(txt)
+        elif s.start_utc is not None:
             txt = f"Start {m} at {f.clock(s.start_utc)}"
             if ready is not None and ready < s.start_utc:
                 txt += f" (ready by {f.clock(ready)} in case it runs colder)"
@@ -848,7 +859,8 @@ def _frost(a: Assessment, f: _Fmt, name: str):
     for s in advised:
         if s.start_utc is not None:
             stop = f"-{w.clock(s.stop_utc, f.tz)[:5]}" if s.stop_utc else ""
-            sms_parts.append((f"{w.method_name(s.method).capitalize()} {f.clock(s.start_utc)[:5]}{stop}.", False))
+            on = " on since " if getattr(s, "started_utc", None) is not None else " "
+            sms_parts.append((f"{w.method_name(s.method).capitalize()}{on}{f.clock(s.start_utc)[:5]}{stop}.", False))
     if none_advised:
         sms_parts.append(("No usable protection.", False))
 

@@ -410,3 +410,15 @@ def test_wind_machine_inversion_is_given_once():
                      if g.title == words.method_name("wind_machine").capitalize())
         lines = " ".join(group.lines).lower()
         assert lines.count("inversion") == 1 and "measured" in lines, group.lines
+
+
+def test_a_run_under_way_reads_keep_running():
+    a = samples.frost_assessment(level="grave", level_rank=4, is_update=True, revision=3)
+    s = a.plan[0]
+    s.started_utc = s.start_utc
+    n = compose_block(a)
+    g = n.sections[1].groups[0] if n.sections[0].key != "changes" else n.sections[2].groups[0]
+    assert g.tag == "KEEP RUNNING"
+    assert g.lines[0].startswith("Running since 01:50 PDT (started on an earlier notice")
+    assert any(line.startswith("Keep over-tree sprinklers running (started 01:50 PDT)") for line in n.lead)
+    assert "on since 01:50" in n.sms
