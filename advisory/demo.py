@@ -3,11 +3,11 @@
 Copies the invented demo farm (``demo-farm/``) into the demo folder, drops its
 station files into the stations' inbox folders and sweeps them in (units,
 column maps and quality control included), then runs each spring night as the
-scheduler would (evening run at sunset + 2 h, morning check at sunrise + 1 h),
-and the summer heat week.  It prints what a grower, an extension agent and a
-crew lead would see; every notice is also written to the demo's outbox.
-Running it twice gives the same result: by default it starts from a fresh
-database in the demo folder.
+scheduler would (evening run at sunset + 2 h, hourly updates until sunrise,
+morning check at sunrise + 1 h), and the summer heat week.  It prints what a
+grower, an extension agent and a crew lead would see; every notice is also
+written to the demo's outbox.  Running it twice gives the same result: by
+default it starts from a fresh database in the demo folder.
 """
 
 from __future__ import annotations
@@ -18,6 +18,7 @@ import os
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 from sqlalchemy import select
 
@@ -71,6 +72,32 @@ def _evening_clock(db, night: dt.date) -> dt.datetime:
         st = sun.sun_times(lat, lon, night, tz)
         times.append(st.sunset + dt.timedelta(minutes=off))
     return max(times) + dt.timedelta(minutes=1)
+
+
+def _night_updates(db, night: dt.date, settings) -> tuple[int, list[str]]:
+    """Run the night's updates at the times the scheduler plans them (every hour after each block's
+    evening run, until sunrise); returns the number of update runs and one line per update notice sent."""
+    from advisory import schedule
+    from advisory.store.schema import Notice
+
+    clocks = schedule.load_block_clocks(db)
+    noon = dt.datetime.combine(night, dt.time(12), dt.UTC)
+    runs = [r for r in schedule.plan(clocks, noon - dt.timedelta(hours=14), noon + dt.timedelta(hours=38),
+                                     schedule.PlannerSettings(kinds=(schedule.UPDATE,)))
+            if r.night == night]
+    lines = []
+    for r in runs:
+        res = pipeline.run_night(db, night, list(r.block_ids), now=r.run_at, update=True, settings=settings)
+        if not res.notices:
+            continue
+        with db.transaction() as s:
+            sent = s.scalars(select(Notice).where(Notice.id.in_(res.notices), Notice.block_id.is_not(None))
+                             .order_by(Notice.id)).all()
+            for n in sent:
+                tz = n.content.get("farm_tz") or "UTC"
+                at = r.run_at.astimezone(ZoneInfo(tz))
+                lines.append(f"      {at:%H:%M} update notice: {n.subject}")
+    return len(runs), lines
 
 
 def _morning_clock(db, night: dt.date) -> dt.datetime:
@@ -146,6 +173,11 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
         echo(f"  night of {night:%a %d %b}: forecast lows °C: {lows}")
         if worst is None or rank > worst[0]:
             worst = (rank, night, res)
+        n_runs, sent = _night_updates(db, night, settings)
+        echo(f"      through the night: {n_runs} hourly updates, {len(sent)} update notice(s) sent "
+             "(only when the risk or the plan changes materially)")
+        for line in sent:
+            echo(line)
         ver = pipeline.verify_night(db, night, now=_morning_clock(db, night))
         if ver.verified:
             errs = [v["forecast_c"] - v["observed_c"] for v in ver.verified if v["forecast_c"] is not None]
