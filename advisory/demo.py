@@ -164,7 +164,7 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
         echo("")
         echo(station_report(db, code, since="2026-04-06", until="2026-04-14", max_items=4).text)
 
-    echo("\n== 3. Spring week: each evening at sunset + 2 h, each morning at sunrise + 1 h")
+    echo("\n== 3. Spring week: each evening at sunset + 2 h, hourly updates until sunrise, each morning at sunrise + 1 h")
     worst = None
     for night in SPRING_NIGHTS:
         res = pipeline.run_night(db, night, now=_evening_clock(db, night), settings=settings)
