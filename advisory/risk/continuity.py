@@ -91,7 +91,7 @@ def carry_started(plan: list[ProtectionStep], noticed: list[ProtectionStep], now
         if t is None:
             out.append(s)
         elif s.advised:
-            out.append(dataclasses.replace(s, start_utc=t, started_utc=t, ready_by_utc=None))
+            out.append(_under_way(s, t))
         elif s.method in KEEP_RUNNING:
             out.append(_keep_running(s, t))
             kept = True
@@ -102,18 +102,29 @@ def carry_started(plan: list[ProtectionStep], noticed: list[ProtectionStep], now
     return out
 
 
+#: Quantities of a plan that count from the plan's own start: for a run under way, the rest of the run.
+_RUN_AMOUNTS = ("hours", "hours_cold", "water_m3", "water_m3_cold", "fuel_l", "fuel_l_cold")
+
+
+def _under_way(s: ProtectionStep, t: dt.datetime, first: tuple[str, ...] = ()) -> ProtectionStep:
+    """``s`` as a run started at ``t``: its first start kept, notes meant for a fresh start left out."""
+    notes = [*first, *(n for n in s.notes if not any(f in n for f in _FRESH_ONLY))]
+    if any(k in (s.quantities or {}) for k in _RUN_AMOUNTS):
+        notes.append("Run time, water and fuel are counted from this update to the stop: what the rest of "
+                     "the run needs.")
+    return dataclasses.replace(s, advised=True, start_utc=t, started_utc=t, ready_by_utc=None, notes=notes)
+
+
 def _keep_running(s: ProtectionStep, t: dt.datetime) -> ProtectionStep:
     """A started run the new plan would not advise, kept running with the reason said plainly."""
     q = s.quantities or {}
     have, need = q.get("rate_available_mm_h"), q.get("rate_needed_mm_h")
-    notes = []
     if have is not None and need is not None and have < need:
-        notes.append(f"The system rate ({have:.1f} mm/h) is now below the {need:.1f} mm/h the latest readings "
-                     "call for. Do not stop: stopping before the ice melts does more harm than a short rate. "
-                     "Watch the ice (clear and dripping is working; milky and dry is not) and add any other "
-                     "protection you have.")
+        why = (f"The system rate ({have:.1f} mm/h) is now below the {need:.1f} mm/h the latest readings call "
+               "for. Do not stop: stopping before the ice melts does more harm than a short rate. Watch the "
+               "ice (clear and dripping is working; milky and dry is not) and add any other protection you "
+               "have.")
     else:
-        notes.append("Do not stop before the stop condition: stopping before the ice melts does more harm "
-                     "than sprinkling on.")
-    notes += [n for n in s.notes if not any(f in n for f in _FRESH_ONLY)]
-    return dataclasses.replace(s, advised=True, start_utc=t, started_utc=t, ready_by_utc=None, notes=notes)
+        why = ("Do not stop before the stop condition: stopping before the ice melts does more harm than "
+               "sprinkling on.")
+    return _under_way(s, t, (why,))

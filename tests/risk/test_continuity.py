@@ -55,3 +55,12 @@ def test_other_started_methods_keep_their_start_but_may_be_called_off():
     assert out[0].start_utc == EARLIER and out[0].started_utc == EARLIER
     off = ProtectionStep("wind_machine", False, start_utc=NOW, notes=["Wind 4.2 m/s is above the 3 m/s ..."])
     assert continuity.carry_started([off], [wind], NOW) == [off]        # news for the grower: said, not hidden
+
+
+def test_a_run_under_way_drops_fresh_start_notes_and_says_its_figures_are_for_the_rest_of_the_run():
+    fresh = ProtectionStep("heater", True, start_utc=NOW, quantities={"hours": 2.5, "fuel_l": 400.0},
+                           notes=["Already at the start temperature when the forecast begins: start now.",
+                                  "Fuel on hand (300 L) is less than the 400 L the run needs."])
+    out = continuity.carry_started([fresh], [ProtectionStep("heater", True, start_utc=EARLIER)], NOW)[0]
+    assert out.started_utc == EARLIER and not any("start now" in n for n in out.notes)
+    assert "Fuel on hand" in out.notes[0] and "rest of the run" in out.notes[-1]
