@@ -928,6 +928,9 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
             # the summary gathers every block of the farm assessed for this night, not only this batch
             farm_assessments = _farm_payloads(session, farm_id, a0.night, a0.kind, batch[farm_id]) \
                 or farm_assessments
+        elif revision_mode == "update":
+            # the farm's whole picture: the blocks with news as now, the others as last sent
+            farm_assessments = _farm_last_noticed(session, farm_id, a0.night, a0.kind, farm_assessments)
         key = compose.notice_key(a0.kind + "-summary", a0.farm, None, a0.night, revision) + f":{_batch_tag(items)}"
         if session.scalar(select(Notice.id).where(Notice.key == key)) is not None:
             continue
@@ -937,7 +940,9 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     from advisory import forking
 
     share = workers if sum(len(x[1]) for x in wanted) >= PARALLEL_FROM_BLOCKS else 1
-    composed_summaries = forking.fork_map(lambda x: compose.compose_farm(x[1], revision=x[2]), wanted, share)
+    news = {a.block_id for a, notice in zip(todo, composed, strict=True) if notice is not None}
+    composed_summaries = forking.fork_map(
+        lambda x: compose.compose_farm(x[1], revision=x[2], changed=news if x[2] else None), wanted, share)
     _lap(timings, "compose summaries")
     if stage is not None:  # every notice is composed: its outbox files can be written ahead
         stage([(c[0], c[2], (c[3], p)) for c, p in zip(composed, payloads, strict=True) if c],
@@ -1006,6 +1011,27 @@ def _farm_payloads(session: Session, farm_id: int, night: dt.date, kind: str,
     for chunk in _chunked(stored):
         found.update(session.execute(select(Forecast.id, Forecast.payload).where(Forecast.id.in_(chunk))).all())
     return [found[fid] for fid in stored if found.get(fid)] + [a for a in ours if a.revision == 0]
+
+
+def _farm_last_noticed(session: Session, farm_id: int, night: dt.date, kind: str,
+                       news: Sequence[asm.Assessment]) -> list[asm.Assessment | dict]:
+    """Every active block of the farm as its latest notice of the night told it (stored payloads,
+    in block order), with ``news`` (this update's assessments with a new notice) in their place."""
+    mine = {a.block_id: a for a in news}
+    latest: dict[int, tuple[int, int | None]] = {}
+    for bid, rev, fid in session.execute(
+            select(Notice.block_id, Notice.revision, Notice.forecast_id).join(Block, Block.id == Notice.block_id)
+            .where(Block.farm_id == farm_id, Block.active.is_(True), Notice.kind == kind, Notice.night == night)):
+        if bid not in mine and (bid not in latest or rev > latest[bid][0]):
+            latest[bid] = (rev, fid)
+    wanted = sorted(fid for _, fid in latest.values() if fid is not None)
+    found: dict[int, dict] = {}
+    for chunk in _chunked(wanted):
+        found.update(session.execute(select(Forecast.id, Forecast.payload).where(Forecast.id.in_(chunk))).all())
+    by_block: dict[int, asm.Assessment | dict] = {bid: found[fid] for bid, (_, fid) in latest.items()
+                                                  if fid is not None and found.get(fid)}
+    by_block.update(mine)
+    return [by_block[bid] for bid in sorted(by_block)]
 
 
 def _outbox_plan(batch: list[tuple[Notice, list]], settings, wanted: set[str]) -> list[tuple[list, dict]]:

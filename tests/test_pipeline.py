@@ -148,8 +148,16 @@ def test_updates_through_a_frost_night_never_stop_sprinklers_once_started(spring
             else:
                 told.pop(bid, None)
     assert checked >= 4  # the sprinkler blocks ran on through several updates
-    updates = [(b, r) for b, r in noticed if r > 0]
+    updates = [(b, r) for b, r in noticed if b is not None and r > 0]
     assert len(updates) <= 2 * 6, updates  # at most about two update notices per block on this night
+    # each update's farm summary shows the whole farm (the other blocks as last sent), marked as an update
+    with spring_db.transaction() as s:
+        summaries = s.scalars(select(Notice).where(Notice.night == NIGHT, Notice.block_id.is_(None),
+                                                   Notice.revision > 0)).all()
+        assert summaries
+        for n in summaries:
+            assert len(n.content["rows"]) == 6 and n.content["is_update"], n.subject
+            assert n.content["lead"][0].startswith(f"Update {n.revision}: new notice")
 
 
 def test_silent_station_gets_an_explicit_notice(spring_db):

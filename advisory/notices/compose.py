@@ -61,6 +61,7 @@ import hashlib
 import logging
 import math
 import re
+from collections.abc import Collection
 from dataclasses import dataclass, field
 from functools import lru_cache
 from typing import Any
@@ -1296,7 +1297,8 @@ def _first_start(a: Assessment):
     return min(starts) if starts else None
 
 
-def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSummary:
+def compose_farm(assessments: list[Assessment], *, revision: int = 0,
+                 changed: Collection[int] | None = None) -> FarmSummary:
     """Compose the farm summary: every block worst first, and the crew run sheet.
 
     Parameters
@@ -1305,6 +1307,10 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
         One per block, all of the same farm and night (or day).
     revision : int
         0 for the evening summary; higher when re-issued after updates.
+    changed : collection of block ids, optional
+        For an update (``revision`` > 0): the blocks with a new notice in
+        this update; the summary says so first, and names them.  The other
+        blocks stand as last sent.
 
     Returns
     -------
@@ -1389,6 +1395,12 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
 
     when_txt = f"night of {w.short_day(a0.night)}" if kind != "heat" else w.short_day(a0.night)
     lead = [f"{len(rows)} block{'s' if len(rows) != 1 else ''}: {count_txt}."]
+    is_update = revision > 0
+    if is_update:
+        names = [x.block for x in items if changed is None or x.block_id in changed]
+        lead.insert(0, f"Update {revision}: new notice{'s' if len(names) != 1 else ''} for "
+                       f"{', '.join(names)}; the other blocks stand as last sent." if len(names) < len(items)
+                    else f"Update {revision}: new notices for every block.")
     if first_start:
         what = "First evaporative cooling start" if kind == "heat" else "First protection start"
         lead.append(f"{what} {f.clock(first_start[0])} ({first_start[1].block}).")
@@ -1399,8 +1411,10 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
     if silent:
         lead.append("No forecast for: " + ", ".join(silent) + ".")
     core = f"{a0.farm}, {when_txt}: {count_txt}"
-    subject = f"[{tstyle.name}] {core}"[:250]
-    head = w.gsm_safe(f"{_short_name(a0.farm, 24)} {w.short_day(a0.night)}:")
+    subject = f"[{tstyle.name}] " + (f"Update {revision}: " if is_update else "") + core
+    subject = subject[:250]
+    head = w.gsm_safe(f"{_short_name(a0.farm, 24)} {w.short_day(a0.night)}"
+                      + (f" UPDATE {revision}:" if is_update else ":"))
     bits = []
     for x, r in zip(items, rows, strict=True):
         if r.status == asm.STATUS_OK and r.level_rank < 2:
@@ -1435,7 +1449,7 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0) -> FarmSum
         units=a0.units, night=a0.night.isoformat(), level=top.level, level_rank=int(top.level_rank or 0),
         level_name=tstyle.name, colour=tstyle.colour, subject=subject, headline=f"{tstyle.name}: {core}",
         lead=lead, sms=sms, rows=rows, runsheet=runsheet, cautions=_caution_list(cautions_keys),
-        footer=FOOTER_HEAT if kind == "heat" else FOOTER_FROST,
+        footer=FOOTER_HEAT if kind == "heat" else FOOTER_FROST, is_update=is_update,
         data={"blocks": [{"block": x.block, "block_id": x.block_id, "status": x.status, "level": x.level,
                           "level_rank": x.level_rank, "p10_c": x.p10_c, "p50_c": x.p50_c, "p90_c": x.p90_c,
                           "critical_time_utc": w.iso(x.critical_time_utc),
@@ -1447,8 +1461,9 @@ def _runsheet(a0: Assessment, ok: list[Assessment], f: _Fmt) -> tuple[dict[str, 
     """The crew run sheet from :mod:`advisory.risk.runsheet` (its three renderings and our table rows)."""
     from advisory.risk import runsheet as rs
 
+    made = [x.reference_time_utc for x in ok if x.reference_time_utc is not None]
     sheet = rs.build_run_sheet(a0.farm, a0.night, a0.farm_tz, ok,
-                               generated_utc=a0.reference_time_utc or None,
+                               generated_utc=max(made) if made else None,  # an update's: its own time
                                units="imperial" if w.imperial(a0.units) else "metric")
     rows = []
     for r in sheet.rows:

@@ -422,3 +422,22 @@ def test_a_run_under_way_reads_keep_running():
     assert g.lines[0].startswith("Running since 01:50 PDT (started on an earlier notice")
     assert any(line.startswith("Keep over-tree sprinklers running (started 01:50 PDT)") for line in n.lead)
     assert "on since 01:50" in n.sms
+
+
+def test_update_summary_names_the_blocks_with_news_and_shows_the_whole_farm():
+    from advisory.notices.render import render
+
+    protect = samples.frost_assessment()                    # as last sent, in the evening
+    quiet = samples.quiet_assessment(is_update=True, revision=2)
+    quiet.reference_time_utc = samples.REFERENCE + dt.timedelta(hours=3)   # the update's clock
+    s = compose_farm([protect, quiet], revision=2, changed={quiet.block_id})
+    assert s.is_update and s.revision == 2
+    assert s.subject.startswith("[Protect] Update 2: Quillback Ridge Orchards, night of 6 Apr: ")
+    assert s.lead[0] == "Update 2: new notice for Bench Gala; the other blocks stand as last sent."
+    assert s.lead[1] == "2 blocks: 1 Protect, 1 Quiet."
+    assert "UPDATE 2:" in s.sms and len(s.sms) <= 160
+    assert render(s, "text").startswith("QUILLBACK RIDGE ORCHARDS - Night of Mon 6 Apr 2026 (UPDATE 2)\n")
+    # the run sheet is made at the update, not at the evening run of the worst block
+    assert words.clock(quiet.reference_time_utc, quiet.farm_tz) in s.runsheet["text"].splitlines()[1]
+    evening = compose_farm([quiet, protect])
+    assert not evening.is_update and not evening.lead[0].startswith("Update")
