@@ -175,6 +175,35 @@ def test_silent_station_gets_an_explicit_notice(spring_db):
     assert len(subjects) == 6  # the silent blocks get a notice too, not silence
 
 
+def test_station_silent_mid_run_says_keep_the_sprinklers_running(spring_db, quiet_channels):
+    """Creek Bing's update at 22:39 PDT has the over-tree sprinklers start at 23:30 PDT; QR-CREEK then
+    falls silent after midnight.  The update that finds no forecast says so, and to keep them running."""
+    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    first = dt.datetime(2026, 4, 9, 5, 39, tzinfo=dt.UTC)           # 22:39 PDT
+    pipeline.run_night(spring_db, NIGHT, [2], now=first, update=True, sleep=lambda s: None)
+    with spring_db.transaction() as s:
+        told = s.scalars(select(Notice).where(Notice.block_id == 2, Notice.night == NIGHT)
+                         .order_by(Notice.revision.desc())).first()
+        plan = told.forecast.payload["plan"]
+    sprinklers = [p for p in plan if p["method"] == "overtree_sprinkler" and p["advised"]]
+    assert told.revision == 1 and sprinklers and sprinklers[0]["start_utc"] < "2026-04-09T07:00"
+    cut = int(dt.datetime(2026, 4, 9, 7, 0, tzinfo=dt.UTC).timestamp())   # silent from 00:00 PDT
+    with spring_db.engine.begin() as conn:
+        conn.execute(text("DELETE FROM observations WHERE station_id = (SELECT id FROM stations WHERE code = "
+                          "'QR-CREEK') AND time_utc >= :t"), {"t": cut})
+    res = pipeline.run_night(spring_db, NIGHT, [2], now=dt.datetime(2026, 4, 9, 9, 39, tzinfo=dt.UTC),
+                             update=True, sleep=lambda s: None)
+    a = res.assessments[0]
+    assert a.status == asm.STATUS_NO_FORECAST
+    assert [(p.method, p.advised, p.started_utc is not None) for p in a.plan] == [("overtree_sprinkler", True, True)]
+    with spring_db.transaction() as s:
+        n = s.scalars(select(Notice).where(Notice.block_id == 2, Notice.night == NIGHT)
+                      .order_by(Notice.revision.desc())).first()
+        lead = n.content["lead"]
+    assert n.revision == 2 and lead[0].startswith("Update 2 to the evening notice")
+    assert any(line.startswith("Keep over-tree sprinklers running (started 23:") for line in lead), lead
+
+
 def test_missed_evening_run_sends_one_notice(spring_db):
     run_at = dt.datetime(2026, 4, 9, 4, 39, tzinfo=dt.UTC)
     res = pipeline.record_missed(spring_db, NIGHT, [1, 2], key="evening:test", run_at=run_at,

@@ -1135,6 +1135,10 @@ def _status(a: Assessment, f: _Fmt, name: str):
         core = f"{a.block}: no forecast"
         lead.append(first)
         next_step = ""
+    running = [s for s in a.plan if s.advised and getattr(s, "started_utc", None) is not None]
+    for s in running:  # protection under way since an earlier notice (advisory.risk.continuity)
+        lead.append(f"Keep {w.method_name(s.method)} running (started {f.clock(s.started_utc)})"
+                    + (f"; stop {s.stop_rule}" if s.stop_rule else "") + ".")
     if not heat and a.status != asm.STATUS_NO_NIGHT and _finite(a.t10_c):
         lead.append(f"{a.stage.capitalize()} buds are damaged from about {f.t(a.t10_c)} (T10): check "
                     "thermometers in the block tonight.")
@@ -1142,14 +1146,18 @@ def _status(a: Assessment, f: _Fmt, name: str):
         lead.append(next_step)
     sms_parts = [(f"{name.upper()} {_short_name(a.block)} {w.short_day(a.night)}:", True),
                  (first.split(": ", 1)[-1], True)]
+    for k, s in enumerate(running):  # before the rest: a cut text must still say it
+        sms_parts.insert(1 + k, (f"Keep {w.method_name(s.method)} on.", True))
     if not heat and a.status != asm.STATUS_NO_NIGHT and _finite(a.t10_c):
         sms_parts.append((f"Buds hurt from {w.temp(a.t10_c, f.units, ascii_only=True)}; check thermometers.",
                           False))
-    sections = [_data_section(a, f)]
+    sections = ([_plan_section(a, f)] if running else []) + [_data_section(a, f)]
     ver = _verification_section(a, f)
     if ver:
         sections.append(ver)
     keys = list(a.cautions or [])
+    for s in running:
+        keys += [k for k in s.caution_keys if k not in keys]
     return core, lead, sms_parts, sections, None, keys
 
 

@@ -20,7 +20,10 @@ the ice melts").  So:
 * any other started method that the new plan still advises keeps its
   original start time, so that a run the crew began is not "moved";
 * a started wind machine or heater run that the new plan no longer advises
-  is dropped: that is news for the grower, and the update says why.
+  is dropped: that is news for the grower, and the update says why;
+* a started run of any method stays on as noticed when the update has no
+  plan for it at all (no forecast: the station fell silent): the silence
+  notice then says to keep it running and stop by its stop rule.
 
 Pure functions on :class:`advisory.assessment.ProtectionStep` lists.
 """
@@ -78,14 +81,24 @@ def carry_started(plan: list[ProtectionStep], noticed: list[ProtectionStep], now
         step is left out.
     """
     started = {}
+    was = {}
     for s in noticed:
         t = started_at(s, now_utc)
         if t is not None:
             started[s.method] = t
+            was[s.method] = s
     if not started:
         return plan
     out: list[ProtectionStep] = []
     kept = False
+    # a started run the update has no plan for at all (no forecast: station silent): it stays on as noticed
+    here = {s.method for s in plan}
+    for method, t in started.items():
+        if method not in here:
+            old = was[method]  # its run time and amounts were counted from its start: not repeated
+            q = {k: v for k, v in (old.quantities or {}).items() if k not in _RUN_AMOUNTS}
+            out.append(_under_way(dataclasses.replace(old, quantities=q), t, (_NO_NEW_PLAN,)))
+            kept = True
     for s in plan:
         t = started.get(s.method)
         if t is None:
@@ -101,6 +114,9 @@ def carry_started(plan: list[ProtectionStep], noticed: list[ProtectionStep], now
         out = [s for s in out if s.method != "none"]
     return out
 
+
+_NO_NEW_PLAN = ("No new forecast at this update: keep it running, and stop by its stop rule and the block "
+                "thermometers.")
 
 #: Quantities of a plan that count from the plan's own start: for a run under way, the rest of the run.
 _RUN_AMOUNTS = ("hours", "hours_cold", "water_m3", "water_m3_cold", "fuel_l", "fuel_l_cold")

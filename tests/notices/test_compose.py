@@ -441,3 +441,16 @@ def test_update_summary_names_the_blocks_with_news_and_shows_the_whole_farm():
     assert words.clock(quiet.reference_time_utc, quiet.farm_tz) in s.runsheet["text"].splitlines()[1]
     evening = compose_farm([quiet, protect])
     assert not evening.is_update and not evening.lead[0].startswith("Update")
+
+
+def test_silence_notice_mid_run_says_to_keep_protection_running():
+    a = samples.frost_assessment(status="no_forecast", level="", level_rank=0, is_update=True, revision=4,
+                                 curve=[], reason="no reading for 95 min")
+    step = a.plan[0]
+    step.started_utc = step.start_utc
+    step.stop_rule = "after sunrise, once the wet bulb is above -2.2 °C and the ice is melting"
+    n = compose_block(a)
+    assert any(line.startswith("Keep over-tree sprinklers running (started 01:50 PDT); stop after sunrise")
+               for line in n.lead)
+    assert "Keep over-tree sprinklers on." in n.sms
+    assert any(sec.key == "plan" for sec in n.sections)

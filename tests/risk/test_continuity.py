@@ -64,3 +64,16 @@ def test_a_run_under_way_drops_fresh_start_notes_and_says_its_figures_are_for_th
     out = continuity.carry_started([fresh], [ProtectionStep("heater", True, start_utc=EARLIER)], NOW)[0]
     assert out.started_utc == EARLIER and not any("start now" in n for n in out.notes)
     assert "Fuel on hand" in out.notes[0] and "rest of the run" in out.notes[-1]
+
+
+def test_a_silent_station_mid_run_keeps_every_started_run_on():
+    """No forecast at the update (the new plan is empty): what the crew started stays on, as noticed,
+    without the old run-time figures."""
+    noticed = [_sprinkler(quantities={"hours": 8.0, "water_m3": 900.0, "rate_available_mm_h": 3.8},
+                          stop_rule="after sunrise, once the ice is melting"),
+               ProtectionStep("heater", True, start_utc=NOW + dt.timedelta(hours=1))]   # not started yet
+    out = continuity.carry_started([], noticed, NOW)
+    assert [s.method for s in out] == ["overtree_sprinkler"]
+    s = out[0]
+    assert s.advised and s.started_utc == EARLIER and s.stop_rule == "after sunrise, once the ice is melting"
+    assert s.quantities == {"rate_available_mm_h": 3.8} and s.notes[0].startswith("No new forecast")
