@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 
+import pytest
 from sqlalchemy import func, select, text
 
 from advisory import assessment as asm
@@ -175,7 +176,8 @@ def test_silent_station_gets_an_explicit_notice(spring_db):
     assert len(subjects) == 6  # the silent blocks get a notice too, not silence
 
 
-def test_station_silent_mid_run_says_keep_the_sprinklers_running(spring_db, quiet_channels):
+@pytest.mark.parametrize("every_reading_gone", [False, True])
+def test_station_silent_mid_run_says_keep_the_sprinklers_running(spring_db, quiet_channels, every_reading_gone):
     """Creek Bing's update at 22:39 PDT has the over-tree sprinklers start at 23:30 PDT; QR-CREEK then
     falls silent after midnight.  The update that finds no forecast says so, and to keep them running."""
     pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
@@ -188,6 +190,8 @@ def test_station_silent_mid_run_says_keep_the_sprinklers_running(spring_db, quie
     sprinklers = [p for p in plan if p["method"] == "overtree_sprinkler" and p["advised"]]
     assert told.revision == 1 and sprinklers and sprinklers[0]["start_utc"] < "2026-04-09T07:00"
     cut = int(dt.datetime(2026, 4, 9, 7, 0, tzinfo=dt.UTC).timestamp())   # silent from 00:00 PDT
+    if every_reading_gone:  # not a reading left: no evening state at all
+        cut = 0
     with spring_db.engine.begin() as conn:
         conn.execute(text("DELETE FROM observations WHERE station_id = (SELECT id FROM stations WHERE code = "
                           "'QR-CREEK') AND time_utc >= :t"), {"t": cut})
