@@ -1014,24 +1014,14 @@ def _farm_payloads(session: Session, farm_id: int, night: dt.date, kind: str,
 
 
 def _farm_last_noticed(session: Session, farm_id: int, night: dt.date, kind: str,
-                       news: Sequence[asm.Assessment]) -> list[asm.Assessment | dict]:
-    """Every active block of the farm as its latest notice of the night told it (stored payloads,
-    in block order), with ``news`` (this update's assessments with a new notice) in their place."""
+                       news: Sequence[asm.Assessment]) -> list[asm.Assessment]:
+    """Every active block of the farm as its latest notice of the night told it, in block order, with
+    ``news`` (this update's assessments with a new notice) in their place."""
     mine = {a.block_id: a for a in news}
-    latest: dict[int, tuple[int, int | None]] = {}
-    for bid, rev, fid in session.execute(
-            select(Notice.block_id, Notice.revision, Notice.forecast_id).join(Block, Block.id == Notice.block_id)
-            .where(Block.farm_id == farm_id, Block.active.is_(True), Notice.kind == kind, Notice.night == night)):
-        if bid not in mine and (bid not in latest or rev > latest[bid][0]):
-            latest[bid] = (rev, fid)
-    wanted = sorted(fid for _, fid in latest.values() if fid is not None)
-    found: dict[int, dict] = {}
-    for chunk in _chunked(wanted):
-        found.update(session.execute(select(Forecast.id, Forecast.payload).where(Forecast.id.in_(chunk))).all())
-    by_block: dict[int, asm.Assessment | dict] = {bid: found[fid] for bid, (_, fid) in latest.items()
-                                                  if fid is not None and found.get(fid)}
-    by_block.update(mine)
-    return [by_block[bid] for bid in sorted(by_block)]
+    ids = session.scalars(select(Block.id).where(Block.farm_id == farm_id, Block.active.is_(True))).all()
+    told = _last_noticed_many(session, [i for i in ids if i not in mine], night, kind)
+    told.update(mine)
+    return [told[bid] for bid in sorted(told)]
 
 
 def _outbox_plan(batch: list[tuple[Notice, list]], settings, wanted: set[str]) -> list[tuple[list, dict]]:

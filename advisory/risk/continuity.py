@@ -6,13 +6,13 @@ wind rose a little, so the sprinkler rate needed is now just above the
 system's.  Over-tree sprinklers must not be stopped on such a change: once
 the buds are iced, stopping before the ice melts after sunrise lets the water
 evaporate from them and cools them below the air temperature, which kills
-more buds than no sprinkling at all (common practice: every extension guide
-on sprinkling for frost protection says "once started, keep running until
-the ice melts").  So:
+more buds than no sprinkling at all ("once started, keep running until the
+ice melts": common practice, as extension guides on sprinkling for frost
+protection put it; quoted from memory).  So:
 
-* a method the last notice of the night advised, and whose start time (or
-  earlier start) has passed at the update's clock, is *started*: the crew
-  should have it running;
+* a method the last notice of the night advised with a start time that has
+  passed at the update's clock (or that an earlier update already carried
+  over) is *started*: the crew should have it running;
 * a started over-tree sprinkler run stays advised in the update whatever the
   new plan says, with its original start time and the new plan's stop; when
   the new plan finds the rate short, the update says so and says to keep
@@ -119,7 +119,7 @@ _NO_NEW_PLAN = ("No new forecast at this update: keep it running, and stop by it
                 "thermometers.")
 
 #: Quantities of a plan that count from the plan's own start: for a run under way, the rest of the run.
-_RUN_AMOUNTS = ("hours", "hours_cold", "water_m3", "water_m3_cold", "fuel_l", "fuel_l_cold")
+_RUN_AMOUNTS = ("hours", "hours_cold", "water_m3", "water_m3_cold", "water_l_per_ha", "fuel_l", "fuel_l_cold")
 
 
 def _under_way(s: ProtectionStep, t: dt.datetime, first: tuple[str, ...] = ()) -> ProtectionStep:
