@@ -74,9 +74,10 @@ def _evening_clock(db, night: dt.date) -> dt.datetime:
     return max(times) + dt.timedelta(minutes=1)
 
 
-def _night_updates(db, night: dt.date, settings) -> tuple[int, list[str]]:
+def _night_updates(db, night: dt.date, settings) -> tuple[int, int, list[str]]:
     """Run the night's updates at the times the scheduler plans them (every hour after each block's
-    evening run, until sunrise); returns the number of update runs and one line per update notice sent."""
+    evening run, until sunrise); returns the number of update runs, of update notices sent, and lines
+    saying when each went out and what changed."""
     from advisory import schedule
     from advisory.store.schema import Notice
 
@@ -85,7 +86,7 @@ def _night_updates(db, night: dt.date, settings) -> tuple[int, list[str]]:
     runs = [r for r in schedule.plan(clocks, noon - dt.timedelta(hours=14), noon + dt.timedelta(hours=38),
                                      schedule.PlannerSettings(kinds=(schedule.UPDATE,)))
             if r.night == night]
-    lines = []
+    lines, n_sent = [], 0
     for r in runs:
         res = pipeline.run_night(db, night, list(r.block_ids), now=r.run_at, update=True, settings=settings)
         if not res.notices:
@@ -93,11 +94,14 @@ def _night_updates(db, night: dt.date, settings) -> tuple[int, list[str]]:
         with db.transaction() as s:
             sent = s.scalars(select(Notice).where(Notice.id.in_(res.notices), Notice.block_id.is_not(None))
                              .order_by(Notice.id)).all()
+            n_sent += len(sent)
             for n in sent:
                 tz = n.content.get("farm_tz") or "UTC"
                 at = r.run_at.astimezone(ZoneInfo(tz))
                 lines.append(f"      {at:%H:%M} update notice: {n.subject}")
-    return len(runs), lines
+                if n.content.get("changes"):
+                    lines.append("            what changed: " + "; ".join(n.content["changes"]))
+    return len(runs), n_sent, lines
 
 
 def _morning_clock(db, night: dt.date) -> dt.datetime:
@@ -173,10 +177,10 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
         echo(f"  night of {night:%a %d %b}: forecast lows °C: {lows}")
         if worst is None or rank > worst[0]:
             worst = (rank, night, res)
-        n_runs, sent = _night_updates(db, night, settings)
-        echo(f"      through the night: {n_runs} hourly updates, {len(sent)} update notice(s) sent "
-             "(only when the risk or the plan changes materially)")
-        for line in sent:
+        n_runs, n_sent, lines = _night_updates(db, night, settings)
+        echo(f"      through the night: {n_runs} hourly updates, {n_sent} update notice(s) sent "
+             "(only when the crew's work changes)")
+        for line in lines:
             echo(line)
         ver = pipeline.verify_night(db, night, now=_morning_clock(db, night))
         if ver.verified:
