@@ -81,11 +81,8 @@ def _night_updates(db, night: dt.date, settings) -> tuple[int, int, list[str]]:
     from advisory import schedule
     from advisory.store.schema import Notice
 
-    clocks = schedule.load_block_clocks(db)
-    noon = dt.datetime.combine(night, dt.time(12), dt.UTC)
-    runs = [r for r in schedule.plan(clocks, noon - dt.timedelta(hours=14), noon + dt.timedelta(hours=38),
-                                     schedule.PlannerSettings(kinds=(schedule.UPDATE,)))
-            if r.night == night]
+    runs = schedule.night_runs(schedule.load_block_clocks(db), night,
+                               schedule.PlannerSettings(kinds=(schedule.UPDATE,)))
     lines, n_sent = [], 0
     for r in runs:
         res = pipeline.run_night(db, night, list(r.block_ids), now=r.run_at, update=True, settings=settings)

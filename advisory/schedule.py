@@ -176,6 +176,14 @@ def plan(blocks: list[BlockClock], start: dt.datetime, end: dt.datetime,
     return runs
 
 
+def night_runs(blocks: list[BlockClock], night: dt.date, settings: PlannerSettings | None = None
+               ) -> list[PlannedRun]:
+    """Every planned run of one night (its local date: evening, updates, morning check), in time order."""
+    day_start = dt.datetime.combine(night, dt.time(0), dt.UTC)
+    return [r for r in plan(blocks, day_start - dt.timedelta(hours=12), day_start + dt.timedelta(hours=48),
+                            settings) if r.night == night]
+
+
 def split_due(runs: Iterable[PlannedRun], now: dt.datetime, grace_min: int
               ) -> tuple[list[PlannedRun], list[PlannedRun], list[PlannedRun]]:
     """Split runs into (missed beyond grace, due now within grace, future)."""
@@ -341,10 +349,7 @@ def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: Pla
     from apscheduler.schedulers.background import BackgroundScheduler
 
     s = settings or PlannerSettings(kinds=(EVENING, UPDATE, MORNING))
-    clocks = load_block_clocks(db)
-    day_start = dt.datetime.combine(night, dt.time(0), dt.UTC)
-    runs = [r for r in plan(clocks, day_start - dt.timedelta(hours=12), day_start + dt.timedelta(hours=48), s)
-            if r.night == night]
+    runs = night_runs(load_block_clocks(db), night, s)
     if not runs:
         echo(f"night {night}: nothing to run")
         return 0

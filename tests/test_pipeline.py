@@ -124,10 +124,8 @@ def test_updates_through_a_frost_night_never_stop_sprinklers_once_started(spring
     from advisory.risk import continuity
 
     pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
-    clocks = schedule.load_block_clocks(spring_db)
-    noon = dt.datetime.combine(NIGHT, dt.time(12), dt.UTC)
-    runs = [r for r in schedule.plan(clocks, noon, noon + dt.timedelta(days=1),
-                                     schedule.PlannerSettings(kinds=(schedule.UPDATE,))) if r.night == NIGHT]
+    runs = schedule.night_runs(schedule.load_block_clocks(spring_db), NIGHT,
+                               schedule.PlannerSettings(kinds=(schedule.UPDATE,)))
     assert len(runs) >= 6
     for r in runs:
         pipeline.run_night(spring_db, NIGHT, list(r.block_ids), now=r.run_at, update=True, sleep=lambda s: None)
