@@ -1097,7 +1097,10 @@ def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *,
             if addressed:
                 rows += deliver_mod.deliver_notices(session, addressed, settings,
                                                     channels=sorted(wanted - {"outbox"}), **kw)
+        last = {}  # each delivery's outcome (its last attempt), not each attempt
         for r in rows:
+            last[(r.notice_id, r.recipient_id, r.channel)] = r
+        for r in last.values():
             counts[f"{r.channel} {r.status}"] += 1
     return dict(counts)
 

@@ -12,9 +12,13 @@ Environment variables
 ``ADVISORY_SETTINGS``
     Path of a TOML settings file (default: ``<data folder>/settings.toml`` if present).
 ``ADVISORY_SMTP_HOST``, ``ADVISORY_SMTP_PORT``, ``ADVISORY_SMTP_USER``, ``ADVISORY_SMTP_PASSWORD``,
-``ADVISORY_SMTP_FROM``, ``ADVISORY_SMTP_STARTTLS``
-    Outgoing mail.  The password is read only from the environment or the
-    settings file; it is never stored in the database nor logged.
+``ADVISORY_SMTP_FROM``, ``ADVISORY_SMTP_TLS``
+    Outgoing mail.  ``ADVISORY_SMTP_TLS`` (settings file: ``[smtp] tls``) is
+    ``starttls`` (default; port 587 unless set), ``implicit`` (TLS from the
+    first byte, port 465) or ``none`` (a plain local relay, port 25).  The older
+    ``ADVISORY_SMTP_STARTTLS=false`` means ``none``.  The password is read only
+    from the environment or the settings file; it is never stored in the
+    database nor logged.
 ``ADVISORY_WEBHOOK_SECRET``
     Key for the HMAC signature on webhook deliveries.
 ``ADVISORY_OUTBOX``
@@ -57,6 +61,8 @@ OUTBOX_FORMAT_CHOICES = ("text", "markdown", "html", "json", "sms")
 OUTBOX_DEFAULT_FORMATS = ("text", "markdown", "html", "json")
 #: When charts go into the outbox (see ``ADVISORY_OUTBOX_CHARTS``).
 OUTBOX_CHART_CHOICES = ("auto", "email", "always", "never")
+#: How mail goes to the SMTP server (see ``ADVISORY_SMTP_TLS``) and the port of each unless set.
+SMTP_TLS_PORTS = {"starttls": 587, "implicit": 465, "none": 25}
 
 
 def data_home() -> Path:
@@ -101,6 +107,13 @@ class SmtpSettings:
     password: str | None = field(default=None, repr=False)
     sender: str = "advisory@localhost"
     starttls: bool = True
+    #: "starttls", "implicit" or "none"; None: from ``starttls`` ("starttls" or "none").
+    tls: str | None = None
+
+    @property
+    def tls_mode(self) -> str:
+        """How the connection is secured: "starttls", "implicit" or "none"."""
+        return self.tls or ("starttls" if self.starttls else "none")
 
 
 @dataclass(frozen=True)
@@ -141,6 +154,17 @@ def _truthy(v) -> bool:
     return str(v).strip().lower() in {"1", "true", "yes", "on"}
 
 
+def _smtp_tls(env_value, file_value, starttls_value) -> str:
+    """``ADVISORY_SMTP_TLS`` / ``[smtp] tls``, else the older STARTTLS switch (false: "none")."""
+    if env_value or file_value:
+        where = "ADVISORY_SMTP_TLS" if env_value else "[smtp] tls"
+        value = str(env_value or file_value).strip().lower()
+        if value not in SMTP_TLS_PORTS:
+            raise InputError(f"{where}: {value!r} is not one of {', '.join(SMTP_TLS_PORTS)}", field=where)
+        return value
+    return "starttls" if _truthy(starttls_value) else "none"
+
+
 def _outbox_formats(env_value, file_value) -> tuple[str, ...]:
     if env_value:
         where, raw = "ADVISORY_OUTBOX_FORMATS", [v.strip() for v in str(env_value).split(",")]
@@ -177,13 +201,21 @@ def load(db_url: str | None = None) -> Settings:
     home = data_home()
     mail = f.get("smtp", {})
     env = os.environ
+    tls = _smtp_tls(env.get("ADVISORY_SMTP_TLS"), mail.get("tls"),
+                    env.get("ADVISORY_SMTP_STARTTLS", mail.get("starttls", True)))
+    port_text = env.get("ADVISORY_SMTP_PORT") or mail.get("port") or SMTP_TLS_PORTS[tls]
+    try:
+        port = int(port_text)
+    except (TypeError, ValueError):
+        raise InputError(f"{port_text!r} is not a port number", field="ADVISORY_SMTP_PORT") from None
     smtp = SmtpSettings(
         host=env.get("ADVISORY_SMTP_HOST") or mail.get("host"),
-        port=int(env.get("ADVISORY_SMTP_PORT") or mail.get("port", 587)),
+        port=port,
         user=env.get("ADVISORY_SMTP_USER") or mail.get("user"),
         password=env.get("ADVISORY_SMTP_PASSWORD") or mail.get("password"),
         sender=env.get("ADVISORY_SMTP_FROM") or mail.get("from", "advisory@localhost"),
-        starttls=_truthy(env.get("ADVISORY_SMTP_STARTTLS", mail.get("starttls", True))),
+        starttls=tls == "starttls",
+        tls=tls,
     )
     return Settings(
         db_url=db_url or env.get("ADVISORY_DB") or f.get("database", {}).get("url") or default_db_url(),

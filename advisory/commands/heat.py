@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+import datetime as dt
+from zoneinfo import ZoneInfo
+
 from advisory import heat_pipeline, reports
-from advisory.commands.night import _date
+from advisory.commands.night import _date, add_date_limits, check_date_window, settle_deliveries
 from advisory.store.db import Database
 
 
@@ -22,6 +25,7 @@ def register(sub) -> None:
     run.add_argument("--farm", help="only this farm")
     run.add_argument("--no-deliver", action="store_true", help="store the notes but deliver nothing")
     run.add_argument("--format", choices=("text", "markdown"), default="text", help="how to print the summary")
+    add_date_limits(run, "day")
     run.set_defaults(func=do_run)
     ver = hsub.add_parser(
         "verify", help="check a day's forecast highs against the observed high",
@@ -35,9 +39,15 @@ def register(sub) -> None:
 
 def do_run(args) -> int:
     db = Database(args.db)
-    print(heat_pipeline.heat_run_text(db, _date(args.date), farm=args.farm, names=args.block,
-                                      deliver=not args.no_deliver, fmt=args.format))
-    return 0
+    day = _date(args.date)
+    check_date_window(db, day, args.farm, args, what="day")
+    started = dt.datetime.now(dt.UTC)
+    day = day or started.astimezone(ZoneInfo(reports.farm_zone(db, args.farm))).date()
+    print(heat_pipeline.heat_run_text(db, day, farm=args.farm, names=args.block,
+                                      deliver=not args.no_deliver, fmt=args.format), flush=True)
+    if args.no_deliver:
+        return 0
+    return settle_deliveries(db, day, "heat", args.farm, args.block, started)
 
 
 def do_verify(args) -> int:

@@ -4,10 +4,18 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import sys
+from zoneinfo import ZoneInfo
 
 from advisory import reports
 from advisory.errors import InputError
 from advisory.store.db import Database
+
+#: A night or heat day further than this from today (the farm's local date) needs --allow-past or
+#: --allow-future [days].
+DATE_WINDOW_DAYS = 3
+#: Exit status of a run that finished with notices that reached a recipient on no channel.
+UNDELIVERED_EXIT = 3
 
 
 def _date(text: str | None, field: str = "--date") -> dt.date | None:
@@ -17,6 +25,66 @@ def _date(text: str | None, field: str = "--date") -> dt.date | None:
         return dt.date.fromisoformat(text)
     except ValueError:
         raise InputError(f"'{text}' is not a date like 2026-04-08", field=field) from None
+
+
+def add_date_limits(p, what: str = "night") -> None:
+    """``--allow-past`` and ``--allow-future`` for a command that runs a dated night or day."""
+    p.add_argument("--allow-past", action="store_true",
+                   help=f"run a {what} more than {DATE_WINDOW_DAYS} days before today (a rerun, a rehearsal)")
+    p.add_argument("--allow-future", action="store_true",
+                   help=f"run a {what} more than {DATE_WINDOW_DAYS} days after today")
+
+
+def check_date_window(db, day: dt.date | None, farm: str | None, args, *, field: str = "--date",
+                      what: str = "night", today: dt.date | None = None) -> None:
+    """Refuse a night or day far from today in the farm's zone unless asked for (nothing is written)."""
+    if day is None:
+        return
+    today = today or dt.datetime.now(ZoneInfo(reports.farm_zone(db, farm))).date()
+    off = (day - today).days
+    if off < -DATE_WINDOW_DAYS and not getattr(args, "allow_past", False):
+        raise InputError(f"{what} {day} is {-off} days before today ({today}, the farm's local date); "
+                         "add --allow-past to run it anyway", field=field)
+    if off > DATE_WINDOW_DAYS and not getattr(args, "allow_future", False):
+        raise InputError(f"{what} {day} is {off} days after today ({today}, the farm's local date); "
+                         "add --allow-future to run it anyway", field=field)
+
+
+def settle_deliveries(db, day: dt.date, kind: str, farm: str | None, names: list[str] | None,
+                      started: dt.datetime, out=None) -> int:
+    """After a run: retry at once what earlier runs of the day left failed, give up what is past its
+    deadline (the fallback recipients are told), then print one line per notice that reached a
+    recipient on no channel; the exit status (0, or :data:`UNDELIVERED_EXIT`)."""
+    from sqlalchemy import or_, select
+
+    from advisory import settings as settings_mod
+    from advisory.notices import deliver
+    from advisory.store.schema import Block, Farm, Notice
+
+    out = out or sys.stderr
+    cfg = settings_mod.load(db.url)
+    ids = reports.block_ids_for(db, farm, names)
+    with db.transaction() as s:
+        q = select(Notice.id).where(Notice.night == day, Notice.kind.like(f"{kind}%"))
+        if ids is not None:
+            farms = select(Block.farm_id).where(Block.id.in_(ids))
+            q = q.where(or_(Notice.block_id.in_(ids), Notice.block_id.is_(None) & Notice.farm_id.in_(farms)))
+        elif farm:
+            q = q.where(Notice.farm_id.in_(select(Farm.id).where(Farm.name == farm)))
+        notice_ids = list(s.scalars(q))
+        report = deliver.retry_failed(s, cfg, notice_ids=notice_ids, attempted_before=started)
+    if report.retried or report.expired:
+        print(report.text().splitlines()[0], file=out)
+    with db.transaction() as s:
+        left = deliver.undelivered(s, notice_ids)
+    for it in left:
+        print(it.line(), file=out)
+    if left:
+        print(f"{len({it.notice_id for it in left})} notice(s) did not reach every recipient; "
+              "`advisory notices list --undelivered` lists them, `advisory notices retry` retries "
+              "(`serve` retries by itself)", file=out)
+        return UNDELIVERED_EXIT
+    return 0
 
 
 def register(sub) -> None:
@@ -31,6 +99,7 @@ def register(sub) -> None:
                      help="an update through the night from the latest readings (notice only if it changed)")
     run.add_argument("--no-deliver", action="store_true", help="store the notices but deliver nothing")
     run.add_argument("--format", choices=("text", "markdown"), default="text", help="how to print the summary")
+    add_date_limits(run)
     run.set_defaults(func=do_run)
     ver = nsub.add_parser("verify", help="morning check: observed minimum against the forecast, then refit")
     ver.add_argument("--date", help="local date of the evening (default: last night)")
@@ -59,10 +128,16 @@ def register(sub) -> None:
 
 def do_run(args) -> int:
     db = Database(args.db)
-    out = reports.night_run(db, _date(args.date), farm=args.farm, names=args.block, update=args.update,
+    night = _date(args.date)
+    check_date_window(db, night, args.farm, args)
+    started = dt.datetime.now(dt.UTC)
+    night = night or reports._default_night(db, args.farm, started)
+    out = reports.night_run(db, night, farm=args.farm, names=args.block, update=args.update,
                             deliver=not args.no_deliver, fmt=args.format)
-    print(out)
-    return 0
+    print(out, flush=True)
+    if args.no_deliver:
+        return 0
+    return settle_deliveries(db, night, "frost", args.farm, args.block, started)
 
 
 def do_verify(args) -> int:

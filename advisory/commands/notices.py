@@ -16,7 +16,7 @@ from advisory.store.schema import Block, Delivery, Farm, Notice, Recipient
 
 
 def register(sub) -> None:
-    p = sub.add_parser("notices", help="notices: list, show, resend")
+    p = sub.add_parser("notices", help="notices: list, show, resend, retry what failed")
     nsub = p.add_subparsers(dest="notices_command", metavar="ACTION")
     nsub.required = True
     ls = nsub.add_parser("list", help="list notices with their delivery status")
@@ -24,16 +24,26 @@ def register(sub) -> None:
     ls.add_argument("--night", metavar="D", help="only this night or day (YYYY-MM-DD)")
     ls.add_argument("--block", metavar="B", help="only this block")
     ls.add_argument("--limit", type=int, default=200, help="at most this many (newest first; default 200)")
+    ls.add_argument("--undelivered", action="store_true",
+                    help="only notices that did not reach a recipient on any channel, each with why")
     ls.set_defaults(func=do_list)
     sh = nsub.add_parser("show", help="print one notice")
-    sh.add_argument("id", type=int, metavar="ID")
+    sh.add_argument("id", metavar="ID|KEY", help="the notice's id or key (as `notices list` shows them)")
     sh.add_argument("--format", choices=FORMATS, default="text",
                     help="text (default), markdown, html (chart embedded), json or sms")
     sh.set_defaults(func=do_show)
     rs = nsub.add_parser("resend", help="deliver a notice again, even where it was already delivered")
-    rs.add_argument("id", type=int, metavar="ID")
+    rs.add_argument("id", metavar="ID|KEY", help="the notice's id or key (as `notices list` shows them)")
     rs.add_argument("--channel", choices=deliver.CHANNELS, help="only this channel")
     rs.set_defaults(func=do_resend)
+    rt = nsub.add_parser("retry", help="retry the deliveries that failed (for cron; `serve` does it by itself)",
+                         description="Retry every failed delivery whose pause is over (never one delivered "
+                                     "already); give up those past their deadline (a frost notice: the "
+                                     "block's sunrise; a heat note: the end of its day) and send the farm's "
+                                     "fallback recipients an 'undelivered' note. Exit 0 when nothing is left "
+                                     "undelivered, 3 otherwise.")
+    rt.add_argument("--now", action="store_true", help="retry at once, without waiting for the pauses")
+    rt.set_defaults(func=do_retry)
 
 
 def _night(text: str | None) -> dt.date | None:
@@ -48,6 +58,8 @@ def _night(text: str | None) -> dt.date | None:
 def do_list(args) -> int:
     night = _night(args.night)
     db = Database(args.db)
+    if args.undelivered:
+        return _list_undelivered(db, args, night)
     with db.transaction() as s:
         blk = aliased(Block)
         q = (select(Notice, Farm.name, blk.name).join(Farm, Notice.farm_id == Farm.id)
@@ -83,10 +95,67 @@ def do_list(args) -> int:
     return 0
 
 
-def _get(s, notice_id: int) -> Notice:
-    n = s.get(Notice, notice_id)
+def _list_undelivered(db, args, night) -> int:
+    with db.transaction() as s:
+        ids = None
+        if args.farm or night or args.block:
+            blk = aliased(Block)
+            q = select(Notice.id).join(Farm, Notice.farm_id == Farm.id).outerjoin(blk, Notice.block_id == blk.id)
+            if args.farm:
+                q = q.where(Farm.name == args.farm)
+            if night:
+                q = q.where(Notice.night == night)
+            if args.block:
+                q = q.where(blk.name == args.block)
+            ids = list(s.scalars(q))
+        items = deliver.undelivered(s, ids)
+        fallback = {}
+        if items:
+            for d in s.scalars(select(Delivery).where(Delivery.notice_id.in_({it.notice_id for it in items}),
+                                                      Delivery.channel.like(f"{deliver.FALLBACK}%"))):
+                fallback.setdefault(d.notice_id, []).append(f"{d.channel[len(deliver.FALLBACK):]} {d.status}")
+    if not items:
+        print("every notice reached each of its recipients on at least one channel")
+        return 0
+    shown = items[:max(1, args.limit)]
+    for it in shown:
+        state = "given up" if it.status == deliver.EXPIRED else "retrying"
+        note = f"; undelivered note: {', '.join(fallback[it.notice_id])}" if it.notice_id in fallback else ""
+        print(f"{it.notice_id:>6}  {state:<8}  {it.line()}{note}")
+    if len(items) > len(shown):
+        print(f"... and {len(items) - len(shown)} more")
+    return 0
+
+
+def do_retry(args) -> int:
+    cfg = settings_mod.load(args.db)
+    db = Database(args.db)
+    with db.transaction() as s:
+        kw = {"attempted_before": dt.datetime.now(dt.UTC)} if args.now else {}
+        report = deliver.retry_failed(s, cfg, **kw)
+    print(report.text())
+    with db.transaction() as s:
+        left = deliver.undelivered(s)
+    for it in left:
+        if it.status != deliver.EXPIRED:
+            print(f"  {it.line()}")
+    return UNDELIVERED_EXIT if left else 0
+
+
+#: Exit status of a command that finished but left notices undelivered (see the README).
+UNDELIVERED_EXIT = 3
+
+
+def _get(s, ref) -> Notice:
+    text = str(ref).strip()
+    if text.isdigit():
+        n = s.get(Notice, int(text))
+        what = f"id {text}"
+    else:
+        n = s.scalar(select(Notice).where(Notice.key == text))
+        what = f"key {text!r}"
     if n is None:
-        raise NotFoundError(f"no notice with id {notice_id} (see `advisory notices list`)", field="ID")
+        raise NotFoundError(f"no notice with {what} (see `advisory notices list`)", field="ID")
     return n
 
 

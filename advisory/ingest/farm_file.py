@@ -13,6 +13,8 @@ File layout (see ``demo-farm/farm.toml`` for a full example)::
     name = "..."                 # unique
     timezone = "Area/City"       # IANA zone
     units = "metric"             # or "imperial" (°F in notices)
+    fallback = ["name", ...]     # optional: recipients told when a notice could not be delivered
+                                 # by its deadline (default: the recipients whose role names an agent)
     [farm.settings]              # optional: risk thresholds and margins
 
     [[stations]]
@@ -201,7 +203,9 @@ class _Checker:
             default=None, lo: float | None = None, hi: float | None = None):
         if key not in obj:
             if required:
-                self.fail(f"'{key}' is required", table, idx, None)
+                where = f"{table}[{idx}].{key}" if idx is not None else f"{table}.{key}"
+                raise InputError(f"'{key}' is required", file=self.path, line=self.index.find(table, idx, None),
+                                 field=where)
             return default
         value = obj[key]
         if kind is float:
@@ -260,7 +264,7 @@ class _Checker:
 
 
 KNOWN_KEYS = {
-    "farm": {"name", "timezone", "units", "settings"},
+    "farm": {"name", "timezone", "units", "settings", "fallback"},
     "stations": {"id", "name", "latitude", "longitude", "elevation_m", "temp_sensor_height_m",
                  "upper_sensor_height_m", "wind_sensor_height_m", "timezone", "inbox", "column_map"},
     "recipients": {"name", "role", "email", "webhook", "sms"},
@@ -373,6 +377,12 @@ def parse_farm_text(text: str, path: str = "<farm file>") -> FarmSpec:
                                                                required=False, default=""),
                                         channels=channels))
     recipient_names = {r.name for r in recipients}
+    fallback = chk.get(farm, "fallback", "farm", None, list, required=False)
+    if fallback is not None:
+        for r in fallback:
+            if r not in recipient_names:
+                chk.fail(f"recipient '{r}' is not defined in this file", "farm", None, "fallback")
+        farm_settings = {**farm_settings, "fallback_recipients": list(fallback)}
 
     blocks: list[BlockSpec] = []
     for i, bl in enumerate(doc.get("blocks", [])):
