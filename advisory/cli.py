@@ -1,8 +1,9 @@
 """The ``advisory`` command tree: parse, call, print.  No logic lives here.
 
 Each topic registers its sub-commands from a module in :mod:`advisory.commands`.
-User errors print one line and exit 2; internal faults exit 1 (set
-``ADVISORY_DEBUG=1`` for the traceback).
+User errors (and a database that is read-only or cannot be opened) print one
+line and exit 2; internal faults exit 1 (set ``ADVISORY_DEBUG=1`` for the
+traceback); a run that finished with notices undelivered exits 3.
 """
 
 from __future__ import annotations
@@ -59,12 +60,41 @@ def main(argv: list[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         return 0
-    except Exception as exc:  # an internal fault: say so plainly
-        if os.environ.get("ADVISORY_DEBUG"):
-            traceback.print_exc()
-        print(f"advisory: internal error: {type(exc).__name__}: {exc}\n"
-              "(set ADVISORY_DEBUG=1 for the traceback and please report it)", file=sys.stderr)
-        return 1
+    except Exception as exc:
+        msg = _database_problem(exc, getattr(args, "db", None))
+        if msg is None:
+            return _internal(exc)
+        print(f"advisory: error: {msg}", file=sys.stderr)
+        return 2
+
+
+def _internal(exc: BaseException) -> int:
+    """An internal fault: say so plainly."""
+    if os.environ.get("ADVISORY_DEBUG"):
+        traceback.print_exc()
+    print(f"advisory: internal error: {type(exc).__name__}: {exc}\n"
+          "(set ADVISORY_DEBUG=1 for the traceback and please report it)", file=sys.stderr)
+    return 1
+
+
+def _database_problem(exc: BaseException, url: str | None) -> str | None:
+    """A message for a database that cannot be written or opened (the user's to fix), else None."""
+    from sqlalchemy.exc import OperationalError
+
+    if not isinstance(exc, OperationalError):
+        return None
+    text = str(getattr(exc, "orig", exc)).lower()
+    from advisory.store.db import sqlite_file
+
+    path = sqlite_file(url) if url else None
+    where = path or "the database"
+    if "readonly" in text or "read-only" in text:
+        return (f"the database {where} is read-only (the file, its folder or the file system): "
+                "make it writable or point --db / ADVISORY_DB elsewhere")
+    if "unable to open database file" in text:
+        return (f"cannot open the database {where} (missing folder, or no permission): "
+                "check the path and its permissions")
+    return None
 
 
 if __name__ == "__main__":

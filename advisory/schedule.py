@@ -267,9 +267,24 @@ def reconcile(db, scheduler, now: dt.datetime, settings: PlannerSettings) -> dic
     return counts
 
 
+def retry_deliveries(db, now: dt.datetime, echo=print):
+    """One pass of the delivery queue (:func:`advisory.notices.deliver.retry_failed`), in one transaction."""
+    from advisory import settings as settings_mod
+    from advisory.notices import deliver
+
+    with db.transaction() as s:
+        report = deliver.retry_failed(s, settings_mod.load(db.url), now=now)
+    if report.retried or report.expired:
+        echo(f"{now:%Y-%m-%d %H:%M:%S}Z {report.text()}")
+    return report
+
+
 def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None = None,
-          stop_after_s: float | None = None, clock=None, echo=print) -> None:
+          stop_after_s: float | None = None, clock=None, echo=print, retry_every_s: float = 60.0) -> None:
     """The long-running scheduler; stops cleanly on SIGTERM or SIGINT.
+
+    Besides the runs, it works the queue of failed deliveries every ``retry_every_s`` seconds
+    (:func:`retry_deliveries`).
 
     Parameters
     ----------
@@ -315,9 +330,19 @@ def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None =
     if threading.current_thread() is threading.main_thread():
         for sig in previous:
             signal.signal(sig, _stop)
+    def retry_tick():
+        try:
+            retry_deliveries(db, now_fn(), echo)
+        except Exception:  # keep serving; the next tick tries again
+            log.exception("delivery retry failed")
+
     scheduler.start()
     scheduler.add_job(planner_tick, "interval", minutes=planner_every_min, id="planner",
                       next_run_time=dt.datetime.now(dt.UTC), jobstore="default", executor="planner")
+    # in the runs' own thread: a retry never overlaps a run (a run's notices are delivered by the run)
+    scheduler.add_job(retry_tick, "interval", seconds=retry_every_s, id="retry",
+                      next_run_time=dt.datetime.now(dt.UTC) + dt.timedelta(seconds=min(retry_every_s, 5)),
+                      jobstore="default", executor="default")
     echo(f"serving {db.url.split('///')[-1]}: planner every {planner_every_min} min; Ctrl-C to stop")
     try:
         stop.wait(timeout=stop_after_s)
@@ -373,6 +398,19 @@ def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: Pla
             done.set()
 
     scheduler.add_listener(listener, EVENT_JOB_EXECUTED | EVENT_JOB_ERROR)
+    stopped: list[int] = []
+    previous = {sig: signal.getsignal(sig) for sig in (signal.SIGTERM, signal.SIGINT)}
+
+    def _stop(signum, _frame):
+        # the running job finishes (stored and delivered); the runs not started are dropped
+        echo(f"received signal {signum}: stopping after the running run")
+        stopped.append(signum)
+        done.set()
+
+    main_thread = threading.current_thread() is threading.main_thread()
+    if main_thread:
+        for sig in previous:
+            signal.signal(sig, _stop)
     scheduler.start(paused=True)
     for r in runs:
         wall = wall0 + dt.timedelta(seconds=(r.run_at - first).total_seconds() / 3600 * seconds_per_hour)
@@ -383,7 +421,25 @@ def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: Pla
              f"-> in {(wall - wall0).total_seconds() + 1:.0f} s")
     scheduler.resume()
     total = (runs[-1].run_at - first).total_seconds() / 3600 * seconds_per_hour + 60
-    done.wait(timeout=total)
-    scheduler.shutdown(wait=True)
-    echo(f"night {night}: {len(executed)} of {len(runs)} runs executed")
+    try:
+        done.wait(timeout=total)
+        if stopped:
+            for job in scheduler.get_jobs():
+                with _quiet():
+                    job.remove()
+        scheduler.shutdown(wait=True)
+    finally:
+        if main_thread:
+            for sig, handler in previous.items():
+                signal.signal(sig, handler)
+    echo(f"night {night}: {len(executed)} of {len(runs)} runs executed"
+         + (" (stopped by a signal; run the rehearsal again for the rest)" if stopped else ""))
     return len(executed)
+
+
+class _quiet:
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return True

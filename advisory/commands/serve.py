@@ -6,6 +6,7 @@ import datetime as dt
 import logging
 
 from advisory import schedule
+from advisory.commands.night import add_date_limits, check_date_window
 from advisory.errors import InputError
 from advisory.store.db import Database
 
@@ -23,6 +24,9 @@ def register(sub) -> None:
     p.add_argument("--seconds-per-hour", type=float, default=4.0, metavar="S",
                    help="with --rehearse: real seconds per hour of the night (default 4)")
     p.add_argument("--stop-after", type=float, metavar="SECONDS", help="stop by itself after this long")
+    p.add_argument("--retry-every", type=float, default=60.0, metavar="SECONDS",
+                   help="how often failed deliveries are retried (default 60 s; each waits its own pause)")
+    add_date_limits(p, "rehearsal night")
     p.set_defaults(func=run)
 
 
@@ -37,8 +41,12 @@ def run(args) -> int:
             raise InputError(f"'{args.rehearse}' is not a date like 2026-04-08", field="--rehearse") from None
         if args.seconds_per_hour <= 0:
             raise InputError("must be positive", field="--seconds-per-hour")
+        check_date_window(db, night, None, args, field="--rehearse", what="night")
         settings.kinds = (schedule.EVENING, schedule.UPDATE, schedule.MORNING)
         schedule.rehearse(db, night, seconds_per_hour=args.seconds_per_hour, settings=settings)
         return 0
-    schedule.serve(db, planner_every_min=args.planner_every_min, settings=settings, stop_after_s=args.stop_after)
+    if args.retry_every <= 0:
+        raise InputError("must be positive", field="--retry-every")
+    schedule.serve(db, planner_every_min=args.planner_every_min, settings=settings, stop_after_s=args.stop_after,
+                   retry_every_s=args.retry_every)
     return 0

@@ -71,8 +71,12 @@ thresholds settable per farm or block (:class:`FrostSettings`).
 Protection plans
 ----------------
 Start and stop times come from the central curve (shifted to the median
-minimum); "ready by" times from the cold curve (shifted to the 10th-percentile
-minimum).  Crossings are interpolated linearly between steps, then starts are
+minimum); "ready by" times from the cold curve.  The cold curve is the one the
+notice's chart draws as the lower edge of its 8-in-10 band: it leaves the
+central curve at the first forecast hour (the latest observation) and fans out
+in proportion to the fall already made, reaching the 10th-percentile minimum at
+the time of the minimum (``cold = central + (p10 - p50) x share of the fall``;
+after the minimum the whole difference).  Hours already observed are not moved.  Crossings are interpolated linearly between steps, then starts are
 rounded *down* and stops *up* to ``round_minutes``.
 
 * Wind machine: worthwhile when the inversion is at least
@@ -93,7 +97,9 @@ rounded *down* and stops *up* to ``round_minutes``.
   area x hours when a rate is given.
 * No equipment: a plan of method ``none`` that states the risk.
 
-"Critical" here is T10 of the stage (where damage begins).
+"Critical" here is T10 of the stage (where damage begins).  The *critical
+time* is when the central curve reaches T10 itself (None when it does not);
+the start time is earlier, when the air reaches T10 plus the start margin.
 
 References
 ----------
@@ -593,7 +599,9 @@ class BlockRisk:
     p_min_below_t10, p_min_below_t90 : float
         P(night minimum <= T10), P(night minimum <= T90).
     critical_time_utc : datetime or None
-        When the central curve first reaches critical + start margin.
+        When the central curve first reaches the critical temperature (T10)
+        itself; None when the central forecast stays above it.  (Protection
+        starts earlier, at critical + start margin: see the plans.)
     """
 
     block: str
@@ -741,9 +749,12 @@ RATE_TABLE_MM_H = _RATE_IN_H * 25.4
 def required_sprinkler_rate_mm_h(min_temp_c, wind_speed_ms):
     """Over-tree sprinkler application rate needed for a minimum temperature and wind.
 
-    Conservative table look-up: the table row at or colder than the minimum
-    and the wind class at or above the wind.  Minima warmer than the warmest
-    row use that row.
+    Bilinear interpolation in the table: between its temperature rows and
+    between its wind columns (each column taken at its class's upper wind
+    bound), so the need changes smoothly with the forecast and equals the table
+    at every node.  Minima warmer than the warmest row use that row; winds
+    lighter than the first class bound use the first column.  The table was
+    built for citrus; notices say so where they use it.
 
     Parameters
     ----------
@@ -765,13 +776,25 @@ def required_sprinkler_rate_mm_h(min_temp_c, wind_speed_ms):
     t, u = np.broadcast_arrays(np.asarray(min_temp_c, float), np.asarray(wind_speed_ms, float))
     shape = t.shape
     tf, uf = t.reshape(-1), u.reshape(-1)
-    # Row: first row (warm -> cold) at or below the minimum; column: first class at or above the wind.
-    row = (RATE_TABLE_TEMPS_C[None, :] > tf[:, None] + 1e-6).sum(axis=1)
-    col = (RATE_TABLE_WIND_UPPER_MS[None, :] < uf[:, None] - 1e-6).sum(axis=1)
-    nr, nc = RATE_TABLE_MM_H.shape
-    ok = (row < nr) & (col < nc) & np.isfinite(tf) & np.isfinite(uf)
-    out = np.where(ok, RATE_TABLE_MM_H[np.minimum(row, nr - 1), np.minimum(col, nc - 1)], np.nan)
+    temps = RATE_TABLE_TEMPS_C[::-1]           # rising, for np.interp
+    table = RATE_TABLE_MM_H[::-1]              # rows in the same order
+    winds = RATE_TABLE_WIND_UPPER_MS
+    ok = np.isfinite(tf) & np.isfinite(uf) & (tf >= temps[0] - 1e-6) & (uf <= winds[-1] + 1e-6)
+    tc = np.clip(np.nan_to_num(tf, nan=temps[-1]), temps[0], temps[-1])
+    uc = np.clip(np.nan_to_num(uf, nan=winds[0]), winds[0], winds[-1])
+    # interpolate each wind column in temperature, then across the columns in wind
+    by_col = np.stack([np.interp(tc, temps, table[:, k]) for k in range(table.shape[1])], axis=1)  # (N, nc)
+    hi = np.clip(np.searchsorted(winds, uc, side="left"), 1, len(winds) - 1)
+    lo = hi - 1
+    w = (uc - winds[lo]) / (winds[hi] - winds[lo])
+    rows = np.arange(len(uc))
+    out = by_col[rows, lo] + np.clip(w, 0.0, 1.0) * (by_col[rows, hi] - by_col[rows, lo])
+    out = np.where(ok, out, np.nan)
     return float(out[0]) if shape == () else out.reshape(shape)
+
+
+#: Where the sprinkler rate table comes from, for the notices (the table was made for citrus).
+RATE_TABLE_ORIGIN = "rate table built for citrus (Gerber & Harrison 1964), used here for lack of one for this crop"
 
 
 def _crossing_down(times_ns, series, thr, valid):
@@ -957,13 +980,48 @@ def _num(params: Mapping, key: str, lo: float = 0.0, hi: float = 1e9) -> float |
     return f
 
 
-def _scenario(curves: NightCurves, shift: np.ndarray, rows: np.ndarray):
-    """Air and wet-bulb curves shifted by ``shift`` (n,).
+def cold_fan_weight(air_temp_c) -> np.ndarray:
+    """Share of the night's fall reached at each step, the weight of the cold-case shift.
+
+    0 at each row's first valid value (the latest observation), rising with the
+    fall already made (``(first - air) / (first - minimum)``) to 1 at the
+    minimum, and 1 from the minimum on.  A curve that does not fall gets 1
+    throughout (the whole shift).  The 10th-percentile curve of the forecast
+    (the lower edge of the chart's band) is ``central + (p10 - p50) x weight``.
+
+    Parameters
+    ----------
+    air_temp_c : ndarray, shape (n, m)
+        Central air-temperature curves [°C], NaN outside each block's night.
+
+    Returns
+    -------
+    weight : ndarray, shape (n, m)
+        In [0, 1]; NaN where the curve is NaN.
+    """
+    air = np.atleast_2d(np.asarray(air_temp_c, float))
+    valid = np.isfinite(air)
+    n, m = air.shape
+    rows = np.arange(n)
+    first = air[rows, np.argmax(valid, axis=1)]
+    imin = np.nanargmin(np.where(valid, air, np.inf), axis=1)
+    low = air[rows, imin]
+    fall = first - low
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = np.where(fall[:, None] > 1e-9, (first[:, None] - air) / np.where(fall > 1e-9, fall, 1.0)[:, None],
+                         1.0)
+    share = np.clip(share, 0.0, 1.0)
+    share = np.where(np.arange(m)[None, :] >= imin[:, None], 1.0, share)
+    return np.where(valid, share, np.nan)
+
+
+def _scenario(curves: NightCurves, shift: np.ndarray, rows: np.ndarray, weight: np.ndarray | None = None):
+    """Air and wet-bulb curves shifted by ``shift`` (n,), times ``weight`` (n, m) when given.
 
     The wet bulb (the costly part) is computed only for ``rows`` (bool, n) -
     the blocks with sprinklers; elsewhere it is NaN and unused.
     """
-    air = curves.air_temp_c + shift[:, None]
+    air = curves.air_temp_c + (shift[:, None] if weight is None else shift[:, None] * weight)
     td = np.minimum(curves.dew_point_c, air)
     td = np.where(np.isfinite(td), td, air - 3.0)  # missing dew point: assume a 3 K depression
     wb = np.full_like(air, np.nan)
@@ -1028,11 +1086,12 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
     kinds_per_block = [_equipment_by_kind(b.equipment) for b in blocks]
     has_spr = np.array([bool({"overtree_sprinkler", "undertree_sprinkler"} & k.keys()) for k in kinds_per_block])
     air_c, _, wb_c = _scenario(curves, forecast.p50_c - dmg.curve_min_c, has_spr)
-    air_k, _, wb_k = _scenario(curves, forecast.p10_c - dmg.curve_min_c, has_spr)
+    air_k, _, wb_k = _scenario(curves, forecast.p10_c - dmg.curve_min_c, has_spr,
+                               weight=cold_fan_weight(curves.air_temp_c))
     hours_t10 = _hours_at_or_below(times_ns, air_c, crit)
     p_min_t10 = forecast.cdf_at(t10)
     p_min_t90 = forecast.cdf_at(t90)
-    crit_time, _, _ = _crossing_down(times_ns, air_c, crit + margin, valid)
+    crit_time, _, _ = _crossing_down(times_ns, air_c, crit, valid)
     hours_t10_k = _hours_at_or_below(times_ns, air_k, crit)
     imin = np.nanargmin(np.where(valid, curves.air_temp_c, np.inf), axis=1)
 
@@ -1204,16 +1263,17 @@ def _method_plan(method, params, i, b, st, fams, col: _Columns) -> MethodPlan:
                 keys.insert(0, "sprinkler_rate_short")
             elif rate is None:
                 usable = False
-                notes.append(f"Needed rate about {req_rate:.1f} mm/h; check the system can deliver it.")
+                notes.append(f"Needed rate about {req_rate:.1f} mm/h ({RATE_TABLE_ORIGIN}); check the "
+                             "system can deliver it.")
             elif rate + 1e-9 < req_rate:
                 usable = False
-                notes.append(f"System rate {rate:g} mm/h is below the {req_rate:.1f} mm/h needed for "
-                             f"wind up to {wind_max:.1f} m/s and a minimum near {_c(p50_c)} °C; "
-                             "too little water can freeze buds harder than none.")
+                notes.append(f"System {rate:g} mm/h, needs {req_rate:.1f} mm/h: {_share(rate, req_rate)} of the "
+                             f"need for wind up to {wind_max:.1f} m/s and a minimum near {_c(p50_c)} °C "
+                             f"({RATE_TABLE_ORIGIN}); too little water can freeze buds harder than none.")
                 keys.insert(0, "sprinkler_rate_short")
             else:
-                notes.append(f"System rate {rate:g} mm/h meets the {req_rate:.1f} mm/h needed for the "
-                             f"forecast minimum near {_c(p50_c)} °C.")
+                notes.append(f"System {rate:g} mm/h, needs {req_rate:.1f} mm/h: {_share(rate, req_rate)} of the "
+                             f"need for the forecast minimum near {_c(p50_c)} °C ({RATE_TABLE_ORIGIN}).")
                 cold_need = float(req_rate_cold)
                 if not np.isfinite(cold_need) or rate + 1e-9 < cold_need:
                     need_txt = "more than the guidance covers" if not np.isfinite(cold_need) \
@@ -1333,6 +1393,11 @@ _QUANTITY_KEYS = {
     "water_l_per_ha": "water_l_per_ha", "fuel_l": "fuel_l", "fuel_l_cold": "fuel_l_cold",
     "inversion_c": "inversion_c",
 }
+
+
+def _share(have: float, need: float) -> str:
+    """How much of a need a system covers, e.g. "93 %" (floored, so "100 %" means the need is met)."""
+    return f"{math.floor(100.0 * have / need + 1e-9):.0f} %" if need > 0 else "all"
 
 
 def _c(value_c: float) -> str:

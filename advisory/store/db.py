@@ -23,11 +23,15 @@ MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
 
 
 def _sqlite_pragmas(dbapi_conn, _record):
+    import sqlite3
+
     cur = dbapi_conn.cursor()
     cur.execute("PRAGMA foreign_keys=ON")
-    cur.execute("PRAGMA journal_mode=WAL")
-    cur.execute("PRAGMA synchronous=NORMAL")
     cur.execute("PRAGMA busy_timeout=30000")
+    # a read-only file keeps its journal; writing to it then fails with a clear message (advisory.cli)
+    with contextlib.suppress(sqlite3.OperationalError):
+        cur.execute("PRAGMA journal_mode=WAL")
+    cur.execute("PRAGMA synchronous=NORMAL")
     cur.close()
 
 
@@ -36,7 +40,12 @@ def sqlite_file(url: str) -> str | None:
     u = make_url(url)
     if u.get_backend_name() != "sqlite" or not u.database or u.database == ":memory:":
         return None
-    return str(Path(u.database).expanduser())
+    name = u.database
+    if name.startswith("file:") and str(u.query.get("uri", "")).lower() == "true":  # a URI filename
+        name = name[len("file:"):].split("?", 1)[0]
+        if not name or name == ":memory:" or u.query.get("mode") == "memory":
+            return None
+    return str(Path(name).expanduser())
 
 
 def checkpoint(path: str) -> int:
@@ -54,14 +63,31 @@ def checkpoint(path: str) -> int:
         con.close()
 
 
-def make_engine(url: str) -> Engine:
-    """Create an engine; for a SQLite file, create its folder and set the pragmas."""
+class MissingDatabaseError(SchemaVersionError):
+    """A SQLite database file that does not exist where a command reads it (exit 2, like a stale schema:
+    the fix is ``advisory db upgrade`` or the right ``--db``)."""
+
+
+def require_file(url: str) -> None:
+    """Refuse a SQLite URL whose file does not exist, creating nothing (neither file nor folder)."""
+    path = sqlite_file(url)
+    if path is not None and not Path(path).exists():
+        raise MissingDatabaseError(
+            f"no database at {path}: check --db or ADVISORY_DB, or create it with `advisory db upgrade`")
+
+
+def make_engine(url: str, *, create: bool = False) -> Engine:
+    """Create an engine; for a SQLite file, set the pragmas (and with ``create``, make its folder).
+
+    Without ``create`` nothing is made on disk here; SQLite itself makes the file on first
+    connection, so a reader checks :func:`require_file` first.
+    """
     try:
         u = make_url(url)
     except Exception:
         raise InputError(f"not a database URL: {url!r}", field="--db") from None
     if u.get_backend_name() == "sqlite":
-        if u.database and u.database != ":memory:":
+        if create and u.database and u.database != ":memory:":
             Path(u.database).expanduser().parent.mkdir(parents=True, exist_ok=True)
         engine = create_engine(u, connect_args={"timeout": 30}, json_serializer=jsoncodec.dumps,
                                json_deserializer=jsoncodec.loads)
@@ -99,7 +125,7 @@ def upgrade(url: str, revision: str = "head", engine: Engine | None = None) -> t
     """Apply migrations up to ``revision``; returns (before, after) revisions."""
     from alembic import command
 
-    engine = engine or make_engine(url)
+    engine = engine or make_engine(url, create=True)
     before = current_revision(engine)
     command.upgrade(alembic_config(url, engine), revision)
     return before, current_revision(engine)
@@ -149,6 +175,7 @@ class Database:
 
     def __init__(self, url: str, *, check: bool = True):
         self.url = url
+        require_file(url)
         self.engine = make_engine(url)
         if check:
             check_schema(self.engine)

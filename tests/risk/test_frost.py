@@ -286,13 +286,20 @@ def test_sprinkler_supply_too_small_is_not_usable():
 
 def test_required_rate_table_lookup():
     r = fr.required_sprinkler_rate_mm_h
-    # Table row 24 F / class 2-4 mph: 0.16 in/h.
-    assert r((24 - 32) / 1.8, 3 * 0.44704) == pytest.approx(0.16 * 25.4)
+    # Table row 24 F / class 2-4 mph: 0.16 in/h at the class's upper bound (a node of the table);
+    # at 3 mph it lies between the 1 mph (0.10) and 4 mph (0.16) columns.
+    assert r((24 - 32) / 1.8, 4 * 0.44704) == pytest.approx(0.16 * 25.4)
+    assert r((24 - 32) / 1.8, 3 * 0.44704) == pytest.approx((0.10 + 2.0 / 3.0 * 0.06) * 25.4)
     # Warmer than the warmest row uses that row; calm air uses the first class.
     assert r(0.0, 0.0) == pytest.approx(0.10 * 25.4)
-    # Conservative: between rows -> the colder row; between classes -> the windier class.
-    assert r(-3.0, 0.3) == pytest.approx(0.10 * 25.4)  # -3.0 C lies between 27 F and 26 F rows
-    assert r(-4.0, 2.0) == pytest.approx(0.30 * 25.4)
+    # Between nodes the table is interpolated (it used to jump to the colder row and the windier class,
+    # which made cliffs: -4.44 °C needed 4.1 mm/h and -4.5 °C 6.1 mm/h at 0.9 m/s).
+    assert r(-3.0, 0.3) == pytest.approx(0.10 * 25.4)  # -3.0 C lies between 27 F and 26 F rows, both 0.10
+    f, mph = -4.0 * 1.8 + 32.0, 2.0 / 0.44704       # 24.8 F, 4.47 mph
+    col_4 = 0.16 + (f - 24.0) / 2.0 * (0.10 - 0.16)   # 2-4 mph class, between the 24 F and 26 F rows
+    col_8 = 0.30 + (f - 24.0) / 2.0 * (0.14 - 0.30)   # 5-8 mph class
+    assert r(-4.0, 2.0) == pytest.approx((col_4 + (mph - 4.0) / 4.0 * (col_8 - col_4)) * 25.4)
+    assert abs(r(-4.44, 0.9) - r(-4.5, 0.9)) < 0.1    # no cliff
     assert math.isnan(r(-15.0, 1.0)) and math.isnan(r(-2.0, 12.0))
     grid = r(np.linspace(-11, 0, 23)[:, None], np.linspace(0, 9, 19)[None, :])
     finite = np.nan_to_num(grid, nan=1e9)
@@ -432,7 +439,7 @@ def test_assessment_bridge_round_trip():
         assert p.water_m3 == q.water_m3 and p.start_wet_bulb_c == q.start_wet_bulb_c
     steps = fields["plan"]
     assert steps[0].start_rule.startswith("when the wet bulb falls to")
-    assert r.critical_time_utc is not None and r.critical_time_utc > T0.to_pydatetime()
+    assert r.critical_time_utc is None  # the central low (-2.0 °C) stays above T10 (-2.2 °C)
     assert 0 <= r.p_min_below_t10 <= 1
 
 
@@ -448,3 +455,59 @@ def test_already_cold_at_start_of_curve():
     r = fr.plan_night([block(equipment=[{"kind": "heater"}])], c, fc(-4.0, -3.0, -2.0))[0]
     p = r.plans[0]
     assert p.start_utc == T0.to_pydatetime() and any("start now" in n for n in p.notes)
+
+
+# ------------------------------------------------------------------------------------------------
+# Critical time, the cold case, sprinkler need
+# ------------------------------------------------------------------------------------------------
+
+def _hour_of(t):
+    return (pd.Timestamp(t) - T0) / pd.Timedelta(hours=1)
+
+
+def test_critical_time_is_when_the_air_reaches_t10_not_the_start_time():
+    c = night(t_eve=6.0, t_min=-3.5, min_hour=10)
+    r = fr.plan_night([block(stage="full bloom", equipment=[{"kind": "heater"}])], c, fc(-6.0, -3.5, -1.0))[0]
+    air = c.air_temp_c[0]
+    h = np.arange(len(air), dtype=float)
+    cross_t10 = np.interp(-r.t10_c, -air[:11], h[:11])             # falling branch, inverted
+    cross_start = np.interp(-(r.t10_c + 1.0), -air[:11], h[:11])   # T10 + the 1 °C start margin
+    assert _hour_of(r.critical_time_utc) == pytest.approx(cross_t10, abs=0.02)
+    heater = _only(r, "heater")
+    assert _hour_of(heater.start_utc) <= cross_start + 1e-9 < cross_t10
+    assert _hour_of(r.critical_time_utc) - _hour_of(heater.start_utc) > 0.5
+
+
+def test_critical_time_none_when_the_central_curve_stays_above_t10():
+    r = fr.plan_night([block(equipment=[{"kind": "heater"}])], night(t_min=-1.9), fc(-4.0, -1.9, -0.5))[0]
+    assert r.critical_time_utc is None
+    assert _only(r, "heater").start_utc is not None  # -1.9 is below T10 + margin: the start still comes
+
+
+def test_cold_case_leaves_the_observed_evening_alone_and_matches_the_band():
+    c = night(t_eve=6.0, t_min=-2.0, min_hour=10)
+    w = fr.cold_fan_weight(c.air_temp_c)
+    assert w[0, 0] == 0.0 and np.all(w[0, 10:] == 1.0) and np.all(np.diff(w[0, :11]) >= 0)
+    # the chart's lower band edge (the forecast's 10th-percentile curve) runs from the evening reading
+    # to the p10 minimum along the same square-root shape
+    p10, p50 = -5.0, -2.0
+    h = np.arange(11, dtype=float)
+    band = 6.0 - (6.0 - p10) * np.sqrt(h / 10)
+    np.testing.assert_allclose(c.air_temp_c[0, :11] + (p10 - p50) * w[0, :11], band, atol=1e-9)
+    r = fr.plan_night([block(equipment=[{"kind": "heater"}])], c, fc(p10, p50, 0.0))[0]
+    ready = _hour_of(_only(r, "heater").ready_by_utc)
+    start_c = r.critical_c + 1.0
+    cross = np.interp(-start_c, -band, h)
+    assert cross - 0.25 - 1e-9 <= ready <= cross + 1e-9  # rounded down to 15 min
+
+
+def test_sprinkler_note_says_how_close_the_system_is_and_where_the_table_comes_from():
+    c = night(dew=-6.0, wind=0.9)
+    eq = [{"kind": "overtree_sprinkler", "rate_mm_h": 3.0}]
+    r = fr.plan_night([block(equipment=eq)], c, fc(-7.0, -4.5, -2.0))[0]
+    p = _only(r, "overtree_sprinkler")
+    need = fr.required_sprinkler_rate_mm_h(-4.5, 0.9)
+    assert p.required_rate_mm_h == pytest.approx(need)
+    note = next(n for n in p.notes if n.startswith("System 3 mm/h, needs"))
+    assert f"needs {need:.1f} mm/h: {math.floor(100 * 3.0 / need):.0f} % of the need" in note
+    assert "built for citrus" in note
