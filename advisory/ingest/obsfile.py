@@ -78,6 +78,7 @@ from __future__ import annotations
 
 import codecs
 import csv
+import datetime as dt
 import hashlib
 import io
 from dataclasses import dataclass, field, replace
@@ -291,9 +292,17 @@ def read_observation_file(path: str | Path, station: Any, **options: Any) -> Par
     return parse_observation_bytes(raw, station, file_name=name, **options)
 
 
+#: A reading this far ahead of the computer's clock is refused (more than clock skew) [s].
+FUTURE_SKEW_S = 10 * 60
+
+
 def parse_observation_bytes(raw: bytes, station: Any, *, file_name: str = "<data>",
-                            **options: Any) -> ParsedObservations:
-    """Like :func:`read_observation_file`, from the file's bytes."""
+                            now: dt.datetime | None = None, **options: Any) -> ParsedObservations:
+    """Like :func:`read_observation_file`, from the file's bytes.
+
+    ``now`` is the clock against which readings from the future are refused (default: this
+    computer's clock; a reading more than :data:`FUTURE_SKEW_S` ahead is refused with its line).
+    """
     st = station_info(station)
     name = file_name
     digest = hashlib.sha256(raw).hexdigest()
@@ -402,6 +411,14 @@ def parse_observation_bytes(raw: bytes, station: Any, *, file_name: str = "<data
                          line=header_line)
     t_s = np.floor_divide(t_ns[sel], 1_000_000_000)
     lines = sel + first_data_line
+    clock = (now or dt.datetime.now(dt.UTC)).timestamp()
+    ahead = np.flatnonzero(t_s > clock + FUTURE_SKEW_S)
+    if len(ahead):
+        when = dict(zip(lines[ahead[:MAX_BAD_LINES]].tolist(), t_s[ahead[:MAX_BAD_LINES]].tolist(), strict=False))
+        problems.add(lines[ahead], lambda ln: (
+            f"time {fmt_utc(when[ln])} is in the future (more than {FUTURE_SKEW_S // 60} min ahead of this "
+            "computer's clock): check the logger's clock and date"))
+        problems.raise_if_any()
     naive_rows = ~times.aware[sel]
     stored_vals: dict[str, np.ndarray] = {}
     for stored, (_i, _h, conv) in value_cols.items():
@@ -477,7 +494,8 @@ def _split_directives(raw: bytes, file: str) -> tuple[int, int, list[tuple[int, 
 
 def _check_structure(body: bytes, opts: ReadOptions, n_fields: int, header_line: int,
                      problems: Problems) -> None:
-    """Lines with more fields than the header, or broken quoting (csv module; quoted files only)."""
+    """Lines with more or fewer fields than the header (a blank line is skipped), or broken quoting
+    (csv module; quoted files only)."""
     text = body.decode(opts.encoding, errors="replace")
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=opts.delimiter, quotechar='"', strict=True,
                         skipinitialspace=True)
@@ -490,14 +508,16 @@ def _check_structure(body: bytes, opts: ReadOptions, n_fields: int, header_line:
         for fields in reader:
             line = start
             start = header_line + reader.line_num
-            if len(fields) > n_fields:
+            if len(fields) > n_fields or (0 < len(fields) < n_fields and any(f.strip() for f in fields)):
                 bad.append(line)
                 counts[line] = len(fields)
     except csv.Error as exc:
         why = str(exc)
         problems.add(np.array([start]), lambda ln: f"broken quoting ({why})")
     if bad:
-        problems.add(np.array(bad), lambda ln: f"{counts[ln]} fields, the header has {n_fields}")
+        problems.add(np.array(bad), lambda ln: f"{counts[ln]} field{'' if counts[ln] == 1 else 's'}, the header "
+                                                f"has {n_fields}" + (" (a cut or incomplete line)"
+                                                                     if counts[ln] < n_fields else ""))
 
 
 def _raise_structure_error(body: bytes, opts: ReadOptions, n_fields: int, header_line: int, name: str,
@@ -528,6 +548,15 @@ def _read_columns(body: bytes, opts: ReadOptions, read_kw: dict, names: list[str
                               scan.nfields[too_many[:MAX_BAD_LINES]].tolist(), strict=False))
             problems.add(too_many + first_data_line,
                          lambda ln: f"{counts[ln]} fields, the header has {n_fields}")
+        short = np.flatnonzero((scan.nfields > 0) & (scan.nfields < n_fields))
+        if len(short):  # a cut line (a blank line is only skipped); few such lines: read them as text
+            texts = body.split(b"\n")[1:]
+            cut = [k for k in short.tolist() if k < len(texts) and texts[k].strip(b" \t\r")]
+            if cut:
+                got = {k + first_data_line: int(scan.nfields[k]) for k in cut[:MAX_BAD_LINES]}
+                problems.add(np.array(cut) + first_data_line, lambda ln: (
+                    f"{got.get(ln, '?')} field{'' if got.get(ln) == 1 else 's'}, the header has {n_fields} "
+                    "(a cut or incomplete line)"))
     else:
         # pandas drops extra fields of some lines silently (index_col=False), so count them first.
         _check_structure(body, opts, n_fields, header_line, problems)

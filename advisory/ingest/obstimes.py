@@ -51,29 +51,40 @@ def parse_utc_offset(text: str, *, file: str | None = None, line: int | None = N
 
 @dataclass
 class Problems:
-    """Bad lines collected while reading, reported together."""
+    """Bad lines collected while reading, reported together (counted as lines: a line with
+    two bad fields is one bad line)."""
 
     file: str
     items: list[tuple[int, str]] = field(default_factory=list)
-    total: int = 0
+    _lines: list[np.ndarray] = field(default_factory=list, repr=False)
+
+    @property
+    def total(self) -> int:
+        """How many distinct lines are bad."""
+        if not self._lines:
+            return 0
+        return int(len(np.unique(np.concatenate(self._lines))))
 
     def add(self, lines: np.ndarray, describe) -> None:
-        lines = np.asarray(lines)
-        self.total += len(lines)
+        lines = np.asarray(lines, dtype=np.int64).ravel()
+        self._lines.append(lines)
         for ln in lines[:MAX_BAD_LINES]:
             self.items.append((int(ln), describe(int(ln))))
 
     def raise_if_any(self, what: str = "cannot be read") -> None:
-        if not self.total:
+        total = self.total
+        if not total:
             return
-        self.items.sort()
-        shown = self.items[:MAX_BAD_LINES]
-        if self.total == 1:  # "file, line N: what is wrong"
+        merged: dict[int, list[str]] = {}
+        for ln, msg in sorted(self.items, key=lambda x: x[0]):
+            if msg not in merged.setdefault(ln, []):
+                merged[ln].append(msg)
+        shown = [(ln, "; ".join(msgs)) for ln, msgs in sorted(merged.items())][:MAX_BAD_LINES]
+        if total == 1:  # "file, line N: what is wrong"
             raise InputError(shown[0][1], file=self.file, line=shown[0][0])
         detail = "; ".join(f"line {ln}: {msg}" for ln, msg in shown)
-        more = f" (first {len(shown)} shown)" if self.total > len(shown) else ""
-        noun = "line" if self.total == 1 else "lines"
-        raise InputError(f"{self.total} {noun} {what}{more}: {detail}", file=self.file, line=shown[0][0])
+        more = f" (first {len(shown)} shown)" if total > len(shown) else ""
+        raise InputError(f"{total} lines {what}{more}: {detail}", file=self.file, line=shown[0][0])
 
 
 def clip_text(text: Any, n: int = 30) -> str:

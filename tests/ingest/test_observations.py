@@ -424,9 +424,15 @@ def test_time_column_need_not_come_first():
     assert list(p.frame.index) == [utc(2024, 7, 1, 6), utc(2024, 7, 1, 6, 5)]
     assert p.frame["air_temp_c"].tolist() == [5, 6]
     with pytest.raises(InputError, match="line 3: values without a time"):
+        parse("air_temp_c,wind_speed_ms,time\n5,1,2024-07-01T06:00Z\n6,2,\n")
+    with pytest.raises(InputError, match="line 3: 2 fields, the header has 3"):   # a cut line is refused
         parse("air_temp_c,wind_speed_ms,time\n5,1,2024-07-01T06:00Z\n6,2\n")
 
 
-def test_short_lines_leave_trailing_values_missing():
-    p = parse("time,air_temp_c,wind_speed_ms\n2024-07-01T06:00Z,5\n2024-07-01T06:05Z,6,2\n")
+def test_short_lines_are_refused_like_long_ones():
+    # a line with fewer fields than the header is cut (a logger stopped mid-write), not "missing values"
+    with pytest.raises(InputError, match="line 2: 2 fields, the header has 3") as err:
+        parse("time,air_temp_c,wind_speed_ms\n2024-07-01T06:00Z,5\n2024-07-01T06:05Z,6,2\n")
+    assert err.value.line == 2
+    p = parse("time,air_temp_c,wind_speed_ms\n2024-07-01T06:00Z,5,\n2024-07-01T06:05Z,6,2\n")
     assert np.isnan(p.frame["wind_speed_ms"].iloc[0]) and p.frame["wind_speed_ms"].iloc[1] == 2
