@@ -52,6 +52,28 @@ The physical model's spread is normal: 2.5 °C on radiative evenings (cloud <=
 untuned minimum-temperature schemes) -- updated with the station's physical
 residuals as they accrue (the prior weighs 10 nights).
 
+Recalibration from the station's own forecasts
+----------------------------------------------
+Leave-one-out residuals are exchangeable with each other, but tomorrow is not
+exchangeable with the past: seasons drift, a young station has few residuals
+to draw tails from, and the analog weighting can be too sure or too timid at a
+given site.  So each fit also replays the station's past nights with the
+rolling origin -- night ``j`` forecast from a calibration fitted on the nights
+before it only, exactly as it would have been issued -- and records the
+probability integral transform ``u_j = F_j(y_j)`` of each observed minimum
+(:func:`rolling_pit`).  A calibrated forecast has uniform ``u`` [5]_ [6]_.  The
+recency-weighted empirical quantiles of the ``u`` (same half-life as the fit),
+shrunk toward the identity with the weight of :data:`PIT_PRIOR_NIGHTS` nights,
+map each probability level ``tau`` to the level of the raw distribution that
+has held ``tau`` of the outcomes at this station (:func:`pit_levels`); the
+forecast quantile at ``tau`` is the raw quantile at that level.
+
+One safety rule: below the median the map may only move *outward*.  The
+recalibration may widen a cold tail that has proved too narrow at the site, but
+never narrows one -- on the rare cold nights that matter most the raw
+distribution's cold tail is kept at least as wide as the site's own residuals
+make it.  The warm tail and the centre follow the station's record freely.
+
 All parameters of a calibration serialise to a plain JSON-able dict
 (:meth:`Calibration.to_dict` / :meth:`Calibration.from_dict`).
 
@@ -64,6 +86,13 @@ References
    for nonorthogonal problems. Technometrics 12, 55-67.
 .. [4] Wilks, D. S. (2011) Statistical Methods in the Atmospheric Sciences, 3rd
    ed., Academic Press (cross-validation, empirical distributions).
+.. [5] Dawid, A. P. (1984) Statistical theory: the prequential approach. J. R.
+   Statist. Soc. A 147, 278-292 (the probability integral transform of
+   sequential forecasts; citation details from memory).
+.. [6] Gneiting, T., Balabdaoui, F. & Raftery, A. E. (2007) Probabilistic
+   forecasts, calibration and sharpness. J. R. Statist. Soc. B 69, 243-268
+   (PIT histograms; recalibration toward uniform PIT; citation details from
+   memory).
 """
 
 from __future__ import annotations
@@ -83,7 +112,8 @@ __all__ = [
     "PREDICTORS", "MIN_NIGHTS", "HALF_LIFE_NIGHTS", "PRIOR_NIGHTS", "MAX_NIGHTS",
     "RADIATIVE_CLOUD_MAX_PCT", "RADIATIVE_WIND_MAX_MS", "PHYSICAL_SPREAD_C",
     "Calibration", "predictor_matrix", "is_radiative", "fit_calibration", "fit_arrays", "forecast_night",
-    "forecast_quantiles", "forecast_blocks",
+    "forecast_quantiles", "forecast_blocks", "PIT_PRIOR_NIGHTS", "PIT_MAX_NIGHTS", "pit_of", "pit_levels",
+    "rolling_pit", "recalibrate_table",
 ]
 
 PREDICTORS = ("air_temp_c", "dew_point_c", "wind_speed_ms", "cloud_cover_pct",
@@ -109,6 +139,11 @@ ANALOG_CLOUD_PCT = 30.0
 ANALOG_WIND_MS = 2.0
 #: Every residual keeps at least this kernel weight.
 ANALOG_FLOOR = 0.05
+
+#: Weight of the identity (no recalibration) in the PIT map, in nights.
+PIT_PRIOR_NIGHTS = 30.0
+#: Past nights replayed for the PIT map (older ones weigh < 50 % of the newest).
+PIT_MAX_NIGHTS = 365
 
 _VERSION = 1
 _Z_LEVELS = ndtri(LEVELS)
@@ -199,6 +234,12 @@ class Calibration:
         ISO date of the latest night used.
     settings : dict
         Fitting settings (half-life, prior weight, minimum nights).
+    pit_levels : ndarray (K,) or empty
+        Level of the raw distribution used for each of
+        :data:`advisory.forecast.result.LEVELS` (see "Recalibration" above);
+        empty: none (too few replayed nights, or the physical model).
+    pit_nights : int
+        Replayed nights behind ``pit_levels``.
     """
 
     model: str
@@ -215,6 +256,8 @@ class Calibration:
     fill: dict = field(default_factory=dict)
     last_night: str | None = None
     settings: dict = field(default_factory=dict)
+    pit_levels: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    pit_nights: int = 0
 
     @classmethod
     def physical_default(cls) -> Calibration:
@@ -242,6 +285,8 @@ class Calibration:
             "fill": {k: float(v) for k, v in self.fill.items()},
             "last_night": self.last_night,
             "settings": dict(self.settings),
+            "pit_levels": _floats(self.pit_levels),
+            "pit_nights": int(self.pit_nights),
         }
 
     @classmethod
@@ -270,7 +315,12 @@ class Calibration:
             fill={k: float(v) for k, v in data.get("fill", {}).items()},
             last_night=data.get("last_night"),
             settings=dict(data.get("settings", {})),
+            pit_levels=np.asarray(data.get("pit_levels", []), dtype=float),
+            pit_nights=int(data.get("pit_nights", 0)),
         )
+        if len(cal.pit_levels) not in (0, len(LEVELS)) or (
+                len(cal.pit_levels) and not np.all(np.diff(cal.pit_levels) >= 0)):
+            raise ValueError("calibration PIT map is damaged")
         if cal.model not in (PHYSICAL, CALIBRATED):
             raise ValueError(f"unknown calibration model {cal.model!r}")
         if len(cal.center) != p or len(cal.scale) != p or len(cal.coef) != p + 1:
@@ -321,9 +371,16 @@ def fit_calibration(history: pd.DataFrame, *, min_nights: int = MIN_NIGHTS,
     n = len(h)
     last = str(h["night"].iloc[-1]) if n and "night" in h.columns else None
     x_raw = predictor_matrix(h, {"cooling_since_sunset_c": np.nan})
-    return fit_arrays(x_raw, _col(h, "observed_min_c"), physical_night(h).minimum_c,
-                      min_nights=min_nights, half_life_nights=half_life_nights, prior_nights=prior_nights,
-                      last_night=last)
+    y = _col(h, "observed_min_c")
+    phys_min = physical_night(h).minimum_c
+    cal = fit_arrays(x_raw, y, phys_min, min_nights=min_nights, half_life_nights=half_life_nights,
+                     prior_nights=prior_nights, last_night=last)
+    if cal.model == CALIBRATED:
+        u = rolling_pit(h.reset_index(drop=True), x_raw, y, phys_min, min_nights=min_nights,
+                        half_life_nights=half_life_nights, prior_nights=prior_nights)
+        cal.pit_levels = pit_levels(u, half_life_nights=half_life_nights)
+        cal.pit_nights = int(np.isfinite(u).sum()) if len(cal.pit_levels) else 0
+    return cal
 
 
 def fit_arrays(x_raw, y, physical_min_c, *, min_nights: int = MIN_NIGHTS,
@@ -399,6 +456,123 @@ def fit_arrays(x_raw, y, physical_min_c, *, min_nights: int = MIN_NIGHTS,
         settings=settings)
 
 
+# --------------------------------------------------------------------------- recalibration
+def pit_of(quantiles_c, observed_c) -> np.ndarray:
+    """Probability integral transform of each observation under its forecast's quantile table.
+
+    Parameters
+    ----------
+    quantiles_c : ndarray (N, K)
+        Quantiles at :data:`advisory.forecast.result.LEVELS` [°C].
+    observed_c : array_like (N,)
+        Observed minima [°C].
+
+    Returns
+    -------
+    ndarray (N,)
+        ``F(y)`` in (0, 1), linear between the tabulated levels; NaN where the
+        table or the observation is missing.
+    """
+    from advisory.forecast.result import table_prob_below
+
+    q = np.asarray(quantiles_c, dtype=float)
+    y = np.asarray(observed_c, dtype=float)
+    out = np.full(len(y), np.nan)
+    ok = np.isfinite(y) & np.isfinite(q).all(axis=1) if q.size else np.zeros(len(y), bool)
+    if ok.any():
+        out[ok] = np.clip(table_prob_below(q[ok], y[ok]), LEVELS[0] / 2, 1 - (1 - LEVELS[-1]) / 2)
+    return out
+
+
+def pit_levels(pit, *, half_life_nights: float = HALF_LIFE_NIGHTS,
+               prior_nights: float = PIT_PRIOR_NIGHTS, min_nights: int = 10) -> np.ndarray:
+    """The recalibration map from a station's past PIT values (oldest first).
+
+    Parameters
+    ----------
+    pit : array_like (M,)
+        PIT values of the station's replayed forecasts, oldest first (NaN
+        skipped).
+    half_life_nights : float
+        Recency half-life of their weights, in nights.
+    prior_nights : float
+        Weight of the identity map, in nights.
+    min_nights : int
+        Fewer PIT values than this give no map.
+
+    Returns
+    -------
+    ndarray (K,) or empty
+        For each level ``tau`` of :data:`LEVELS`, the raw-distribution level to
+        read; non-decreasing; below the median never above ``tau`` itself (a
+        cold tail is only widened).
+    """
+    u = np.asarray(pit, dtype=float)
+    u = u[np.isfinite(u)]
+    m = len(u)
+    if m < min_nights:
+        return np.zeros(0)
+    w = 0.5 ** ((m - 1 - np.arange(m)) / half_life_nights)
+    order = np.argsort(u, kind="stable")
+    us, ws = u[order], w[order]
+    pos = (np.cumsum(ws) - 0.5 * ws) / ws.sum()
+    g_inv = np.interp(LEVELS, pos, us)
+    share = ws.sum() / (ws.sum() + prior_nights)
+    taus = share * g_inv + (1.0 - share) * LEVELS
+    lower = LEVELS < 0.5
+    taus[lower] = np.minimum(taus[lower], LEVELS[lower])
+    return np.clip(np.maximum.accumulate(taus), LEVELS[0], LEVELS[-1])
+
+
+def recalibrate_table(quantiles_c, levels) -> np.ndarray:
+    """Read each row of a raw quantile table (N, K) at the levels of a PIT map (K,)."""
+    q = np.asarray(quantiles_c, dtype=float)
+    levels = np.asarray(levels, dtype=float)
+    if len(levels) == 0 or len(q) == 0:
+        return q
+    j = np.clip(np.searchsorted(LEVELS, levels, side="right") - 1, 0, len(LEVELS) - 2)
+    f = np.clip((levels - LEVELS[j]) / (LEVELS[j + 1] - LEVELS[j]), 0.0, 1.0)
+    return q[:, j] * (1.0 - f) + q[:, j + 1] * f
+
+
+def rolling_pit(states: pd.DataFrame, x_raw, y, physical_min_c, *, min_nights: int = MIN_NIGHTS,
+                half_life_nights: float = HALF_LIFE_NIGHTS, prior_nights: float = PRIOR_NIGHTS,
+                max_nights: int = PIT_MAX_NIGHTS, chunk: int = 256) -> np.ndarray:
+    """PIT of each of the last ``max_nights`` nights under the raw forecast it would have had.
+
+    Night ``j`` is forecast from a calibration fitted on nights ``0 .. j-1``
+    (consecutive verified nights: each window closes at sunrise + 1 h, before
+    the next evening), without any PIT map -- the rolling origin of
+    :mod:`advisory.forecast.hindcast`.
+
+    Parameters
+    ----------
+    states : pandas.DataFrame
+        The verified nights' evening states, oldest first, index 0..n-1.
+    x_raw, y, physical_min_c
+        As for :func:`fit_arrays`.
+
+    Returns
+    -------
+    ndarray (n,)
+        PIT values, NaN for nights not replayed or forecast by the physical
+        model.
+    """
+    n = len(y)
+    out = np.full(n, np.nan)
+    first = max(int(min_nights), 2, n - int(max_nights))
+    for a in range(first, n, chunk):
+        b = min(a + chunk, n)
+        cals = [fit_arrays(x_raw[max(0, j - MAX_NIGHTS):j], y[max(0, j - MAX_NIGHTS):j],
+                           physical_min_c[max(0, j - MAX_NIGHTS):j], min_nights=min_nights,
+                           half_life_nights=half_life_nights, prior_nights=prior_nights)
+                for j in range(a, b)]
+        q, model, _, _ = forecast_quantiles(states.iloc[a:b], cals)
+        u = pit_of(q, y[a:b])
+        out[a:b] = np.where(model == CALIBRATED, u, np.nan)
+    return out
+
+
 # --------------------------------------------------------------------------- forecasting
 def _weighted_quantiles(res, wts, levels_z):
     """Quantiles at LEVELS of weighted samples, row by row.
@@ -472,7 +646,12 @@ def _calibrated_quantiles(cals, which, x, cloud, wind, chunk_elems=2_000_000):
             + ((u_wind[a:b, None] - rwd[wi]) / ANALOG_WIND_MS) ** 2
         wts = rwt[wi] * (np.exp(-0.5 * d2) + ANALOG_FLOOR)
         spread[a:b] = _weighted_quantiles(res[wi], wts, _Z_LEVELS)
-    return mean[:, None] + spread[inverse]
+    q = mean[:, None] + spread[inverse]
+    for slot, c in enumerate(cals):
+        if len(c.pit_levels):
+            rows = which == slot
+            q[rows] = recalibrate_table(q[rows], c.pit_levels)
+    return q
 
 
 def _resolve(calibrations, states, n):

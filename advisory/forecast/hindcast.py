@@ -45,15 +45,26 @@ from advisory.errors import InputError
 from advisory.forecast.calibration import (
     MAX_NIGHTS,
     MIN_NIGHTS,
+    PIT_MAX_NIGHTS,
     PREDICTORS,
     fit_arrays,
     forecast_quantiles,
     is_radiative,
+    pit_levels,
+    pit_of,
     predictor_matrix,
+    recalibrate_table,
 )
 from advisory.forecast.cooling import physical_night
 from advisory.forecast.evening import MAX_AGE_MIN, OK, REFERENCE_OFFSET_H, evening_states
-from advisory.forecast.result import CALIBRATED, LEVELS, PHYSICAL, table_prob_below, table_quantile
+from advisory.forecast.result import (
+    CALIBRATED,
+    LEVELS,
+    PHYSICAL,
+    table_crps,
+    table_prob_below,
+    table_quantile,
+)
 from advisory.physics.moisture import dew_point_c_from_rh
 from advisory.physics.sun import sun_times_batch
 
@@ -368,6 +379,15 @@ def hindcast_frame(obs: pd.DataFrame, lat: float, lon: float, tz: str, *, min_ni
                                    last_night=nights_iso[m - 1] if m else None))
         qq, mm, tn, _ = forecast_quantiles(st.iloc[a:b], cals)
         q[a:b], model[a:b], trained[a:b] = qq, mm, tn
+    # each night's raw forecast is read through the PIT map of the nights verified before it
+    # (:func:`advisory.forecast.calibration.fit_calibration` does the same replay for a live station)
+    calibrated = model == CALIBRATED
+    raw_pit = np.where(calibrated, pit_of(q, y), np.nan)
+    for k in np.flatnonzero(calibrated):
+        m = known[k]
+        levels = pit_levels(raw_pit[max(0, m - PIT_MAX_NIGHTS):m])
+        if len(levels):
+            q[k:k + 1] = recalibrate_table(q[k:k + 1], levels)
     cloud = x_raw[:, PREDICTORS.index("cloud_cover_pct")]
     wind = x_raw[:, PREDICTORS.index("wind_speed_ms")]
     rows = pd.DataFrame({
@@ -379,6 +399,7 @@ def hindcast_frame(obs: pd.DataFrame, lat: float, lon: float, tz: str, *, min_ni
         "forecast_p10_c": table_quantile(q, 0.1),
         "forecast_p90_c": table_quantile(q, 0.9),
         "p_min_le_0c": table_prob_below(q, FROST_C),
+        "crps_c": table_crps(q, y),
         "observed_min_c": y,
         "air_temp_c": st["air_temp_c"].to_numpy(dtype=float),
         "dew_point_c": st["dew_point_c"].to_numpy(dtype=float),
@@ -390,6 +411,45 @@ def hindcast_frame(obs: pd.DataFrame, lat: float, lon: float, tz: str, *, min_ni
 
 
 # --------------------------------------------------------------------------- scores
+def crps_gaussian(mean_c, sd_c, observed_c) -> np.ndarray:
+    """CRPS of a normal forecast in closed form (Gneiting et al. 2005 [3]_, eq. 5) [°C]."""
+    from scipy.stats import norm
+
+    sd = np.maximum(np.asarray(sd_c, dtype=float), 1e-9)
+    z = (np.asarray(observed_c, dtype=float) - np.asarray(mean_c, dtype=float)) / sd
+    return sd * (z * (2.0 * norm.cdf(z) - 1.0) + 2.0 * norm.pdf(z) - 1.0 / np.sqrt(np.pi))
+
+
+def site_regression_baseline(rows: pd.DataFrame, min_nights: int = MIN_NIGHTS):
+    """The plain site regression with a constant spread, with the same rolling origin.
+
+    Allen-type ordinary least squares of the observed minimum on the evening air
+    temperature, dew point, wind and cloud (missing wind and cloud as calm and
+    clear), refitted before each night on every earlier row; its spread is the
+    standard deviation of that fit's residuals (degrees of freedom corrected),
+    the same for every evening.  It is the yardstick the calibrated model must
+    beat; rows before ``min_nights`` earlier rows get NaN.
+
+    Returns
+    -------
+    mean_c, sd_c : ndarray (n,)
+    """
+    x = np.column_stack([np.ones(len(rows)), rows["air_temp_c"].to_numpy(float),
+                         rows["dew_point_c"].to_numpy(float),
+                         np.nan_to_num(rows["wind_speed_ms"].to_numpy(float), nan=0.0),
+                         np.nan_to_num(rows["cloud_cover_pct"].to_numpy(float), nan=0.0)])
+    y = rows["observed_min_c"].to_numpy(float)
+    mean = np.full(len(y), np.nan)
+    sd = np.full(len(y), np.nan)
+    p = x.shape[1]
+    for k in range(max(min_nights, p + 2), len(y)):
+        beta, *_ = np.linalg.lstsq(x[:k], y[:k], rcond=None)
+        mean[k] = x[k] @ beta
+        r = y[:k] - x[:k] @ beta
+        sd[k] = np.sqrt(np.sum(r**2) / (k - p))
+    return mean, sd
+
+
 def _errors(f, o):
     e = f - o
     if len(e) == 0:
@@ -436,7 +496,23 @@ def summarize(rows: pd.DataFrame, warning_probability: float = WARNING_PROBABILI
         table.append({"bin": f"{lo:.2f}-{hi:.2f}", "nights": int(m.sum()),
                       "mean_forecast": round(float(p[m].mean()), 3) if m.any() else None,
                       "observed_frequency": round(float(event[m].mean()), 3) if m.any() else None})
-    inside = (cal["forecast_p10_c"].to_numpy(float) <= o) & (o <= cal["forecast_p90_c"].to_numpy(float))
+    p10, p90 = cal["forecast_p10_c"].to_numpy(float), cal["forecast_p90_c"].to_numpy(float)
+    inside = (p10 <= o) & (o <= p90)
+    is_cal = (rows["model"] == CALIBRATED).to_numpy()
+    if {"air_temp_c", "dew_point_c", "wind_speed_ms", "cloud_cover_pct"} <= set(rows.columns):
+        base_mean, base_sd = site_regression_baseline(rows)
+        base_crps = crps_gaussian(base_mean[is_cal], base_sd[is_cal], o)
+    else:
+        base_crps = np.full(len(o), np.nan)
+    ours_crps = cal["crps_c"].to_numpy(float) if "crps_c" in cal.columns else np.full(len(o), np.nan)
+    both = np.isfinite(base_crps) & np.isfinite(ours_crps)
+    crps = {
+        "crps_c": round(float(np.mean(ours_crps[both])), 3) if both.any() else None,
+        "crps_site_regression_c": round(float(np.mean(base_crps[both])), 3) if both.any() else None,
+        "crps_skill": round(1.0 - float(np.mean(ours_crps[both]) / np.mean(base_crps[both])), 3)
+        if both.any() else None,
+        "crps_nights": int(both.sum()),
+    }
     return {
         "nights_verified": int(len(rows)),
         "nights_skipped": dict(skipped or {}),
@@ -444,7 +520,10 @@ def summarize(rows: pd.DataFrame, warning_probability: float = WARNING_PROBABILI
                        "cold": _errors(f[cold], o[cold]),
                        "radiative": {**_errors(f[rad], o[rad]), "cold": _errors(f[rad & cold], o[rad & cold])},
                        "p10_p90_coverage": round(float(inside.mean()), 3) if len(o) else None,
-                       "p10_p90_coverage_cold": round(float(inside[cold].mean()), 3) if cold.any() else None},
+                       "p10_p90_coverage_cold": round(float(inside[cold].mean()), 3) if cold.any() else None,
+                       "p10_p90_width_c": round(float(np.mean(p90 - p10)), 2) if len(o) else None,
+                       "below_p10_cold": round(float((o < p10)[cold].mean()), 3) if cold.any() else None,
+                       **crps},
         "physical": _errors(phy["forecast_min_c"].to_numpy(float), phy["observed_min_c"].to_numpy(float)),
         "frost": {
             "threshold_c": FROST_C, "events": int(event.sum()), "nights": int(len(p)),
@@ -549,6 +628,14 @@ def format_summary(summary: dict) -> str:
         if c.get("p10_p90_coverage_cold") is not None:
             cov += f", {c['p10_p90_coverage_cold']:.0%} of cold nights"
         lines.append(cov + " (honest: 80 %)")
+        width = f"  p10-p90 range {c['p10_p90_width_c']:.1f} °C wide on average"
+        if c.get("below_p10_cold") is not None:
+            width += f"; cold nights below p10: {c['below_p10_cold']:.0%} (honest: 10 %)"
+        lines.append(width)
+    if c.get("crps_c") is not None:
+        lines.append(f"  CRPS {c['crps_c']:.3f} °C against {c['crps_site_regression_c']:.3f} °C for the plain "
+                     f"site regression with a constant spread (skill {c['crps_skill']:+.1%}, "
+                     f"{c['crps_nights']} nights; lower is better)")
     lines.append(f"Frost (minimum <= {fr['threshold_c']:g} °C) on calibrated nights: {fr['events']} of {fr['nights']}")
     if fr["brier"] is not None:
         lines.append(f"  Brier score {fr['brier']:.4f} (climatology {fr['brier_climatology']:.4f})")

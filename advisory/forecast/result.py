@@ -31,7 +31,8 @@ from advisory.forecast.cooling import (
     hours_to_fraction,
 )
 
-__all__ = ["LEVELS", "PHYSICAL", "CALIBRATED", "NightForecast", "table_quantile", "table_prob_below"]
+__all__ = ["LEVELS", "PHYSICAL", "CALIBRATED", "NightForecast", "table_quantile", "table_prob_below", "table_crps",
+           "two_piece_table"]
 
 #: Probability levels of the stored quantile table.
 LEVELS = np.concatenate([[0.001, 0.0025, 0.005], np.round(np.arange(0.01, 0.995, 0.01), 2),
@@ -72,6 +73,66 @@ def table_prob_below(quantiles_c, threshold_c) -> np.ndarray:
     p = LEVELS[j - 1] + np.clip(f, 0.0, 1.0) * (LEVELS[j] - LEVELS[j - 1])
     p = np.where(below == 0, 0.0, np.where(below >= k, 1.0, p))
     return np.where(np.isfinite(q[:, 0]) & np.isfinite(x), p, np.nan)
+
+
+def _crps_weights() -> np.ndarray:
+    """Trapezoid weights over the levels, the flat tails beyond the first and last level included."""
+    t = LEVELS
+    w = np.empty(len(t))
+    w[1:-1] = (t[2:] - t[:-2]) / 2.0
+    w[0] = t[0] + (t[1] - t[0]) / 2.0
+    w[-1] = (1.0 - t[-1]) + (t[-1] - t[-2]) / 2.0
+    return w
+
+
+_CRPS_W = _crps_weights()
+
+
+def table_crps(quantiles_c, observed_c) -> np.ndarray:
+    """Continuous ranked probability score of each row of a quantile table (N, K) at :data:`LEVELS`.
+
+    CRPS is twice the integral over probability levels of the quantile (pinball)
+    score, ``CRPS(F, y) = 2 \\int_0^1 (1{y < Q(tau)} - tau) (Q(tau) - y) dtau``
+    (Gneiting & Raftery 2007 [1]_, eq. 21; Laio & Tamea 2007 [2]_), evaluated
+    by the trapezoid rule on the table's levels (the quantile below the first
+    and above the last level taken as flat).  Same unit as the values [°C];
+    lower is better; for a point forecast it is the absolute error.
+
+    Returns
+    -------
+    ndarray (N,)
+        NaN where the row or the observation is missing.
+
+    References
+    ----------
+    .. [1] Gneiting, T. & Raftery, A. E. (2007) Strictly proper scoring rules,
+       prediction, and estimation. J. Amer. Statist. Assoc. 102, 359-378.
+    .. [2] Laio, F. & Tamea, S. (2007) Verification tools for probabilistic
+       forecasts of continuous hydrological variables. Hydrol. Earth Syst. Sci.
+       11, 1267-1277 (citation details from memory).
+    """
+    q = np.asarray(quantiles_c, dtype=float)
+    y = np.asarray(observed_c, dtype=float)[:, None]
+    score = ((y < q).astype(float) - LEVELS[None, :]) * (q - y)
+    return 2.0 * (score @ _CRPS_W)
+
+
+def two_piece_table(p10_c, p50_c, p90_c) -> np.ndarray:
+    """Quantile table (N, K) of the two-piece normal through a forecast's 10th, 50th and 90th percentiles.
+
+    The same reading of three stored quantiles as
+    :class:`advisory.risk.frost.MinTempForecast` uses without a full table: a
+    normal of spread ``(p50 - p10) / z90`` below the median and
+    ``(p90 - p50) / z90`` above it, ``z90 = 1.2816``.
+    """
+    from scipy.special import ndtri
+
+    p10, p50, p90 = (np.atleast_1d(np.asarray(v, dtype=float)) for v in (p10_c, p50_c, p90_c))
+    z = ndtri(LEVELS)[None, :]
+    z90 = ndtri(0.9)
+    lo = np.maximum(p50 - p10, 0.0)[:, None] / z90
+    hi = np.maximum(p90 - p50, 0.0)[:, None] / z90
+    return p50[:, None] + np.where(z < 0, lo, hi) * z
 
 
 @dataclass

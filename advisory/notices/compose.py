@@ -1104,13 +1104,14 @@ def _status(a: Assessment, f: _Fmt, name: str):
         latest = dq.get("latest_obs_utc")
         if latest:
             first = f"No forecast {when_txt}: station {a.station} silent since {f.when(latest)}."
-        else:
-            first = f"No forecast {when_txt}: " + (a.reason.rstrip(".") + "." if a.reason
-                                                  else f"no usable data from station {a.station}.")
+        else:  # the reason may begin with the same words (advisory.pipeline._silence_reason)
+            why = re.sub(r"(?i)^no forecast (tonight|today):\s*", "", a.reason or "").rstrip(".")
+            first = f"No forecast {when_txt}: " + (why + "." if why else f"no usable data from station {a.station}.")
         core = f"{a.block}: no forecast {when_txt}"
         lead.append(first)
         if latest and a.reason:
-            lead.append(f"Reason: {a.reason.rstrip('.')}.")
+            why = re.sub(r"(?i)^no forecast (tonight|today):\s*", "", a.reason).rstrip(".")
+            lead.append(f"Reason: {why}.")
         next_step = ("Check the station, its power and its data feed; the next run uses new readings "
                      "as soon as they arrive.")
     elif a.status == asm.STATUS_MISSED:
@@ -1208,6 +1209,25 @@ def changes(a: Assessment, previous: Assessment | None) -> list[str]:
 # Public
 # --------------------------------------------------------------------------------------------------
 
+#: A stage seen this long before the night is from an earlier season: a spring frost season, bud break
+#: to fruit set, lasts about two to three months (common practice) [days].
+STAGE_SEASON_DAYS = 120
+
+
+def stage_warning(a: Assessment) -> str | None:
+    """A warning when the block's recorded stage is from an earlier season (or after the night)."""
+    seen = (a.details or {}).get("stage_date")
+    night = a.night if isinstance(a.night, dt.date) else dt.date.fromisoformat(str(a.night))
+    if not seen:
+        return None
+    seen = dt.date.fromisoformat(str(seen))
+    if (night - seen).days > STAGE_SEASON_DAYS or seen > night:
+        return (f"Check the stage: '{a.stage}' was recorded on {seen.isoformat()}, "
+                f"{'after this night' if seen > night else 'in an earlier season'}; the critical temperatures "
+                "here are for that stage. Record the stage seen now (advisory blocks set-stage).")
+    return None
+
+
 def compose_block(a: Assessment | dict, previous: Assessment | dict | None = None, *,
                   data: dict[str, Any] | None = None) -> BlockNotice:
     """Compose one block's notice.
@@ -1247,6 +1267,8 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
         core, lead, sms_parts, sections, chart, keys = _frost(a, f, name)
 
     changed = changes(a, previous) if a.is_update else []
+    if a.kind != "heat" and (warn := stage_warning(a)):
+        lead.insert(0, warn)
     when_txt = f"night of {w.short_day(a.night)}" if a.kind != "heat" else w.short_day(a.night)
     first = "morning note" if a.kind == "heat" else "evening notice"
     prefix = f"[{name}] "

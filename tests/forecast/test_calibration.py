@@ -10,7 +10,7 @@ import pytest
 
 from advisory.forecast import calibration as cal
 from advisory.forecast.cooling import physical_night
-from advisory.forecast.result import CALIBRATED, PHYSICAL
+from advisory.forecast.result import CALIBRATED, LEVELS, PHYSICAL
 from tests.forecast.helpers import history_frame, states_frame
 
 
@@ -200,3 +200,65 @@ def test_forecast_blocks_in_one_call():
     assert list(fc.status) == ["ok", "ok"] and list(fc.block) == ["a", "b"]
     assert len(states) == 2 and (fc.reference_time == pd.DatetimeIndex(states["reference_time"])).all()
     assert np.all(fc.p50 < states["air_temp_c"].to_numpy())
+
+
+# --------------------------------------------------------------------------- recalibration from the PIT
+def test_uniform_pit_leaves_the_forecast_nearly_unchanged():
+    u = (np.arange(400) + 0.5) / 400
+    levels = cal.pit_levels(np.random.default_rng(3).permutation(u))
+    np.testing.assert_allclose(levels, LEVELS, atol=0.01)
+
+
+def test_an_overconfident_record_widens_both_tails():
+    # outcomes fall in the outer tenths far more often than a calibrated forecast allows
+    rng = np.random.default_rng(4)
+    u = np.where(rng.random(400) < 0.5, rng.uniform(0.0, 0.1, 400), rng.uniform(0.9, 1.0, 400))
+    levels = cal.pit_levels(u)
+    at = dict(zip(np.round(LEVELS, 4), levels, strict=True))
+    assert at[0.1] < 0.06 and at[0.9] > 0.94
+
+
+def test_a_timid_record_narrows_only_the_warm_side():
+    # outcomes bunch in the middle: the range was too wide; the cold tail is still never narrowed
+    u = np.random.default_rng(5).uniform(0.3, 0.7, 400)
+    levels = cal.pit_levels(u)
+    below = LEVELS < 0.5
+    assert np.all(levels[below] <= LEVELS[below] + 1e-12)
+    at = dict(zip(np.round(LEVELS, 4), levels, strict=True))
+    assert at[0.9] < 0.8
+    assert np.all(np.diff(levels) >= 0)
+
+
+def test_too_few_pit_values_give_no_map():
+    assert len(cal.pit_levels([0.2, 0.5, np.nan])) == 0
+
+
+def test_recalibrate_table_reads_the_raw_table_at_the_mapped_levels():
+    q = np.tile(np.linspace(-5.0, 5.0, len(LEVELS)), (2, 1))
+    np.testing.assert_allclose(cal.recalibrate_table(q, LEVELS), q)
+    shifted = cal.recalibrate_table(q, np.clip(LEVELS - 0.005, LEVELS[0], None))
+    assert np.all(shifted <= q + 1e-12)
+
+
+def test_fitted_calibration_carries_its_pit_map_through_json():
+    c = cal.fit_calibration(history_frame(200, seed=6))
+    assert c.model == CALIBRATED
+    assert len(c.pit_levels) == len(LEVELS) and c.pit_nights == 200 - cal.MIN_NIGHTS
+    back = cal.Calibration.from_dict(json.loads(json.dumps(c.to_dict())))
+    np.testing.assert_allclose(back.pit_levels, c.pit_levels)
+    st = history_frame(5, seed=7)
+    np.testing.assert_allclose(cal.forecast_night(st, back).p10, cal.forecast_night(st, c).p10)
+    # a calibration stored before the map existed still loads, and forecasts without one
+    old = c.to_dict()
+    del old["pit_levels"], old["pit_nights"]
+    assert len(cal.Calibration.from_dict(old).pit_levels) == 0
+    with pytest.raises(ValueError):
+        cal.Calibration.from_dict({**c.to_dict(), "pit_levels": [0.5, 0.4]})
+
+
+def test_the_pit_map_changes_the_forecast_it_is_fitted_with():
+    c = cal.fit_calibration(history_frame(200, seed=6))
+    raw = cal.Calibration.from_dict({**c.to_dict(), "pit_levels": [], "pit_nights": 0})
+    st = history_frame(5, seed=7)
+    a, b = cal.forecast_night(st, c), cal.forecast_night(st, raw)
+    assert np.all(a.p10 <= b.p10 + 1e-9)  # the cold tail is never narrowed
