@@ -296,7 +296,8 @@ def _base_assessment(b: Block, night: dt.date, kind: str = "frost", *, critical:
     return asm.Assessment(
         kind=kind, farm=b.farm.name, farm_tz=b.farm.timezone, units=b.farm.units, block_id=b.id,
         block=b.name, station=b.station.code, crop=b.crop, variety=b.variety, stage=b.stage,
-        area_ha=b.area_ha, night=night, t10_c=ct.t10_c, t90_c=ct.t90_c, critical_source=ct.source)
+        area_ha=b.area_ha, night=night, t10_c=ct.t10_c, t90_c=ct.t90_c, critical_source=ct.source,
+        details={"stage_date": b.stage_date.isoformat()} if getattr(b, "stage_date", None) else {})
 
 
 def _silence_reason(station: Station, latest: pd.Timestamp | None, reason: str | None, tz: str) -> str:
