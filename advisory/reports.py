@@ -158,8 +158,44 @@ _HEAT_EVENT = "observed high (sunrise to sunset) at or above the crop's sunburn 
 _HEAT_WARNED = "the note flagged fruit sunburn risk or advised evaporative cooling"
 
 
+#: Bins of the frost probability (P of reaching T10) in the reliability table of ``verify report``.
+RELIABILITY_BINS = (0.0, 0.1, 0.3, 0.5, 0.7, 0.9, 1.0)
+
+
+def _crps(vs: list[Verification]) -> tuple[float | None, int]:
+    """Mean CRPS [°C] of the checks that kept their 10th/50th/90th percentiles, and how many did.
+
+    The stored three quantiles are read as a two-piece normal
+    (:func:`advisory.forecast.result.two_piece_table`), then scored with
+    :func:`advisory.forecast.result.table_crps`.
+    """
+    from advisory.forecast.result import table_crps, two_piece_table
+
+    rows = [((v.detail or {}).get("p10_c"), v.forecast_c, (v.detail or {}).get("p90_c"), v.observed_c)
+            for v in vs]
+    rows = [r for r in rows if None not in r]
+    if not rows:
+        return None, 0
+    a = np.array(rows, dtype=float)
+    return float(np.mean(table_crps(two_piece_table(a[:, 0], a[:, 1], a[:, 2]), a[:, 3]))), len(rows)
+
+
+def _reliability(vs: list[Verification]) -> list[dict]:
+    """Forecast probability of reaching T10 against how often it was reached, by probability bin."""
+    pairs = [(float(v.detail["p_below_t10"]), bool(v.detail.get("event"))) for v in vs
+             if (v.detail or {}).get("p_below_t10") is not None]
+    out = []
+    edges = RELIABILITY_BINS
+    for lo, hi in zip(edges[:-1], edges[1:], strict=True):
+        got = [(p, e) for p, e in pairs if lo <= p < hi or (hi == 1.0 and p == 1.0)]
+        out.append({"bin": f"{lo:.1f}-{hi:.1f}", "nights": len(got),
+                    "mean_forecast": float(np.mean([p for p, _ in got])) if got else None,
+                    "observed_frequency": float(np.mean([e for _, e in got])) if got else None})
+    return out
+
+
 def _skill(vs: list[Verification]) -> dict:
-    """MAE, bias, range coverage and the 2x2 table of warnings against events over some checks."""
+    """MAE, bias, range coverage, CRPS and the 2x2 table of warnings against events over some checks."""
     err = np.array([v.error_c for v in vs if v.error_c is not None], float)
     warned = np.array([bool((v.detail or {}).get("warned")) for v in vs], bool)
     event = np.array([bool((v.detail or {}).get("event")) for v in vs], bool)
@@ -167,7 +203,8 @@ def _skill(vs: list[Verification]) -> dict:
               if (v.detail or {}).get("p10_c") is not None and (v.detail or {}).get("p90_c") is not None
               and v.observed_c is not None]
     inside = sum(1 for lo, hi, o in ranged if lo <= o <= hi)
-    return {"count": len(vs),
+    crps, crps_n = _crps(vs)
+    return {"count": len(vs), "crps_c": crps, "with_crps": crps_n,
             "mae_c": float(np.mean(np.abs(err))) if len(err) else None,
             "bias_c": float(np.mean(err)) if len(err) else None,
             "in_range": inside, "with_range": len(ranged),
@@ -227,6 +264,8 @@ def verification_report(db, *, block: str | None = None, farm: str | None = None
             section = {"blocks": rows, "all": _skill(every) if every else None,
                        "event": _FROST_EVENT if k == "frost" else _HEAT_EVENT,
                        "warned": _FROST_WARNED if k == "frost" else _HEAT_WARNED}
+            if k == "frost":
+                section["reliability"] = _reliability(every)
             if k == "heat":
                 est = [bool((v.detail or {}).get("estimated")) for v in every]
                 section["by_source"] = {"outlook": _skill([v for v, e in zip(every, est, strict=True) if not e]),
@@ -245,12 +284,23 @@ def _name_width(data: dict) -> int:
 
 def _format_frost(data: dict) -> list[str]:
     wd = _name_width(data)
-    lines = [f"{'block':<{wd}} {'nights':>6} {'MAE °C':>7} {'bias °C':>8} {'hits':>5} {'misses':>6} "
-             f"{'false alarms':>12}"]
+    lines = [f"{'block':<{wd}} {'nights':>6} {'MAE °C':>7} {'bias °C':>8} {'CRPS °C':>8} {'in 8-in-10 range':>17} "
+             f"{'hits':>5} {'misses':>6} {'false alarms':>12}"]
     for b in data["blocks"]:
         lines.append(f"{b['block']:<{wd}} {b['count']:>6} {_num(b['mae_c'], '.2f'):>7} {_num(b['bias_c'], '+.2f'):>8} "
+                     f"{_num(b.get('crps_c'), '.2f'):>8} {_coverage(b):>17} "
                      f"{b['hits']:>5} {b['misses']:>6} {b['false_alarms']:>12}")
-    lines.append(f"event: {data['event']}; warned: {data['warned']}; bias = forecast - observed")
+    lines.append(f"event: {data['event']}; warned: {data['warned']}; bias = forecast - observed; "
+                 "CRPS: continuous ranked probability score of the forecast range (lower is better; "
+                 "for a single number it is the absolute error)")
+    rel = [r for r in data.get("reliability", []) if r["nights"]]
+    if rel:
+        lines.append("chance of reaching T10, as forecast and as it came (all blocks):")
+        lines.append(f"  {'forecast chance':>15} {'nights':>6} {'mean forecast':>13} {'reached':>8}")
+        for r in data["reliability"]:
+            if r["nights"]:
+                lines.append(f"  {r['bin']:>15} {r['nights']:>6} {100 * r['mean_forecast']:>12.0f}% "
+                             f"{100 * r['observed_frequency']:>7.0f}%")
     return lines
 
 
