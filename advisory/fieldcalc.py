@@ -315,6 +315,11 @@ def calc_start_temp(**options) -> dict:
     _with_f(out, "target_wet_bulb_c", target)
     start = start_air_temp_c(inp.critical_c, inp.dew_point_c, inp.margin_c, inp.pressure_kpa)
     _with_f(out, "start_air_temp_c", start)
+    if inp.dew_point_c >= float(start) - 1e-9:
+        out["note"] = (f"the dew point ({inp.dew_point_c:.1f} °C) is at or above the start temperature "
+                       f"({float(start):.1f} °C): the air is saturated before it cools that far (dew or frost "
+                       "forms and the dew point falls with the air), so the start is where the air itself reaches "
+                       "the start temperature; check the dew point reading")
     if inp.air_temp_c is not None:
         wb = moisture.wet_bulb_c(inp.air_temp_c, inp.dew_point_c, inp.pressure_kpa)
         _with_f(out, "wet_bulb_c", wb)
@@ -366,6 +371,8 @@ def format_result(result: dict) -> str:
         lines.append(f"{label}: {text}")
         if key == main:
             lines.append("")
+    if result.get("note"):
+        lines.append("Note: " + result["note"][0].upper() + result["note"][1:] + ".")
     if "start_now" in result:
         lines.append("Start now: " + ("yes - the wet bulb is at or below the start value" if result["start_now"]
                                       else "not yet"))

@@ -119,3 +119,13 @@ def test_cli_text_and_errors(capsys, monkeypatch, tmp_path):
     with pytest.raises(SystemExit) as e:  # argparse: --critical-c is required for start-temp
         cli.main(["calc", "start-temp", "--dew-point-c", "-5"])
     assert e.value.code == 2
+
+
+def test_start_temp_says_when_the_dew_point_is_above_it(capsys):
+    from advisory import cli
+
+    assert cli.main(["calc", "start-temp", "--critical-c", "-2.2", "--dew-point-c", "3", "--margin-c", "1"]) == 0
+    out = capsys.readouterr().out
+    assert "Note: The dew point (3.0 °C) is at or above the start temperature (-1.2 °C)" in out
+    assert cli.main(["calc", "start-temp", "--critical-c", "-2.2", "--dew-point-c", "-5", "--margin-c", "1"]) == 0
+    assert "Note:" not in capsys.readouterr().out
