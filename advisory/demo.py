@@ -117,27 +117,50 @@ def run(paths: DemoPaths, echo=print, *, heat: bool = True) -> Database:
     """Run the demo; ``echo`` receives every line meant for the person watching.
 
     A local webhook receiver stands in for the extension office's system and
-    checks every delivery's signature; e-mail is not configured in the demo, so
-    those deliveries are logged as failed with the reason.
+    checks every delivery's signature; a local mail server (plain SMTP on
+    127.0.0.1) receives the e-mails, so that they are delivered and counted.  The
+    demo always mails its invented people there, whatever ``ADVISORY_SMTP_*`` say
+    (those name the real server for real farms).
     """
-    from advisory.notices.receiver import WebhookReceiver
+    import contextlib
+
+    from advisory.notices.receiver import SmtpReceiver, WebhookReceiver
 
     logging.getLogger("advisory.notices.deliver").setLevel(logging.ERROR)
     os.environ["ADVISORY_OUTBOX"] = str(paths.outbox)
     os.environ.setdefault("ADVISORY_WEBHOOK_SECRET", DEMO_WEBHOOK_SECRET)
-    try:
-        receiver = WebhookReceiver(os.environ["ADVISORY_WEBHOOK_SECRET"], port=DEMO_WEBHOOK_PORT)
-    except OSError as exc:
-        echo(f"(webhook receiver not started: port {DEMO_WEBHOOK_PORT} busy: {exc.strerror})")
-        receiver = None
-    if receiver is None:
-        return _run(paths, echo, heat=heat)
-    with receiver:
-        db = _run(paths, echo, heat=heat)
-        got = receiver.received
-        echo(f"\nThe extension office's webhook received {len(got.verified)} signed notices "
-             f"(signature verified), rejected {got.rejected}.")
+    with contextlib.ExitStack() as stack:
+        try:
+            receiver = stack.enter_context(WebhookReceiver(os.environ["ADVISORY_WEBHOOK_SECRET"],
+                                                           port=DEMO_WEBHOOK_PORT))
+        except OSError as exc:
+            echo(f"(webhook receiver not started: port {DEMO_WEBHOOK_PORT} busy: {exc.strerror})")
+            receiver = None
+        mail = stack.enter_context(SmtpReceiver())
+        saved = {k: os.environ.get(k) for k in _DEMO_SMTP}
+        os.environ.update({"ADVISORY_SMTP_HOST": mail.host, "ADVISORY_SMTP_PORT": str(mail.port),
+                           "ADVISORY_SMTP_TLS": "none", "ADVISORY_SMTP_FROM": "advisory@quillback.example"})
+        for k in ("ADVISORY_SMTP_USER", "ADVISORY_SMTP_PASSWORD", "ADVISORY_SMTP_STARTTLS"):
+            os.environ.pop(k, None)
+        try:
+            db = _run(paths, echo, heat=heat)
+        finally:
+            for k, v in saved.items():
+                if v is None:
+                    os.environ.pop(k, None)
+                else:
+                    os.environ[k] = v
+        echo(f"\nThe local mail server (standing in for your SMTP server) received {len(mail.messages)} e-mails.")
+        if receiver is not None:
+            got = receiver.received
+            echo(f"The extension office's webhook received {len(got.verified)} signed notices "
+                 f"(signature verified), rejected {got.rejected}.")
     return db
+
+
+#: The mail settings the demo points at its own local mail server while it runs.
+_DEMO_SMTP = ("ADVISORY_SMTP_HOST", "ADVISORY_SMTP_PORT", "ADVISORY_SMTP_TLS", "ADVISORY_SMTP_FROM",
+              "ADVISORY_SMTP_USER", "ADVISORY_SMTP_PASSWORD", "ADVISORY_SMTP_STARTTLS")
 
 
 def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
@@ -213,9 +236,9 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
 
         counts = s.execute(select(Delivery.channel, Delivery.status, func.count())
                            .group_by(Delivery.channel, Delivery.status)).all()
-    echo("\nDeliveries logged: " + ", ".join(f"{ch} {st} {n}" for ch, st, n in sorted(counts))
-         + "  (e-mail needs ADVISORY_SMTP_HOST; text messages are queued in the outbox: no gateway here)")
+    echo("\nDeliveries logged (attempts): " + ", ".join(f"{ch} {st} {n}" for ch, st, n in sorted(counts))
+         + "  (text messages are queued in the outbox: no gateway here)")
     echo(f"Every notice (text, Markdown, HTML, JSON, text messages) is in {paths.outbox}")
     echo("Watch the scheduler run a night in under a minute:  advisory --db "
-         f"{paths.db_url} serve --rehearse 2026-04-10 --seconds-per-hour 4")
+         f"{paths.db_url} serve --rehearse 2026-04-10 --allow-past --seconds-per-hour 4")
     return db

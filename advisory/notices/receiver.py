@@ -60,3 +60,44 @@ class WebhookReceiver:
     def __exit__(self, *exc) -> None:
         self.server.shutdown()
         self.server.server_close()
+
+
+class SmtpReceiver:
+    """A local SMTP server (aiosmtpd) that keeps every message it gets: for the demo and for tests.
+
+    Run ``with SmtpReceiver() as r: ...``; ``r.port`` is where it listens, ``r.messages`` holds
+    ``(mail_from, rcpt_tos, raw bytes)`` of each message.  Plain SMTP (``ADVISORY_SMTP_TLS=none``);
+    ``refuse=True`` answers every message with a temporary failure (451), to show a refusing server.
+    Not a production server.
+    """
+
+    def __init__(self, host: str = "127.0.0.1", port: int = 0, *, refuse: bool = False):
+        from aiosmtpd.controller import Controller
+
+        self.host = host
+        self.refuse = refuse
+        self.messages: list[tuple[str, list[str], bytes]] = []
+        outer = self
+
+        class Handler:
+            async def handle_DATA(self, server, session, envelope):  # noqa: N802 (aiosmtpd's name)
+                if outer.refuse:
+                    return "451 Requested action aborted: try again later"
+                outer.messages.append((envelope.mail_from, list(envelope.rcpt_tos), envelope.content))
+                return "250 OK"
+
+        if not port:
+            import socket
+
+            with socket.socket() as sock:
+                sock.bind((host, 0))
+                port = sock.getsockname()[1]
+        self.port = port
+        self._controller = Controller(Handler(), hostname=host, port=port, ready_timeout=10)
+
+    def __enter__(self) -> SmtpReceiver:
+        self._controller.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._controller.stop()
