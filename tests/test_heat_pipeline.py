@@ -469,13 +469,14 @@ def test_heat_run_command(summer_db, capsys, no_charts):
     from advisory import cli
 
     rc = cli.main(["--db", summer_db.url, "heat", "run", "--date", str(OUTLOOK_DAY), "--block", "Bench Gala",
-                   "--no-deliver"])
+                   "--no-deliver", "--allow-past"])
     out = capsys.readouterr().out
     assert rc == 0 and "Bench Gala" in out and "high 38.5" in out
     assert _count(summer_db, Delivery) == 0
     rc = cli.main(["--db", summer_db.url, "heat", "run", "--date", "2026-07-32"])
     assert rc == 2 and "--date" in capsys.readouterr().err
-    rc = cli.main(["--db", summer_db.url, "heat", "run", "--date", str(OUTLOOK_DAY), "--block", "No such"])
+    rc = cli.main(["--db", summer_db.url, "heat", "run", "--date", str(OUTLOOK_DAY), "--block", "No such",
+                   "--allow-past"])
     assert rc == 2
 
 
