@@ -1010,13 +1010,12 @@ def _assess_group(blocks, out, idx, tz, day, table, tx10, tx50, tx90, tn, td, tp
                         "stop_utc": times_py[hit[-1]] if len(hit) else None,
                         "note": (what[:1].upper() + what[1:] + "." if what else "")
                         + f" Thresholds: {crop.source[k]}."},
-            "hours_above_c": {"elevated": float(crop.hours_above_c[k, 0]), "high": float(crop.hours_above_c[k, 1]),
-                              "acute": float(crop.hours_above_c[k, 2])},
+            "hours_above_c": {risk_heat.LEVELS[j + 1]: float(crop.hours_above_c[k, j]) for j in range(3)},
             "thresholds": [{"label": "damage likely", "value_c": float(thr[k, 1])}],
             "safer_hours": [{"start_utc": _py(s0), "stop_utc": _py(s1)} for s0, s1 in safe[k]],
             "crew_windows": _crew_windows(times_py, rest_row[k], crew, k, daylight[k]),
             "guidance": list(crew.guidance) + (
-                [] if safe[k] else ["No daylight hour today keeps continuous heavy work within the limit: "
+                [] if safe[k] else ["No daylight hour today is within the safer limit for heavy work: "
                                     "keep heavy work short, rest in shade on the schedule shown."]),
             "peak_heat_index_c": float(crew.peak_heat_index_c[k]), "peak_wbgt_c": float(crew.peak_wbgt_c[k]),
         }
@@ -1232,18 +1231,19 @@ def heat_flags(payload: dict) -> dict:
     -------
     dict
         ``warned``: the note flagged fruit sunburn risk (crop level above
-        quiet) or advised evaporative cooling -- the warning scored against the
-        sunburn event; ``crew_warned``: the crew level was above quiet;
+        the lowest level) or advised evaporative cooling -- the warning scored against the
+        sunburn event; ``crew_warned``: the crew level was above the lowest;
         ``threshold_c``: the crop's sunburn air temperature [°C] (None if the
         note has none); ``estimated``: the high was estimated from the morning
         readings (no outlook).
     """
     details = payload.get("details") or {}
-    crop_level = details.get("crop_level", "quiet")
+    calm = (risk_heat.LEVELS[0], "quiet")  # "quiet": the lowest level's key in payloads stored before it was renamed
+    crop_level = details.get("crop_level", calm[0])
     cooling = any(bool(step.get("advised")) for step in payload.get("plan") or []
                   if step.get("method") == "evaporative_cooling")
-    return {"warned": bool(crop_level != "quiet" or cooling),
-            "crew_warned": details.get("crew_level", "quiet") != "quiet",
+    return {"warned": bool(crop_level not in calm or cooling),
+            "crew_warned": details.get("crew_level", calm[0]) not in calm,
             "threshold_c": _f((details.get("sunburn") or {}).get("threshold_c")),
             "estimated": bool(details.get("max_estimated"))}
 

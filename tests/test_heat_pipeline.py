@@ -447,8 +447,8 @@ def test_polar_night_polar_day_and_a_half_hour_zone(tmp_path, db, quiet_channels
     peak = max(south.curve, key=lambda p: p.p50_c)
     noon = hp.sun_by_date(-34.93, 138.60, "Australia/Adelaide", [dt.date(2027, 1, 15)])["solar_noon"].iat[0]
     assert noon < pd.Timestamp(peak.time_utc) < noon + pd.Timedelta(hours=5)
-    assert south.level == "acute"        # 41 °C: above the grape's severe threshold and the crew limits
-    assert winter.status == asm.STATUS_OK and winter.level == "quiet" and len(winter.curve) == 24
+    assert south.level == "scorching"        # 41 °C: above the grape's severe threshold and the crew limits
+    assert winter.status == asm.STATUS_OK and winter.level == "easy" and len(winter.curve) == 24
     assert len(dst.curve) == 25 and dst.status == asm.STATUS_OK
 
 
@@ -492,7 +492,7 @@ def test_curve_daylight_hours_are_finite_and_levels_match_risk_model(summer_db):
         assert a.level_rank == max(risk_heat.LEVELS.index(crop), risk_heat.LEVELS.index(crew))
         temps = np.array([p.p50_c for p in a.curve])
         assert np.isfinite(temps).all()
-        assert a.details["sunburn"]["hours"] == a.details["hours_above_c"]["elevated"]
+        assert a.details["sunburn"]["hours"] == a.details["hours_above_c"]["hot"]
 
 
 # --------------------------------------------------------------------------- the curve through the morning reading

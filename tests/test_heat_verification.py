@@ -84,10 +84,10 @@ def test_each_forecast_is_checked_once_against_the_highest_daylight_reading(summ
         assert d["level"] == f.level and d["model"] == "outlook" and d["estimated"] is False
         thr = f.payload["details"]["sunburn"]["threshold_c"]
         assert d["threshold_c"] == thr and d["event"] is bool(expected >= thr)
-        crop_flag = f.payload["details"]["crop_level"] != "quiet" or any(
+        crop_flag = f.payload["details"]["crop_level"] != "easy" or any(
             s["advised"] for s in f.payload["plan"])
         assert d["warned"] is crop_flag
-        assert d["crew_warned"] is (f.payload["details"]["crew_level"] != "quiet")
+        assert d["crew_warned"] is (f.payload["details"]["crew_level"] != "easy")
 
 
 def _station_air_temp_c(folder, code: str) -> pd.Series:

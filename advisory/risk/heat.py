@@ -4,7 +4,7 @@ Pure and vectorised over blocks: arrays of shape ``(B, H)`` (blocks x hours)
 in, arrays out.  No database, no network.
 
 Risk levels (this tool's own names, used for crops and crews alike), in rising
-order: ``quiet``, ``elevated``, ``high``, ``acute``.
+order: ``easy``, ``hot``, ``very_hot``, ``scorching``.
 
 Crop heat
 ---------
@@ -28,13 +28,16 @@ Crew heat
 ---------
 Hourly heat index (:func:`advisory.physics.heat.heat_index_c`) and WBGT
 estimate (:func:`advisory.physics.heat.wbgt_estimate_c`).  Work-rest guidance
-for heavy work follows the ACGIH TLV screening criteria for acclimatised
-workers as reproduced by OSHA [3]_ (WBGT limits for heavy work: 75-100 % work
-26.0 °C, 50-75 % 27.5 °C, 25-50 % 29.0 °C, 0-25 % 30.5 °C -- checked in part
-against a reproduction of the table; the rest from memory, unverified); NIOSH
-[4]_ gives the same order of limits by metabolic rate.  Heat-index bands
-(91 / 103 / 115 °F) are those of the OSHA-NIOSH heat-index guidance, from
-memory, unverified.  Local workplace-safety rules come first wherever they are
+for heavy work follows the screening table of the ACGIH TLV for heat stress as
+reproduced by OSHA [3]_: its TLV column for acclimatised workers and its action
+limit for workers who are not acclimatised (about 2-3 °C lower), by share of
+each hour worked (75-100 %, 50-75 %, 25-50 %, 0-25 %).  The table gives no
+value for continuous (75-100 %) heavy work, nor for very heavy work above
+25-50 %; this tool never offers what the table does not give.  The values in
+:data:`WBGT_TLV_C` and :data:`WBGT_ACTION_LIMIT_C` are from memory (unverified
+against the printed table); NIOSH [4]_ gives the same order of limits by
+metabolic rate.  Heat-index band edges (91 / 103 / 115 °F) are from memory,
+unverified.  Local workplace-safety rules come first wherever they are
 stricter; this tool does not replace a workplace heat plan.
 
 References
@@ -62,6 +65,8 @@ from advisory.physics.moisture import STANDARD_PRESSURE_KPA, rel_humidity_pct_fr
 
 __all__ = [
     "CAUTIONS",
+    "WBGT_ACTION_LIMIT_C",
+    "WBGT_TLV_C",
     "CREW_WORK_REST_HEAVY",
     "CROP_HEAT",
     "CropHeatResult",
@@ -76,7 +81,7 @@ __all__ = [
 ]
 
 #: Risk level names, lowest first (this tool's own names).
-LEVELS = ("quiet", "elevated", "high", "acute")
+LEVELS = ("easy", "hot", "very_hot", "scorching")
 
 
 @dataclass(frozen=True)
@@ -123,18 +128,85 @@ _CROP_ALIASES = {"apples": "apple", "pome": "apple", "pear": "apple", "pears": "
                  "sweet cherry": "cherry", "cherries": "cherry", "tart cherry": "cherry",
                  "wine_grape": "grape"}
 
-#: Heavy-work WBGT limits (acclimatised, ACGIH TLV screening) and the work-rest they allow.
-CREW_WORK_REST_HEAVY = (
-    (26.0, "continuous heavy work with the usual breaks"),
-    (27.5, "at least 15 minutes' rest in shade each hour"),
-    (29.0, "at least 30 minutes' rest in shade each hour"),
-    (30.5, "at least 45 minutes' rest in shade each hour"),
-    (float("inf"), "no heavy work; only light tasks with frequent rest in shade"),
-)
+#: Work-rest regimens of the screening table: share of each hour worked, and the words for it.
+REGIMENS = ("75-100 %", "50-75 %", "25-50 %", "0-25 %")
+REGIMEN_WORDS = {"75-100 %": "continuous work", "50-75 %": "up to 45 min work an hour",
+                 "25-50 %": "up to 30 min work an hour", "0-25 %": "up to 15 min work an hour"}
+#: Where the work-rest values come from (named beside them in every note).
+WORK_REST_SOURCE = ("ACGIH TLV for heat stress, screening table as reproduced in the OSHA Technical Manual "
+                    "III:4 (TLV column: acclimatised; action limit: not acclimatised); values from memory")
+#: ACGIH TLV screening criteria, acclimatised workers: WBGT [°C] by regimen and work load (None: the
+#: table gives no value).  From memory, unverified.
+WBGT_TLV_C = {
+    "light": (31.0, 31.0, 32.0, 32.5),
+    "moderate": (28.0, 29.0, 30.0, 31.5),
+    "heavy": (None, 27.5, 29.0, 30.5),
+    "very_heavy": (None, None, 28.0, 30.0),
+}
+#: The table's action limit, workers not acclimatised: WBGT [°C].  From memory, unverified.
+WBGT_ACTION_LIMIT_C = {
+    "light": (28.0, 28.5, 29.5, 30.0),
+    "moderate": (25.0, 26.0, 27.0, 29.0),
+    "heavy": (None, 24.0, 25.5, 28.0),
+    "very_heavy": (None, None, 24.5, 27.0),
+}
+
+
+def most_work_allowed(wbgt_c: float, load: str = "heavy", acclimatised: bool = True) -> str | None:
+    """The regimen with the most work the table allows at a WBGT, or None when it allows none.
+
+    Parameters
+    ----------
+    wbgt_c : float
+        Wet-bulb globe temperature [°C].
+    load : str
+        "light", "moderate", "heavy" or "very_heavy".
+    acclimatised : bool
+        TLV column (True) or action limit (False).
+
+    Returns
+    -------
+    str or None
+        One of :data:`REGIMENS`; None when the WBGT is above every value of the column.
+    """
+    limits = (WBGT_TLV_C if acclimatised else WBGT_ACTION_LIMIT_C)[load]
+    for regimen, lim in zip(REGIMENS, limits, strict=True):
+        if lim is not None and wbgt_c <= lim:
+            return regimen
+    return None
+
+
+def _heavy_advice(wbgt_c: float) -> str:
+    """Heavy-work advice at a WBGT, for acclimatised workers (TLV) and the others (action limit)."""
+    def one(acc: bool) -> str:
+        r = most_work_allowed(wbgt_c, "heavy", acc)
+        return "none" if r is None else f"up to {REGIMEN_WORDS[r].split('up to ')[-1].replace(' work', '')}"
+    a, u = one(True), one(False)
+    if a == u:
+        return f"heavy work {a}, acclimatised or not; rest in shade the rest of each hour"
+    return (f"heavy work: acclimatised (TLV) {a}; not acclimatised (action limit) {u}; "
+            "rest in shade the rest of each hour")
+
+
+def _heavy_edges() -> tuple[float, ...]:
+    edges = {lim for col in (WBGT_TLV_C["heavy"], WBGT_ACTION_LIMIT_C["heavy"]) for lim in col if lim is not None}
+    return tuple(sorted(edges))
+
+
+#: Heavy-work advice by WBGT band: (upper WBGT edge [°C], advice for acclimatised and for
+#: unacclimatised workers).  The edges are every heavy-work value of both columns, so each band has
+#: one answer for each; the first band already needs rest (the table has no continuous heavy work).
+CREW_WORK_REST_HEAVY = tuple((edge, _heavy_advice(edge)) for edge in _heavy_edges()) + (
+    (float("inf"), "no heavy work, acclimatised or not; only light tasks with frequent rest in shade"),)
+#: WBGT [°C] up to which the table allows the most heavy work it gives (50-75 % of the hour) to workers
+#: who are not acclimatised (action limit): the "safer hours" for heavy work.
+SAFER_WBGT_C = WBGT_ACTION_LIMIT_C["heavy"][1]
 #: Heat-index band edges [°C] (91, 103, 115 °F) separating the crew levels.
 HEAT_INDEX_BANDS_C = (32.8, 39.4, 46.1)
-#: WBGT edges [°C] separating crew levels for heavy work.
-WBGT_BANDS_C = (26.0, 27.5, 30.5)
+#: WBGT edges [°C] separating crew levels: where heavy work needs rest even for workers not
+#: acclimatised (action limit, 50-75 %), where acclimatised workers need more than 15 min rest an hour
+#: (TLV, 50-75 %), and where the TLV allows no heavy work (above 0-25 %).
+WBGT_BANDS_C = (24.0, 27.5, 30.5)
 
 WATER_GUIDANCE = ("Drink about a cup (250 mL) of cool water every 15-20 minutes while working in the heat, "
                   "even without thirst; for long shifts add electrolytes, and do not exceed about "
@@ -335,7 +407,7 @@ class CrewHeatResult:
     heat_index_c: np.ndarray          # (B, H)
     wbgt_c: np.ndarray                # (B, H)
     level: np.ndarray                 # (B, H) index into LEVELS
-    heavy_work_ok: np.ndarray         # (B, H) bool: continuous heavy work within the TLV
+    heavy_work_ok: np.ndarray         # (B, H) bool: heavy work at 50-75 % within the action limit
     work_rest: np.ndarray             # (B, H) str: heavy-work guidance for the hour
     day_level: np.ndarray             # (B,) worst hourly level
     day_level_name: np.ndarray        # (B,)
@@ -368,10 +440,12 @@ def crew_heat(times, air_temp_c, dew_point_c, *, sunrise=None, sunset=None, sun_
     Returns
     -------
     CrewHeatResult
-        ``level`` per hour is the higher of the WBGT band (26.0 / 27.5 / 30.5 °C
-        for heavy work) and the heat-index band (91 / 103 / 115 °F).
-        ``heavy_work_ok`` marks hours where continuous heavy work stays within the
-        acclimatised TLV (WBGT below 26.0 °C): the safer hours for heavy work.
+        ``level`` per hour is the higher of the WBGT band (:data:`WBGT_BANDS_C`)
+        and the heat-index band (91 / 103 / 115 °F).  ``heavy_work_ok`` marks
+        hours where the table allows heavy work at 50-75 % of the hour even to
+        workers not acclimatised (WBGT at or below :data:`SAFER_WBGT_C`): the
+        safer hours for heavy work.  No hour offers continuous heavy work (the
+        table has no value for it).
     """
     temp = np.atleast_2d(np.asarray(air_temp_c, dtype=float))
     td = np.minimum(np.broadcast_to(np.asarray(dew_point_c, dtype=float), temp.shape), temp)
@@ -396,11 +470,15 @@ def crew_heat(times, air_temp_c, dew_point_c, *, sunrise=None, sunset=None, sun_
     texts = np.array([x[1] for x in CREW_WORK_REST_HEAVY], dtype=object)
     row = np.minimum(np.searchsorted(limits, wbgt, side="left"), len(limits) - 1)
     work_rest = texts[row]
-    ok = wbgt < CREW_WORK_REST_HEAVY[0][0]
+    ok = wbgt <= SAFER_WBGT_C
     day_level = level.max(axis=1)
     guidance = [WATER_GUIDANCE, ACCLIMATISATION_GUIDANCE,
                 "Plan heavy work (picking ladders, pruning, carrying bins) for the safer hours; "
-                "provide shade close to the work and rest there on the schedule shown."]
+                "provide shade close to the work and rest there on the schedule shown.",
+                "The work-rest table gives no value for continuous heavy work: even in the safer hours, "
+                "heavy work is up to 45 min an hour with rest in shade. Safer hours are those where that "
+                "holds for workers not acclimatised too (WBGT at or below 24.0 °C).",
+                f"Work-rest values: {WORK_REST_SOURCE}."]
     return CrewHeatResult(
         heat_index_c=hi, wbgt_c=wbgt, level=level, heavy_work_ok=ok, work_rest=work_rest,
         day_level=day_level, day_level_name=np.array([LEVELS[v] for v in day_level]),

@@ -22,15 +22,15 @@ def _day(tn, tx):
 
 
 def test_levels_are_own_names():
-    assert rh.LEVELS == ("quiet", "elevated", "high", "acute")
-    for word in ("watch", "warning", "advisory", "excessive", "caution", "danger"):
+    assert rh.LEVELS == ("easy", "hot", "very_hot", "scorching")
+    for word in ("watch", "warning", "advisory", "excessive", "caution", "danger", "high", "extreme", "severe"):
         assert all(word not in level for level in rh.LEVELS)
 
 
 def test_apple_hot_day_levels_and_hours():
     times, temp = _day([16.0, 14.0], [36.5, 27.0])
     res = rh.crop_heat(times, temp, ["apple", "apple"], sunrise=[SR] * 2, sunset=[SS] * 2)
-    assert list(res.level_name) == ["high", "quiet"]
+    assert list(res.level_name) == ["very_hot", "easy"]
     assert res.hours_above_c[0, 0] >= res.hours_above_c[0, 1] > 0
     assert res.hours_above_c[0, 2] == 0
     assert res.hours_above_c[1].sum() == 0
@@ -77,7 +77,7 @@ def test_cooling_in_humid_air_is_flagged():
 def test_crop_names_and_generic_fallback():
     times, temp = _day([15.0, 15.0, 15.0], [36.0, 36.0, 36.0])
     res = rh.crop_heat(times, temp, ["Wine grape", "Sweet cherry", "walnut"])
-    assert list(res.level_name) == ["elevated", "high", "high"]
+    assert list(res.level_name) == ["hot", "very_hot", "very_hot"]
     assert any("generic" in n for n in res.notes[2])
 
 
@@ -85,7 +85,7 @@ def test_crew_heat_levels_and_safer_hours():
     times, temp = _day([18.0, 12.0], [38.0, 24.0])
     res = rh.crew_heat(times, temp, np.array([[20.0], [5.0]]), sunrise=[SR] * 2, sunset=[SS] * 2)
     assert res.heat_index_c.shape == temp.shape
-    assert list(res.day_level_name) == ["acute", "quiet"]
+    assert list(res.day_level_name) == ["scorching", "easy"]
     windows = rh.safe_windows(times, res.heavy_work_ok, sunrise=[SR] * 2, sunset=[SS] * 2)
     first = pd.Timestamp(windows[0][0][0]).tz_localize("UTC").tz_convert(TZ)
     assert first.hour < 10                           # the cool morning is the safer time
@@ -110,3 +110,26 @@ def test_cautions_and_guidance():
     times, temp = _day([20.0], [34.0])
     res = rh.crew_heat(times, temp, np.array([[15.0]]))
     assert any("water" in g.lower() for g in res.guidance)
+
+
+def test_work_rest_never_offers_continuous_heavy_work_and_covers_both_groups():
+    # ACGIH TLV screening table (from memory): no value for continuous (75-100 %) heavy work.
+    assert rh.WBGT_TLV_C["heavy"][0] is None and rh.WBGT_ACTION_LIMIT_C["heavy"][0] is None
+    for wbgt in np.arange(15.0, 35.0, 0.25):
+        assert rh.most_work_allowed(wbgt, "heavy", True) != "75-100 %"
+        assert rh.most_work_allowed(wbgt, "heavy", False) != "75-100 %"
+    for _, text in rh.CREW_WORK_REST_HEAVY:
+        assert "continuous" not in text
+        assert "acclimatised" in text
+    # the action limit (not acclimatised) sits 2-3.5 °C below the TLV for each heavy-work regimen
+    for tlv, al in zip(rh.WBGT_TLV_C["heavy"][1:], rh.WBGT_ACTION_LIMIT_C["heavy"][1:], strict=True):
+        assert 2.0 <= tlv - al <= 3.5
+    times, temp = _day([20.0], [24.0])               # a mild day: WBGT well below every limit
+    res = rh.crew_heat(times, temp, np.array([[8.0]]), sunrise=[SR], sunset=[SS])
+    assert res.wbgt_c.max() < 24.0
+    assert all("continuous" not in str(t) for t in res.work_rest[0])
+    assert all(str(t).startswith("heavy work up to 45 min an hour") for t in res.work_rest[0])
+    # 26.5 °C: 45 min for acclimatised workers, 15 min for the others
+    at = rh.CREW_WORK_REST_HEAVY[[e for e, _ in rh.CREW_WORK_REST_HEAVY].index(27.5)][1]
+    assert "acclimatised (TLV) up to 45 min" in at and "not acclimatised (action limit) up to 15 min" in at
+    assert any("ACGIH TLV" in g and "from memory" in g for g in res.guidance)
