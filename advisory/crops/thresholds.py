@@ -370,3 +370,42 @@ def critical_temps_frame(crops, stages, t10_override_c=None, t90_override_c=None
             _check_pair(float(df.at[i, "t10_c"]), float(df.at[i, "t90_c"]), c[i], s[i])
     df["verified"] = df["verified"].astype(bool)
     return df
+
+
+#: Stage-table sources measured on another cultivar family than the crop's usual one: crop -> (what the
+#: source's values were measured on, the family the crop's blocks usually are).
+_OTHER_FAMILY = {"wine_grape": ("Concord", "Concord grapes (Vitis labruscana)",
+                                "a wine grape of Vitis vinifera, another cultivar family")}
+
+
+def cultivar_note(crop: str, variety: str | None, source: str | None) -> str | None:
+    """A line for the notice when the critical temperatures were measured on another cultivar family.
+
+    The wine-grape rows of the table are the Concord values of Proebsting,
+    Brummund & Clore (1988) [3]_: Concord is *V. labruscana*; wine grapes are
+    mostly *V. vinifera*, whose buds may differ.  A block with its own values
+    (a block override) gets no note.
+
+    Parameters
+    ----------
+    crop : str
+        Crop name (any spelling :func:`normalise_crop` accepts).
+    variety : str or None
+        The block's variety, named in the note.
+    source : str or None
+        The source text of the critical temperatures used.
+
+    Returns
+    -------
+    str or None
+    """
+    try:
+        c = normalise_crop(crop)
+    except InputError:
+        return None
+    other = _OTHER_FAMILY.get(c)
+    if other is None or not source or other[0] not in source or source.startswith("block override"):
+        return None
+    who = f"{variety} is" if variety else "This block is"
+    return (f"These critical temperatures were measured on {other[1]}. {who} {other[2]}: its buds may "
+            "be hardier or tenderer. Use local values for the variety (a block override) where you have them.")

@@ -1,8 +1,10 @@
 """A PNG chart of the night (frost) or day (heat) temperature curve for a notice.
 
 Frost: the middle forecast (p50) with its 10-90 % band, the wet-bulb curve when
-known, the stage's T10 and T90, the protection run shaded, sunset and sunrise
-marked.  Heat: the day curve with its band, heat index and WBGT estimate when
+the block's plan starts on it (sprinklers), the stage's T10 and T90, each
+advised plan's start temperature, the protection run shaded (never in green:
+green would read as "safe"), the ready-by time and the time the air reaches T10,
+sunset and sunrise marked.  Heat: the day curve with its band, heat index and WBGT estimate when
 known, the thresholds, the sunburn and heavy-work windows.  The time axis is
 the farm's local time; temperatures in the farm's units.
 
@@ -33,7 +35,9 @@ LINE_FROST = "#16365c"
 WET_BULB = "#138a8a"
 T10 = "#d97706"
 T90 = "#b42318"
-PROTECT = "#5fae7b"
+PROTECT = "#7a6fb0"   # a run band: a muted violet, not green (green would read as "safe")
+START = "#3d4970"
+READY = "#7a6fb0"
 SUN = "#c99a06"
 BAND_HEAT = "#f6c7a5"
 LINE_HEAT = "#a3330f"
@@ -41,7 +45,7 @@ HEAT_INDEX = "#e07b00"
 WBGT = "#6b3fa0"
 THRESHOLD = "#7c2d12"
 SUNBURN = "#f59e0b"
-WORK = "#5fae7b"
+WORK = "#8a94a8"      # heavy-work hours: a neutral grey-blue
 
 
 def _num(v, units):
@@ -117,7 +121,7 @@ def chart_png(notice: BlockNotice | dict, *, width_px: int = 480, height_px: int
     ax.plot(times, p50, color=LINE_HEAT if heat else LINE_FROST, linewidth=2.2, label="middle forecast")
     if not heat:
         wb = series("wet_bulb_c")
-        if any(math.isfinite(v) for v in wb):
+        if "wet_bulb" in (n.chart.curves or []) and any(math.isfinite(v) for v in wb):
             ax.plot(times, wb, color=WET_BULB, linewidth=1.3, linestyle=(0, (4, 2)), label="wet bulb")
     else:
         hi = series("heat_index_c")
@@ -132,13 +136,19 @@ def chart_png(notice: BlockNotice | dict, *, width_px: int = 480, height_px: int
         if v is None or not math.isfinite(v):
             continue
         role = line.get("role")
-        colour = {"t10": T10, "t90": T90}.get(role, THRESHOLD)
-        ax.axhline(w.temp_value(v, units), color=colour, linewidth=1.2,
-                   linestyle="--" if role != "t90" else "-.", label=_plain(line.get("label", "")))
+        colour = {"t10": T10, "t90": T90, "start": START}.get(role, THRESHOLD)
+        style = {"t90": "-.", "start": (0, (1, 1.5))}.get(role, "--")
+        ax.axhline(w.temp_value(v, units), color=colour, linewidth=1.2, linestyle=style,
+                   label=_plain(line.get("label", "")))
 
     for mark in n.chart.marks:
         t = w.parse_time(mark.get("time_utc"))
         if not t or t < t0 or t > t1:
+            continue
+        role = mark.get("role")
+        if role in ("ready", "critical"):  # plan marks: a line with its label in the legend
+            ax.axvline(t, color=READY if role == "ready" else T10, linewidth=1.3,
+                       linestyle=(0, (5, 2)) if role == "ready" else (0, (2, 2)), label=_plain(mark.get("label", "")))
             continue
         ax.axvline(t, color=SUN, linewidth=1.1, linestyle=":")
         right = (t - t0) > 0.75 * (t1 - t0)

@@ -68,6 +68,7 @@ from typing import Any
 
 from advisory import assessment as asm
 from advisory.assessment import Assessment, pickle_by_fields
+from advisory.crops import thresholds
 from advisory.notices import words as w
 from advisory.risk import cautions as caution_texts
 from advisory.store import jsoncodec
@@ -108,7 +109,29 @@ FOOTER_HEAT = (
     "workplace-safety and heat-illness rules, your workplace heat plan and advice from your "
     "extension service or a licensed adviser come first.")
 
+#: A text message is one GSM 03.38 message: at most 160 characters of the basic set (``words.gsm_safe``).
+#: Every message ends with its caution (below) and stays within this length, caution included.
 SMS_MAX = 160
+#: The caution that ends every frost or heat text message (block notices and farm summaries).
+SMS_CAUTION_FROST = "Decision support only; block thermometers first."
+SMS_CAUTION_HEAT = "Decision support only; local heat rules first."
+#: Longest block name in a text message (longer names are shortened with "~").
+SMS_NAME_MAX = 18
+
+
+def sms_caution(kind: str) -> str:
+    return SMS_CAUTION_HEAT if kind == "heat" else SMS_CAUTION_FROST
+
+
+def bud_temperature_line(units: str) -> str:
+    """The one line every frost notice carries: T10/T90 are bud temperatures, and where to read them.
+
+    Under clear skies buds lose heat by radiation and run colder than the
+    screen air, about 0.5-2 °C (common practice, from memory).
+    """
+    lo, hi = w.temp_delta(0.5, units).split(" ")[0], w.temp_delta(2.0, units)
+    return (f"T10 and T90 are bud temperatures: under clear skies buds run {lo}-{hi} colder than the "
+            "screen air, so read thermometers at bud height in the coldest part of the block.")
 
 
 # --------------------------------------------------------------------------------------------------
@@ -155,7 +178,9 @@ class ChartSpec:
 
     ``lines``: ``{"label", "value_c", "role"}`` (role ``t10``, ``t90`` or ``threshold``);
     ``windows``: ``{"label", "start_utc", "stop_utc", "role"}`` (``protect``, ``sunburn``, ``work``);
-    ``marks``: ``{"label", "time_utc", "role"}`` (``sunset``, ``sunrise``, ``critical``, ``peak``).
+    ``marks``: ``{"label", "time_utc", "role"}`` (``sunset``, ``sunrise``, ``critical``, ``ready``, ``peak``);
+    ``curves``: the extra curves of the data to draw (``wet_bulb`` when a plan starts on the wet bulb).
+    Line roles also include ``start`` (the air or wet-bulb temperature at which a plan starts).
     """
 
     kind: str
@@ -163,6 +188,7 @@ class ChartSpec:
     lines: list[dict[str, Any]] = field(default_factory=list)
     windows: list[dict[str, Any]] = field(default_factory=list)
     marks: list[dict[str, Any]] = field(default_factory=list)
+    curves: list[str] = field(default_factory=list)
 
 
 @dataclass
@@ -526,24 +552,37 @@ def _steps(a: Assessment):
     return advised, none_advised
 
 
-def _sms(parts: list[tuple[str, bool]]) -> str:
-    """Join parts (text, required) into one text message of at most 160 GSM characters.
+def _sms(parts: list[tuple], caution: str = SMS_CAUTION_FROST) -> str:
+    """Join parts (text, keep) into one text message of at most :data:`SMS_MAX` GSM characters,
+    ending with ``caution``.
 
-    Optional parts are dropped from the end until it fits; then the text is cut.
+    ``keep`` is True for a part that must stay; otherwise False or a number:
+    optional parts are dropped, lowest ``keep`` first (the later one of equal
+    ones), until the message fits; then the text before the caution is cut.
+    A part given as (text, keep, short) is shortened to ``short`` (which then
+    stays) instead of dropped.  The caution is never cut.
     """
-    parts = [(w.gsm_safe(t), req) for t, req in parts if t]
+    shorts = {i: w.gsm_safe(p[2]) for i, p in enumerate(parts) if len(p) > 2 and p[0]}
+    parts = [(w.gsm_safe(p[0]), p[1], i) for i, p in enumerate(parts) if p[0]]
+    tail = w.gsm_safe(caution)
+    room = SMS_MAX - len(tail) - 1
     while True:
-        text = " ".join(t for t, _ in parts)
-        if len(text) <= SMS_MAX:
-            return text
-        opt = [i for i, (_, req) in enumerate(parts) if not req]
+        text = " ".join(t for t, _, _ in parts)
+        if len(text) <= room:
+            return f"{text} {tail}"
+        opt = [(int(keep), -i) for i, (_, keep, _) in enumerate(parts) if keep is not True]
         if not opt:
-            return text[: SMS_MAX - 3].rstrip() + "..."
-        parts.pop(opt[-1])
+            return text[: room - 3].rstrip() + "... " + tail
+        i = -min(opt)[1]
+        orig = parts[i][2]
+        if orig in shorts:
+            parts[i] = (shorts[orig], True, orig)
+        else:
+            parts.pop(i)
 
 
-def _short_name(name: str, n: int = 28) -> str:
-    return name if len(name) <= n else name[: n - 1].rstrip() + "~"
+def _short_name(name: str, n: int = 28, mark: str = "~") -> str:
+    return name if len(name) <= n else name[: n - 1].rstrip() + mark
 
 
 def _caution_list(keys: list[str]) -> list[CautionText]:
@@ -665,8 +704,7 @@ def _plan_section(a: Assessment, f: _Fmt) -> Section:
             q = {k: v for k, v in q.items() if k in _ADEQUACY_KEYS}
             if q:
                 g.lines.append("; ".join(f"{w.quantity_label(k)} {w.quantity(k, v, f.units)}" for k, v in q.items()))
-            if start_rule:
-                g.lines.append(f"Its start rule: {start_rule}")
+            # No start rule either: for a method ruled out tonight it would read as an instruction.
             sec.groups.append(g)
             continue
         if started is not None:
@@ -798,16 +836,17 @@ def _frost(a: Assessment, f: _Fmt, name: str):
         lead.append(s + ".")
     stage = a.stage
     if _finite(a.t10_c):
+        # The critical time is when the middle forecast reaches T10 itself (protection starts earlier).
         if a.critical_time_utc:
-            s = f"Critical for {stage} buds ({f.t(a.t10_c)}) from {f.clock(a.critical_time_utc)}"
+            s = f"Critical for {stage} buds ({f.t(a.t10_c)}) reached at {f.clock(a.critical_time_utc)}"
             if _finite(a.hours_below_t10) and a.hours_below_t10 > 0:
                 s += f", about {w.hours(a.hours_below_t10)} at or below it"
             lead.append(s + ".")
         elif _finite(a.p10_c) and a.p10_c <= a.t10_c:
-            lead.append(f"Stays above the critical {f.t(a.t10_c)} for {stage} on the middle forecast; "
+            lead.append(f"Critical for {stage} buds ({f.t(a.t10_c)}) not reached on the middle forecast; "
                         "the cold end of the range goes below it.")
         else:
-            lead.append(f"Stays above the critical {f.t(a.t10_c)} for {stage}.")
+            lead.append(f"Critical for {stage} buds ({f.t(a.t10_c)}) not reached.")
     actions = []
     for s in advised:
         m = w.method_name(s.method)
@@ -833,7 +872,8 @@ def _frost(a: Assessment, f: _Fmt, name: str):
     if actions:
         lead.append(". ".join(actions) + ".")
     elif none_advised:
-        lead.append("No usable protection on this block tonight.")
+        lead.append("No usable protection on this block tonight: check the buds, call your adviser tonight "
+                    "and record the stage.")
     elif a.level_rank >= 2:
         lead.append("No protection run advised on the middle forecast; have it ready and check thermometers.")
     elif a.level_rank == 1:
@@ -849,21 +889,28 @@ def _frost(a: Assessment, f: _Fmt, name: str):
     # headline, subject, text message
     core = f"{a.block}: low {f.t(a.p50_c)}" if _finite(a.p50_c) else a.block
     if a.critical_time_utc:
-        core += f", critical from {f.clock(a.critical_time_utc)}"
-    sms_parts = [(f"{name.upper()} {_short_name(a.block)} night {w.short_day(a.night)}:", True)]
+        core += f", critical at {f.clock(a.critical_time_utc)}"
+    elif _finite(a.p50_c) and _finite(a.t10_c):
+        core += ", critical not reached"
+    sms_parts: list[tuple] = [
+        (f"{name} - {_short_name(a.block, SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True)]
     if _finite(a.p50_c):
-        rng = (f" ({w.temp_range(a.p10_c, a.p90_c, f.units, ascii_only=True)})"
-               if _finite(a.p10_c) and _finite(a.p90_c) else "")
-        sms_parts.append((f"low {w.temp(a.p50_c, f.units, ascii_only=True)}{rng}.", True))
-    if a.critical_time_utc:
-        sms_parts.append((f"Critical from {f.clock(a.critical_time_utc)}.", False))
-    for s in advised:
+        low = f"low {w.temp(a.p50_c, f.units, ascii_only=True)}"
+        if _finite(a.p10_c) and _finite(a.p90_c):  # shortened to the low alone when space is short
+            sms_parts.append((f"{low} ({w.temp_range(a.p10_c, a.p90_c, f.units, ascii_only=True)}).", 2,
+                              f"{low}."))
+        else:
+            sms_parts.append((f"{low}.", True))
+    for s in advised:  # what to do must stay
         if s.start_utc is not None:
-            stop = f"-{w.clock(s.stop_utc, f.tz)[:5]}" if s.stop_utc else ""
+            stop = f"-{f.clock(s.stop_utc)}" if s.stop_utc else f" {f.clock(s.start_utc)[6:]}"
             on = " on since " if getattr(s, "started_utc", None) is not None else " "
-            sms_parts.append((f"{w.method_name(s.method).capitalize()}{on}{f.clock(s.start_utc)[:5]}{stop}.", False))
+            sms_parts.append((f"{w.method_name(s.method).capitalize()}{on}{f.clock(s.start_utc)[:5]}{stop}.", True))
     if none_advised:
-        sms_parts.append(("No usable protection.", False))
+        sms_parts.append(("Check buds; call adviser tonight.", True))
+    if a.critical_time_utc and _finite(a.t10_c):
+        sms_parts.append((f"Critical {w.temp(a.t10_c, f.units, ascii_only=True)} at "
+                          f"{f.clock(a.critical_time_utc)[:5]}.", 1))
 
     # body
     sections = []
@@ -889,8 +936,12 @@ def _frost(a: Assessment, f: _Fmt, name: str):
         if _finite(d.get("hours_below_t10_cold")):
             s += f", {w.hours(d['hours_below_t10_cold'])} if colder"
         buds.items.append(s)
+    buds.paragraphs.append(bud_temperature_line(f.units))
     if a.critical_source:
         buds.items.append(f"Critical temperatures: {a.critical_source}")
+    other_family = thresholds.cultivar_note(a.crop, a.variety, a.critical_source)
+    if other_family:
+        buds.paragraphs.append(other_family)
     sections.append(buds)
     sections.append(_plan_section(a, f))
     sections.append(_data_section(a, f))
@@ -904,9 +955,25 @@ def _frost(a: Assessment, f: _Fmt, name: str):
     if _finite(a.t90_c):
         chart.lines.append({"label": f"T90 {f.t(a.t90_c)}", "value_c": a.t90_c, "role": "t90"})
     for s in advised:
+        q = s.quantities or {}
+        wb_start = q.get("start_wet_bulb_c")
+        if _finite(wb_start):
+            chart.curves.append("wet_bulb")  # the wet bulb is drawn only where a plan starts on it
+            chart.lines.append({"label": f"start {w.method_name(s.method)}: wet bulb {f.t(wb_start)}",
+                                "value_c": wb_start, "role": "start"})
+        elif _finite(q.get("start_air_temp_c")):
+            chart.lines.append({"label": f"start {w.method_name(s.method)}: air {f.t(q['start_air_temp_c'])}",
+                                "value_c": q["start_air_temp_c"], "role": "start"})
         if s.start_utc is not None:
             chart.windows.append({"label": w.method_name(s.method), "start_utc": w.iso(s.start_utc),
                                   "stop_utc": w.iso(s.stop_utc or a.sunrise_utc or s.start_utc), "role": "protect"})
+        ready = w.parse_time(getattr(s, "ready_by_utc", None))
+        if ready is not None and (s.start_utc is None or ready < s.start_utc):
+            chart.marks.append({"label": f"ready by {f.clock(ready)[:5]}", "time_utc": w.iso(ready), "role": "ready"})
+    chart.curves = list(dict.fromkeys(chart.curves))
+    if a.critical_time_utc:
+        chart.marks.append({"label": f"T10 at {f.clock(a.critical_time_utc)[:5]}",
+                            "time_utc": w.iso(a.critical_time_utc), "role": "critical"})
     if a.sunset_utc:
         chart.marks.append({"label": f"sunset {f.clock(a.sunset_utc)}", "time_utc": w.iso(a.sunset_utc),
                             "role": "sunset"})
@@ -980,7 +1047,7 @@ def _heat(a: Assessment, f: _Fmt, name: str):
     windows = [x for x in (d.get("crew_windows") or []) if isinstance(x, dict)]
     if safer:
         spans = ", ".join(f"{f.clock(s0)} to {f.clock(s1)}" for s0, s1 in safer)
-        lead.append(f"Heavy work: best {spans}.")
+        lead.append(f"Heavy work: best {spans}, still with rest in shade each hour.")
         crew.paragraphs.append(f"Hours better suited to heavy work: {spans}.")
     rows = []
     for x in windows:
@@ -1037,15 +1104,16 @@ def _heat(a: Assessment, f: _Fmt, name: str):
     core = f"{a.block}: high {f.t(a.p50_c)}" if _finite(a.p50_c) else a.block
     if hot_start and hot_stop:
         core += f", hottest {f.clock(hot_start)[:5]}-{f.clock(hot_stop)}"
-    sms_parts = [(f"{name.upper()} {_short_name(a.block)} {w.short_day(a.night)}:", True)]
+    sms_parts: list[tuple] = [
+        (f"{name} - {_short_name(a.block, SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True)]
     if _finite(a.p50_c):
         sms_parts.append((f"high {w.temp(a.p50_c, f.units, ascii_only=True)}"
                           + (f" at {f.clock(t_max)}" if t_max else "") + ".", True))
     if _finite(sb_hours) and sb_hours > 0:
-        sms_parts.append((f"Sunburn risk {sb_hours:.0f} h.", False))
+        sms_parts.append((f"Sunburn risk {sb_hours:.0f} h.", 2))
     if safer:
-        sms_parts.append((f"Heavy work best {f.clock(safer[0][0])[:5]}-{f.clock(safer[0][1])}.", False))
-    sms_parts.append(("Water, shade, rest; never work alone.", False))
+        sms_parts.append((f"Heavy work best {f.clock(safer[0][0])[:5]}-{f.clock(safer[0][1])}.", 3))
+    sms_parts.append(("Water, shade, rest; never alone.", 1))
 
     sections = []
     if fruit.paragraphs or fruit.items:
@@ -1143,9 +1211,10 @@ def _status(a: Assessment, f: _Fmt, name: str):
     if not heat and a.status != asm.STATUS_NO_NIGHT and _finite(a.t10_c):
         lead.append(f"{a.stage.capitalize()} buds are damaged from about {f.t(a.t10_c)} (T10): check "
                     "thermometers in the block tonight.")
+        lead.append(bud_temperature_line(f.units))
     if next_step:
         lead.append(next_step)
-    sms_parts = [(f"{name.upper()} {_short_name(a.block)} {w.short_day(a.night)}:", True),
+    sms_parts = [(f"{name} - {_short_name(a.block, SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True),
                  (first.split(": ", 1)[-1], True)]
     for k, s in enumerate(running):  # before the rest: a cut text must still say it
         sms_parts.insert(1 + k, (f"Keep {w.method_name(s.method)} on.", True))
@@ -1166,8 +1235,16 @@ def _status(a: Assessment, f: _Fmt, name: str):
 # Updates
 # --------------------------------------------------------------------------------------------------
 
+def _style(a: Assessment) -> w.LevelStyle:
+    """How a notice shows its level: a frost level that means "protect" on a block with no usable
+    protection tonight is shown as what it is (at risk, unprotected), not as an order."""
+    if a.kind != "heat" and a.status == asm.STATUS_OK and _steps(a)[1]:
+        return w.unprotected_style(a.kind, a.level, a.level_rank, a.status)
+    return w.level_style(a.kind, a.level, a.level_rank, a.status)
+
+
 def _status_name(a: Assessment) -> str:
-    return w.level_style(a.kind, a.level, a.level_rank, a.status).name
+    return _style(a).name
 
 
 def changes(a: Assessment, previous: Assessment | None) -> list[str]:
@@ -1182,9 +1259,10 @@ def changes(a: Assessment, previous: Assessment | None) -> list[str]:
         out.append(f"{'low' if a.kind != 'heat' else 'high'} {f.t(previous.p50_c)} → {f.t(a.p50_c)}")
     pc, ac = previous.critical_time_utc, a.critical_time_utc
     if (pc is None) != (ac is None):
-        out.append(f"critical from {f.clock(ac)}" if ac else "no longer reaches the critical temperature")
+        out.append(f"critical temperature now reached at {f.clock(ac)}" if ac
+                   else "no longer reaches the critical temperature")
     elif pc and ac and abs((ac - pc).total_seconds()) >= 600:
-        out.append(f"critical from {f.clock(pc)} → {f.clock(ac)}")
+        out.append(f"critical temperature reached at {f.clock(pc)} → {f.clock(ac)}")
     before = {s.method: s for s in previous.plan}
     for s in a.plan:
         m = w.method_name(s.method)
@@ -1257,7 +1335,7 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
         data = _plain(a)
     a = _clean_names(a)
     f = _fmt(a.farm_tz, a.units)
-    style = w.level_style(a.kind, a.level, a.level_rank, a.status)
+    style = _style(a)
     name = style.name
     if a.status != asm.STATUS_OK:
         core, lead, sms_parts, sections, chart, keys = _status(a, f, name)
@@ -1278,7 +1356,7 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
         upd += (": " + "; ".join(changed) + ".") if changed else (
             "." if previous is None else ": small changes only; the plan stands.")
         lead = [upd] + lead
-        sms_parts.insert(0, (f"UPDATE {a.revision}", True))
+        sms_parts.insert(0, (f"Update {a.revision}:", True))
         sections.insert(0, Section("changes", "What changed", items=changed or ["Small changes only."]))
     subject = (prefix + core + f" ({when_txt})")[:250]
     headline = f"{name}: {core}"
@@ -1288,7 +1366,7 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
         crop=a.crop, variety=a.variety, stage=a.stage, night=a.night.isoformat(), revision=a.revision,
         is_update=a.is_update, level=a.level, level_rank=int(a.level_rank or 0), level_name=name,
         level_meaning=style.meaning, colour=style.colour, subject=subject, headline=headline, lead=lead,
-        sms=_sms(sms_parts), sections=sections, cautions=_caution_list(keys),
+        sms=_sms(sms_parts, sms_caution(a.kind)), sections=sections, cautions=_caution_list(keys),
         footer=FOOTER_HEAT if a.kind == "heat" else FOOTER_FROST, changes=changed, chart=chart,
         issued_utc=w.iso(a.reference_time_utc), data=data)
     return notice
@@ -1368,7 +1446,7 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0,
 
     rows: list[FarmRow] = []
     for x in items:
-        style = w.level_style(x.kind, x.level, x.level_rank, x.status)
+        style = _style(x)
         if x.status != asm.STATUS_OK:
             low = ""
             action = {"no_forecast": "no forecast: check the station and thermometers",
@@ -1391,16 +1469,19 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0,
             if none_advised:
                 acts.append("no usable protection")
             action = "; ".join(acts) or "none needed"
-        crit = f.clock(x.critical_time_utc) if x.critical_time_utc and x.status == asm.STATUS_OK else "-"
+        # when the middle forecast reaches T10 itself ("not reached" when it does not)
+        crit = "-"
+        if x.status == asm.STATUS_OK and x.kind != "heat":
+            crit = f.clock(x.critical_time_utc) if x.critical_time_utc else "not reached"
         rows.append(FarmRow(x.block, x.block_id, x.status, x.level, int(x.level_rank or 0), style.name,
                             style.colour, low, crit, action, x.kind))
 
     worst = items[0]
-    wstyle = w.level_style(worst.kind, worst.level, worst.level_rank, worst.status)
+    wstyle = _style(worst)
     # the summary shows the worst *level* among blocks with a forecast
     ok = [x for x in items if x.status == asm.STATUS_OK]
     top = max(ok, key=lambda x: x.level_rank or 0) if ok else worst
-    tstyle = w.level_style(top.kind, top.level, top.level_rank, top.status)
+    tstyle = w.level_style(top.kind, top.level, top.level_rank, top.status)  # the farm's worst level, as such
     if not ok:
         tstyle = wstyle
 
@@ -1443,36 +1524,41 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0,
     core = f"{a0.farm}, {when_txt}: {count_txt}"
     subject = f"[{tstyle.name}] " + (f"Update {revision}: " if is_update else "") + core
     subject = subject[:250]
-    head = w.gsm_safe(f"{_short_name(a0.farm, 24)} {w.short_day(a0.night)}"
-                      + (f" UPDATE {revision}:" if is_update else ":"))
+    head = w.gsm_safe(f"{_short_name(a0.farm, 24, '.')} {w.short_day(a0.night)}"
+                      + (f" update {revision}:" if is_update else ":"))
+    tail = w.gsm_safe(sms_caution(kind))
+    room = SMS_MAX - len(tail) - 1
     bits = []
     for x, r in zip(items, rows, strict=True):
         if r.status == asm.STATUS_OK and r.level_rank < 2:
             continue
-        bit = f"{r.level_name.upper()} {_short_name(r.block, 20)}"
+        bit = f"{_short_name(r.block, SMS_NAME_MAX, '.')} ({r.level_name})"
         st = _first_start(x) if r.status == asm.STATUS_OK else None
         if st:
             bit += f" from {f.clock(st)[:5]}"
         bits.append(w.gsm_safe(bit))
     tz_note = f" (times {f.clock(first_start[0])[6:]})" if first_start else ""
     if not bits:
-        who = f"all {len(rows)} blocks" if len(rows) > 1 else _short_name(rows[0].block)
-        sms = _sms([(head, True), (f"{who} {tstyle.name.lower()}.", True)])
+        who = f"all {len(rows)} blocks" if len(rows) > 1 else _short_name(rows[0].block, SMS_NAME_MAX, '.')
+        sms = _sms([(head, True), (f"{who} {tstyle.name.lower()}.", True)], sms_caution(kind))
     else:
         sms = ""
+        lower = len(rows) - len(bits)
         for k in range(len(bits), 0, -1):
-            rest = len(rows) - k
-            more = f"; {rest} other{'s' if rest != 1 else ''} lower" if rest and k == len(bits) else (
-                f"; +{len(bits) - k} more at risk" if k < len(bits) else "")
-            for tail in (tz_note, ""):
-                cand = f"{head} {'; '.join(bits[:k])}{more}.{tail}"
-                if len(cand) <= SMS_MAX:
-                    sms = cand
+            # the counts say plainly what is named and what is not: "5 at risk in all, 1 lower"
+            more = [f"{len(bits)} at risk in all"] if k < len(bits) else []
+            if lower:
+                more.append(f"{lower} lower")
+            more_txt = ("; " + ", ".join(more)) if more else ""
+            for tz_txt in (tz_note, ""):
+                cand = f"{head} {'; '.join(bits[:k])}{more_txt}.{tz_txt}"
+                if len(cand) <= room:
+                    sms = f"{cand} {tail}"
                     break
             if sms:
                 break
         if not sms:
-            sms = _sms([(head, True), (bits[0], True)])
+            sms = _sms([(head, True), (bits[0], True), (f"{len(bits)} at risk in all.", True)], sms_caution(kind))
 
     return FarmSummary(
         key=summary_key, kind=kind, farm=a0.farm, farm_tz=a0.farm_tz,

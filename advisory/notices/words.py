@@ -41,9 +41,16 @@ class LevelStyle:
     colour: str
 
 
-#: Colours by rank 0..4 (green, olive, amber, brick red, wine) and for "no result".
-RANK_COLOURS = ("#2d6a4f", "#5f6b1c", "#a85a05", "#b42318", "#6d1a36")
+#: Colours by rank 0..4: one hue (a slate indigo of our own) in steps of intensity, darker for more
+#: risk; the level's word is always printed beside or on it, so the colour never carries the meaning alone.
+#: White text stays readable on every step.
+RANK_COLOURS = ("#5e6b8a", "#4d5a7d", "#3d4970", "#2e3862", "#1f2754")
 STATUS_COLOUR = "#4b5563"
+
+_EASY = "No heat damage or unusual crew heat risk expected."
+_HOT = "Sunburn possible on exposed fruit; plan crew breaks for the afternoon."
+_VERY_HOT = "Sunburn likely on exposed fruit; move heavy work to cooler hours."
+_SCORCHING = "Fruit damage likely; stop heavy work in the hottest hours."
 
 #: Display of the risk levels by kind ("frost" nights, "heat" days) and level key.
 LEVELS: dict[str, dict[str, LevelStyle]] = {
@@ -54,29 +61,32 @@ LEVELS: dict[str, dict[str, LevelStyle]] = {
         "marked": LevelStyle("Stand by", "Damage is possible: have protection ready to start.",
                              RANK_COLOURS[2]),
         "serious": LevelStyle("Protect", "Damage is likely without protection.", RANK_COLOURS[3]),
-        "grave": LevelStyle("Protect: severe", "Heavy bud loss is likely without protection.",
+        "grave": LevelStyle("Protect: grave", "Heavy bud loss is likely without protection.",
                             RANK_COLOURS[4]),
     },
     "heat": {
         # keys of advisory.risk.heat
-        "quiet": LevelStyle("Easy day", "No heat damage or unusual crew heat risk expected.", RANK_COLOURS[0]),
-        "elevated": LevelStyle("Hot", "Sunburn possible on exposed fruit; plan crew breaks for the afternoon.",
-                               RANK_COLOURS[2]),
-        "high": LevelStyle("Very hot", "Sunburn likely on exposed fruit; move heavy work to cooler hours.",
-                           RANK_COLOURS[3]),
-        "acute": LevelStyle("Hot: severe", "Fruit damage likely; stop heavy work in the hottest hours.",
-                            RANK_COLOURS[4]),
+        "easy": LevelStyle("Easy day", _EASY, RANK_COLOURS[0]),
+        "hot": LevelStyle("Hot", _HOT, RANK_COLOURS[2]),
+        "very_hot": LevelStyle("Very hot", _VERY_HOT, RANK_COLOURS[3]),
+        "scorching": LevelStyle("Scorching", _SCORCHING, RANK_COLOURS[4]),
         # the frost-style keys, should a heat model use them
-        "nil": LevelStyle("Easy day", "No heat damage or unusual crew heat risk expected.", RANK_COLOURS[0]),
+        "nil": LevelStyle("Easy day", _EASY, RANK_COLOURS[0]),
         "slight": LevelStyle("Warm", "Warm afternoon: water and shade for crews as usual.", RANK_COLOURS[1]),
         "marked": LevelStyle("Hot", "Fruit sunburn possible; plan crew breaks for the afternoon.",
                              RANK_COLOURS[2]),
-        "serious": LevelStyle("Very hot", "Sunburn likely on exposed fruit; move heavy work to cooler hours.",
-                              RANK_COLOURS[3]),
-        "grave": LevelStyle("Hot: severe", "Fruit damage likely; stop heavy work in the hottest hours.",
-                            RANK_COLOURS[4]),
+        "serious": LevelStyle("Very hot", _VERY_HOT, RANK_COLOURS[3]),
+        "grave": LevelStyle("Scorching", _SCORCHING, RANK_COLOURS[4]),
     },
 }
+#: Heat level keys of notices stored before the keys were renamed, and the key each is now.
+_OLD_HEAT_KEYS = {"quiet": "easy", "elevated": "hot", "high": "very_hot", "acute": "scorching"}
+
+#: Names shown for a frost level whose block has no usable protection tonight: the level's own name
+#: ("Protect") would read as an order that cannot be carried out.
+UNPROTECTED_NAMES = {"serious": "At risk, unprotected", "grave": "Grave, unprotected"}
+UNPROTECTED_MEANING = ("No usable protection tonight: check the buds, call your adviser tonight and "
+                       "record the stage.")
 
 #: Names shown instead of a level when there is no forecast.
 STATUS_NAMES = {
@@ -102,11 +112,21 @@ def level_style(kind: str, level: str, rank: int = 0, status: str = "ok") -> Lev
         return LevelStyle(STATUS_NAMES.get(status, status.replace("_", " ").capitalize()),
                           "", STATUS_COLOUR)
     table = LEVELS.get(kind, LEVELS["frost"])
+    if kind == "heat":
+        level = _OLD_HEAT_KEYS.get(level, level)
     if level in table:
         return table[level]
     rank = max(0, min(int(rank or 0), len(RANK_COLOURS) - 1))
     name = level.replace("_", " ").strip().capitalize() or "Unrated"
     return LevelStyle(name, "", RANK_COLOURS[rank])
+
+
+def unprotected_style(kind: str, level: str, rank: int = 0, status: str = "ok") -> LevelStyle:
+    """The display of a frost level for a block with no usable protection (see :data:`UNPROTECTED_NAMES`)."""
+    style = level_style(kind, level, rank, status)
+    if status != "ok" or kind == "heat" or level not in UNPROTECTED_NAMES:
+        return style
+    return LevelStyle(UNPROTECTED_NAMES[level], UNPROTECTED_MEANING, style.colour)
 
 
 def method_name(method: str) -> str:

@@ -90,11 +90,24 @@ class RunSheet:
     caution_keys: tuple[str, ...]
 
 
-def level_name(level: str) -> str:
-    """The level's display name, as the notices show it (one vocabulary everywhere)."""
-    from advisory.notices.words import level_style
+def level_name(level: str, unprotected: bool = False) -> str:
+    """The level's display name, as the notices show it (one vocabulary everywhere); for a block
+    with no usable protection the name says so instead of reading as an order to protect."""
+    from advisory.notices.words import level_style, unprotected_style
 
-    return level_style("frost", level).name
+    return (unprotected_style if unprotected else level_style)("frost", level).name
+
+
+def _critical(sheet: RunSheet, r: BlockRisk) -> str:
+    """When the middle forecast reaches the critical temperature (T10) itself."""
+    t10 = _t(sheet, r.t10_c)
+    if r.critical_time_utc is None:
+        return f"air not forecast to reach T10 ({t10}) on the middle forecast"
+    return f"air reaches T10 ({t10}) at {_clock(r.critical_time_utc.astimezone(_zone(sheet.timezone)))}"
+
+
+def _loss(r: BlockRisk) -> str:
+    return f"expected bud loss {100 * r.expected_kill:.0f} %"
 
 
 def _zone(name: str) -> ZoneInfo:
@@ -286,6 +299,7 @@ def render_text(sheet: RunSheet) -> str:
         out.append(f"   stop {_stop_rule(sheet, r, p)}")
         out.append(f"   run {_run(p)}" + (f"; {_supply(sheet, p)}" if _supply(sheet, p) else ""))
         out.append(f"   min {_min_range(sheet, r)}")
+        out.append(f"   {_critical(sheet, r)}")
         for note in p.notes:
             out.append(f"   - {note}")
         titles = [caut.get(k).title for k in p.caution_keys if k not in caut.ALWAYS]
@@ -295,8 +309,9 @@ def render_text(sheet: RunSheet) -> str:
     if sheet.unprotected:
         out.append("AT RISK, NO USABLE PROTECTION:")
         for r in sheet.unprotected:
-            out.append(f"- {r.block} ({r.crop.replace('_', ' ')}, {r.stage}): {level_name(r.level)}, "
-                       f"min {_min_range(sheet, r)}, about {100 * r.expected_kill:.0f} % of buds at risk")
+            out.append(f"- {r.block} ({r.crop.replace('_', ' ')}, {r.stage}): {level_name(r.level, True)}, "
+                       f"min {_min_range(sheet, r)}, {_loss(r)}")
+            out.append(f"  {_critical(sheet, r)}")
             for p in r.recommended:
                 for note in p.notes:
                     out.append(f"  {note}")
@@ -344,9 +359,9 @@ def render_markdown(sheet: RunSheet) -> str:
         out += ["## At risk, no usable protection", ""]
         for r in sheet.unprotected:
             reasons = " ".join(n for p in r.recommended for n in p.notes)
-            out.append(f"- **{_md_escape(r.block)}** ({r.crop.replace('_', ' ')}, {r.stage}): {level_name(r.level)}, "
-                       f"minimum {_min_range(sheet, r)}, about {100 * r.expected_kill:.0f} % of buds at risk. "
-                       f"{_md_escape(reasons)}")
+            out.append(f"- **{_md_escape(r.block)}** ({r.crop.replace('_', ' ')}, {r.stage}): "
+                       f"{level_name(r.level, True)}, minimum {_min_range(sheet, r)}, {_loss(r)}; "
+                       f"{_critical(sheet, r)}. {_md_escape(reasons)}")
         out.append("")
     if sheet.quiet:
         out += ["## No protection needed", "",

@@ -110,3 +110,14 @@ def test_frame_matches_scalar_lookup_and_overrides():
         th.critical_temps_frame(["apple"], ["full bloom"], t10_override_c=[-9.0])
     with pytest.raises(InputError):
         th.critical_temps_frame(["apple"], ["bloom"])
+
+
+def test_wine_grape_notice_note_names_the_other_cultivar_family():
+    from advisory.crops import thresholds as t
+
+    ct = t.critical_temps("wine_grape", "bud burst")
+    note = t.cultivar_note("wine_grape", "Chardonnay", ct.source)
+    assert note and "Concord" in note and "Chardonnay" in note and "another cultivar family" in note
+    assert t.cultivar_note("apple", "Gala", t.critical_temps("apple", "full pink").source) is None
+    own = t.critical_temps("wine_grape", "bud burst", t10_override_c=-3.0, t90_override_c=-6.0)
+    assert t.cultivar_note("wine_grape", "Chardonnay", own.source) is None

@@ -57,3 +57,31 @@ def test_no_figures_left_behind():
 
 def test_data_uri():
     assert data_uri(b"\x89PNG").startswith("data:image/png;base64,")
+
+
+def test_frost_chart_draws_what_the_plan_uses_and_nothing_green_for_a_run():
+    import colorsys
+    import datetime as dt
+
+    from advisory.assessment import ProtectionStep
+    from advisory.notices import charts
+
+    wind = samples.frost_assessment()
+    wind.plan = [ProtectionStep(method="wind_machine", advised=True,
+                                start_utc=dt.datetime(2026, 4, 7, 9, 0, tzinfo=dt.UTC),
+                                stop_utc=dt.datetime(2026, 4, 7, 14, 0, tzinfo=dt.UTC),
+                                ready_by_utc=dt.datetime(2026, 4, 7, 7, 0, tzinfo=dt.UTC),
+                                quantities={"start_air_temp_c": -1.2, "inversion_c": 2.6})]
+    n = compose_block(wind)
+    assert "wet_bulb" not in n.chart.curves                  # a wind machine does not start on the wet bulb
+    starts = [x for x in n.chart.lines if x["role"] == "start"]
+    assert starts and starts[0]["value_c"] == -1.2 and "air -1.2 °C" in starts[0]["label"]
+    roles = {m["role"] for m in n.chart.marks}
+    assert {"ready", "critical"} <= roles
+    assert chart_png(n)
+    spr = compose_block(samples.frost_assessment())
+    assert spr.chart.curves == ["wet_bulb"]
+    assert any(x["role"] == "start" and "wet bulb -1.2 °C" in x["label"] for x in spr.chart.lines)
+    for colour in (charts.PROTECT, charts.READY, charts.START, charts.WORK):
+        h, s, _ = colorsys.rgb_to_hsv(*(int(colour[i:i + 2], 16) / 255 for i in (1, 3, 5)))
+        assert not (0.2 < h < 0.45 and s > 0.15), colour     # no green for "act"

@@ -28,7 +28,8 @@ def test_frost_lead_says_the_essentials_first():
     assert n.subject.startswith("[Protect] Creek Bing")
     # the low, its range, when it gets critical, the action with local times, the damage
     assert n.lead[0] == "Low -2.8 °C around 05:00 PDT (8 in 10 chance: -4.1 to -1.5 °C)."
-    assert "from 02:40 PDT" in n.lead[1] and "-2.2 °C" in n.lead[1]
+    # the critical time is when the air reaches T10 (it was printed as "from", like a start time)
+    assert "reached at 02:40 PDT" in n.lead[1] and "-2.2 °C" in n.lead[1]
     assert n.lead[2] == "Start over-tree sprinklers at 01:50 PDT, stop about 07:30 PDT."
     assert "14 %" in n.lead[3] and "62 %" in n.lead[3]
     keys = [s.key for s in n.sections]
@@ -70,7 +71,7 @@ def test_quiet_night_has_no_cautions_but_a_footer():
     assert n.cautions == []
     assert n.footer
     assert "No protection needed tonight." in n.lead
-    assert "Stays above the critical -2.2 °C" in n.lead[1]
+    assert n.lead[1] == "Critical for full pink buds (-2.2 °C) not reached."
     assert n.sections[1].groups[0].tag == "not advised"
 
 
@@ -116,7 +117,7 @@ def test_no_forecast_says_station_silent_since():
     assert "Reason: no observation for 7 h." in n.lead
     assert any("-2.2 °C" in line for line in n.lead)
     assert n.chart is None
-    assert n.sms.startswith("NO FORECAST Creek Bing 6 Apr:")
+    assert n.sms.startswith("No forecast - Creek Bing 6 Apr:")  # sentence case, no capitals
     assert "Quality flags: air_temp: stuck" in n.sections[0].items
 
 
@@ -143,7 +144,7 @@ def test_update_marks_and_lists_changes():
     assert "low -1.9 °C → -2.8 °C" in n.changes
     assert "over-tree sprinklers start 02:30 PDT → 01:50 PDT" in n.changes
     assert n.sections[0].key == "changes"
-    assert n.sms.startswith("UPDATE 1 PROTECT")
+    assert n.sms.startswith("Update 1: Protect - Creek Bing")
     assert n.key.endswith(":r1")
 
 
@@ -169,7 +170,8 @@ def test_no_equipment_block():
                                                       notes=["No protection equipment recorded for this block."])],
                                  cautions=["no_protection"])
     n = compose_block(a)
-    assert "No usable protection on this block tonight." in n.lead
+    assert ("No usable protection on this block tonight: check the buds, call your adviser tonight and "
+            "record the stage.") in n.lead
     assert n.sections[1].groups[0].tag == "AT RISK"
     assert "no_protection" in [c.key for c in n.cautions]
 
@@ -189,7 +191,7 @@ def test_heat_note():
     assert n.kind == "heat" and n.level_name == "Very hot"
     assert n.lead[0].startswith("High 35.4 °C around 16:00 PDT")
     assert "sunburn" in n.lead[1] and "31.5 °C" in n.lead[1]
-    assert n.lead[2] == "Heavy work: best 06:00 PDT to 11:00 PDT."
+    assert n.lead[2] == "Heavy work: best 06:00 PDT to 11:00 PDT, still with rest in shade each hour."
     keys = [s.key for s in n.sections]
     assert keys[:3] == ["fruit", "crew", "hours"]
     crew = n.sections[1]
@@ -278,7 +280,8 @@ def test_farm_summary_worst_first_with_run_sheet():
     assert rows[0]["start"] == "01:50 PDT"
     assert "FROST RUN SHEET" in s.runsheet["text"].upper()
     assert s.runsheet["csv"].startswith("order,")
-    assert len(s.sms) <= 160 and s.sms.startswith("Quillback Ridge Orchards 6 Apr: PROTECT Creek Bing from 01:50")
+    assert len(s.sms) <= 160 and s.sms.startswith("Quillback Ridge Orchards 6 Apr: Creek Bing (Protect) from 01:50")
+    assert s.sms.endswith(" Decision support only; block thermometers first.")
     back = notice_from_dict(json.loads(json.dumps(s.to_dict())))
     assert back == s
 
@@ -306,7 +309,7 @@ def test_dst_night_times_carry_their_own_abbreviation():
                                         CurvePoint(dt.datetime(2026, 11, 1, 9, 0, tzinfo=UTC), -2.0)])
     a.plan[0].start_utc = dt.datetime(2026, 11, 1, 8, 30, tzinfo=UTC)
     n = compose_block(a)
-    assert "from 01:30 PST" in n.lead[1]
+    assert "reached at 01:30 PST" in n.lead[1]
     assert "at 01:30 PDT" in n.lead[2]
 
 
@@ -322,10 +325,12 @@ def test_heat_model_levels_and_caution_texts():
 
     for rank, key in enumerate(heat.LEVELS):
         n = compose_block(samples.heat_assessment(level=key, level_rank=rank))
-        assert n.level_name in {"Easy day", "Hot", "Very hot", "Hot: severe"}
-    n = compose_block(samples.heat_assessment(level="high", cautions=list(heat.CAUTIONS)))
+        assert n.level_name in {"Easy day", "Hot", "Very hot", "Scorching"}
+    n = compose_block(samples.heat_assessment(level="very_hot", cautions=list(heat.CAUTIONS)))
     assert [c.text for c in n.cautions] == list(heat.CAUTIONS)       # the model's texts, not doubled
-    assert compose_block(samples.heat_assessment(level="acute", level_rank=3)).level_name == "Hot: severe"
+    # the top word is our own ("severe" was replaced); notices stored with the old keys still read right
+    assert compose_block(samples.heat_assessment(level="scorching", level_rank=3)).level_name == "Scorching"
+    assert compose_block(samples.heat_assessment(level="acute", level_rank=3)).level_name == "Scorching"
 
 
 def test_method_not_advised_shows_why_not_when():
@@ -435,7 +440,7 @@ def test_update_summary_names_the_blocks_with_news_and_shows_the_whole_farm():
     assert s.subject.startswith("[Protect] Update 2: Quillback Ridge Orchards, night of 6 Apr: ")
     assert s.lead[0] == "Update 2: new notice for Bench Gala; the other blocks stand as last sent."
     assert s.lead[1] == "2 blocks: 1 Protect, 1 Quiet."
-    assert "UPDATE 2:" in s.sms and len(s.sms) <= 160
+    assert "update 2:" in s.sms and len(s.sms) <= 160
     assert render(s, "text").startswith("QUILLBACK RIDGE ORCHARDS - Night of Mon 6 Apr 2026 (UPDATE 2)\n")
     # the run sheet is made at the update, not at the evening run of the worst block
     assert words.clock(quiet.reference_time_utc, quiet.farm_tz) in s.runsheet["text"].splitlines()[1]
@@ -454,3 +459,132 @@ def test_silence_notice_mid_run_says_to_keep_protection_running():
                for line in n.lead)
     assert "Keep over-tree sprinklers on." in n.sms
     assert any(sec.key == "plan" for sec in n.sections)
+
+
+# ------------------------------------------------------------------------------------------------
+# Read as a grower: critical time, bud temperature, blocks without protection, text-message cautions
+# ------------------------------------------------------------------------------------------------
+
+def _unprotected(**kw):
+    a = samples.frost_assessment(level="grave", level_rank=4, **kw)
+    a.plan = [ProtectionStep(method="overtree_sprinkler", advised=False,
+                             start_rule="when the wet bulb falls to -1.2 °C", quantities={
+                                 "rate_available_mm_h": 3.0, "rate_needed_mm_h": 3.4, "start_wet_bulb_c": -1.2},
+                             notes=["System 3 mm/h, needs 3.4 mm/h: 88 % of the need."]),
+              ProtectionStep(method="none", advised=True, notes=["No usable protection tonight."])]
+    a.cautions = ["no_protection"]
+    return a
+
+
+def test_critical_time_everywhere_is_when_t10_is_reached():
+    a = samples.frost_assessment()
+    n = compose_block(a)
+    assert "critical at 02:40 PDT" in n.subject and "critical at 02:40 PDT" in n.headline
+    assert "from 02:40" not in n.subject + n.headline + n.sms + " ".join(n.lead)
+    s = compose_farm([a])
+    assert s.rows[0].critical == "02:40 PDT"
+    assert s.data["blocks"][0]["critical_time_utc"] == "2026-04-07T09:40:00+00:00"
+    from advisory.notices.render import render
+    assert "critical at 02:40 PDT" in render(s, "text")
+    above = compose_block(samples.frost_assessment(critical_time_utc=None, p50_c=-1.5, p10_c=-3.0))
+    assert "critical not reached" in above.subject
+    assert "not reached on the middle forecast" in above.lead[1]
+    assert compose_farm([samples.frost_assessment(critical_time_utc=None)]).rows[0].critical == "not reached"
+
+
+def test_every_frost_notice_says_bud_temperature_is_not_air_temperature():
+    for a in (samples.frost_assessment(), samples.quiet_assessment(),
+              samples.frost_assessment(status="no_forecast", plan=[], curve=[], level="", cautions=[])):
+        n = compose_block(a)
+        lines = n.lead + [p for sec in n.sections for p in sec.paragraphs]
+        hit = [x for x in lines if "bud temperatures" in x]
+        assert len(hit) == 1, a.status
+        assert "0.5-2.0 °C colder" in hit[0] and "at bud height" in hit[0] and "coldest part" in hit[0]
+    imperial = compose_block(samples.frost_assessment(units="imperial"))
+    assert any("0.9-3.6 °F colder" in p for p in imperial.sections[0].paragraphs)
+
+
+def test_no_usable_protection_is_not_told_to_protect():
+    n = compose_block(_unprotected())
+    assert n.level_name == "Grave, unprotected"
+    assert not n.headline.lower().startswith("protect") and "protect:" not in n.sms.lower()
+    assert n.sms.startswith("Grave, unprotected - Creek Bing")
+    assert "Check buds; call adviser tonight." in n.sms
+    assert any("check the buds, call your adviser tonight and record the stage" in x for x in n.lead)
+    # a ruled-out method's start rule is not printed as something to do
+    plan = next(s for s in n.sections if s.key == "plan")
+    text = " ".join(line for g in plan.groups for line in g.lines)
+    assert "start rule" not in text.lower() and "when the wet bulb falls" not in text
+    s = compose_farm([_unprotected()])
+    assert s.rows[0].level_name == "Grave, unprotected"
+
+
+def test_wine_grape_notice_says_the_values_are_for_another_cultivar_family():
+    from advisory.crops import thresholds
+    ct = thresholds.critical_temps("wine_grape", "bud burst")
+    n = compose_block(samples.frost_assessment(crop="wine_grape", variety="Chardonnay", stage="bud burst",
+                                               critical_source=ct.source))
+    buds = n.sections[0]
+    assert any("Concord" in p and "another cultivar family" in p for p in buds.paragraphs)
+    assert not any("cultivar family" in p for p in compose_block(samples.frost_assessment()).sections[0].paragraphs)
+
+
+def test_farm_text_message_counts_what_it_does_not_name():
+    blocks = []
+    for i, name in enumerate(["North Honeycrisp Upper", "Creek Bing Lower Bench", "Bench Gala West Row",
+                              "Roadside Peaches East", "Lower Bartlett South"]):
+        blocks.append(samples.frost_assessment(block_id=10 + i, block=name, level="grave", level_rank=4))
+    blocks.append(samples.quiet_assessment(block_id=30))
+    s = compose_farm(blocks)
+    assert len(s.sms) <= 160
+    named = sum(1 for b in blocks[:5] if b.block[:15] in s.sms)
+    assert 0 < named < 5
+    assert "5 at risk in all, 1 lower." in s.sms           # five at risk in all, whatever is named
+    assert "more at risk" not in s.sms
+
+
+def test_level_words_and_colours_are_our_own():
+    from advisory.notices import words as wd
+    names = {st.name for table in wd.LEVELS.values() for st in table.values()}
+    assert not any("severe" in x.lower() for x in names)
+    for word in ("watch", "warning", "advisory", "extreme", "moderate", "caution", "danger"):
+        assert not any(word in x.lower() for x in names)
+    assert "high" not in wd.LEVELS["heat"]                 # no level key "high"
+    # one hue, in steps of intensity (each darker than the last), no green
+    def hsv(c):
+        import colorsys
+        return colorsys.rgb_to_hsv(*(int(c[i:i + 2], 16) / 255 for i in (1, 3, 5)))
+    hues = [hsv(c)[0] for c in wd.RANK_COLOURS]
+    assert max(hues) - min(hues) < 0.03 and not any(0.2 < h < 0.45 for h in hues)
+    values = [hsv(c)[2] for c in wd.RANK_COLOURS]
+    assert values == sorted(values, reverse=True)
+    # text messages carry the level in sentence case
+    assert compose_block(samples.frost_assessment(level="grave", level_rank=4)).sms.startswith("Protect: grave - ")
+    assert compose_block(samples.heat_assessment(level="scorching", level_rank=3)).sms.startswith("Scorching - ")
+
+
+def test_every_text_message_ends_with_a_caution_within_one_message():
+    """One GSM 03.38 message: 160 characters of the basic set, the caution included, even at the longest."""
+    from advisory.notices import compose as cm
+    long_name = "Upper Terrace Late Chardonnay North Slope Extension"
+    started = samples.frost_assessment(level="grave", level_rank=4, is_update=True, revision=12, block=long_name,
+                                       units="imperial", p10_c=-12.3, p50_c=-10.6, p90_c=-8.8)
+    started.plan[0].started_utc = started.plan[0].start_utc
+    cases = [samples.frost_assessment(), samples.quiet_assessment(), _unprotected(block=long_name),
+             _unprotected(block=long_name, is_update=True, revision=12, units="imperial"), started,
+             samples.frost_assessment(status="no_forecast", plan=[], curve=[], level="", block=long_name,
+                                      is_update=True, revision=11, reason="no observation for 7 h"),
+             samples.heat_assessment(), samples.heat_assessment(block=long_name, level="scorching", level_rank=3,
+                                                                  units="imperial")]
+    for a in cases:
+        n = compose_block(a)
+        tail = cm.SMS_CAUTION_HEAT if a.kind == "heat" else cm.SMS_CAUTION_FROST
+        assert n.sms.endswith(" " + tail), n.sms
+        assert len(n.sms) <= 160 and all(ch in words._GSM7_BASIC for ch in n.sms), n.sms
+        assert "..." not in n.sms, n.sms               # nothing cut: the parts that must stay fit
+    heat = [samples.heat_assessment(block_id=i, block=f"{long_name} {i}", level="scorching", level_rank=3)
+            for i in range(8)]
+    frost = [_unprotected(block_id=i, block=f"{long_name} {i}") for i in range(8)]
+    for s in (compose_farm(heat), compose_farm(frost), compose_farm(frost, revision=14, changed={1, 2})):
+        tail = cm.SMS_CAUTION_HEAT if s.kind == "heat" else cm.SMS_CAUTION_FROST
+        assert s.sms.endswith(" " + tail) and len(s.sms) <= 160, s.sms

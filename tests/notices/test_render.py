@@ -56,7 +56,7 @@ def test_all_formats_from_object_and_from_stored_dict(frost):
 def test_sms_is_the_composed_message(frost):
     s = render(frost, "sms")
     assert s == frost.sms and len(s) <= 160
-    assert s.startswith("PROTECT Creek Bing night 6 Apr: low -2.8C (-4.1 to -1.5C).")
+    assert s.startswith("Protect - Creek Bing 6 Apr: low -2.8C (-4.1 to -1.5C).")
 
 
 def test_plain_text_top_lines_hold_the_decision(frost):

@@ -157,3 +157,12 @@ def test_a_temperature_that_rounds_to_zero_reads_0_0_not_minus_0_0():
     assert "air about 0.0 °C" in fr.start_rule_text(r, p)
     text = rs.render_text(sheet([r]))
     assert "-0.0" not in text and "0.0 °C" in text
+
+
+def test_text_names_the_critical_time_and_one_word_for_loss():
+    text = rs.render_text(sheet(example()))
+    md = rs.render_markdown(sheet(example()))
+    assert "buds at risk" not in text and "buds at risk" not in md
+    assert "expected bud loss" in text and "expected bud loss" in md
+    assert "reach T10" in text or "reaches T10" in text
+    assert "unprotected" in text                                 # an unprotected block is not told to protect
