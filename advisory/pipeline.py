@@ -628,7 +628,7 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
             for k, i in enumerate(group):
                 a = out[i]
                 for key, value in frost.assessment_fields(risks[k]).items():
-                    setattr(a, key, value)
+                    setattr(a, key, {**(a.details or {}), **value} if key == "details" else value)
                 a.model = str(fc.model[i])
                 a.training_nights = int(fc.training_nights[i])
         pressure = np.asarray(moisture.pressure_kpa_from_elevation(elev[idx]), float)

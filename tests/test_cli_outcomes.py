@@ -150,3 +150,18 @@ def test_farm_file_fallback_must_name_recipients(tmp_path):
     assert parse_farm_text(base.format(who="Ana")).settings["fallback_recipients"] == ["Ana"]
     with pytest.raises(InputError, match="recipient 'Bo' is not defined"):
         parse_farm_text(base.format(who="Bo"))
+
+
+def test_stage_from_an_earlier_season_is_warned_in_the_night_run(spring_db, quiet_channels):
+    from advisory import pipeline
+    from advisory.store.schema import Block
+
+    with spring_db.transaction() as s:
+        s.scalar(select(Block).where(Block.name == "Creek Bing")).stage_date = dt.date(2025, 4, 1)
+    pipeline.run_night(spring_db, dt.date(2026, 4, 8), now=dt.datetime(2026, 4, 9, 4, 40, tzinfo=dt.UTC),
+                       deliver=False)
+    with spring_db.transaction() as s:
+        leads = {b: n.content["lead"] for n, b in s.execute(
+            select(Notice, Block.name).join(Block, Notice.block_id == Block.id))}
+    assert leads["Creek Bing"][0].startswith("Check the stage:") and "2025-04-01" in leads["Creek Bing"][0]
+    assert not any(line.startswith("Check the stage") for line in leads["Bench Gala"])
