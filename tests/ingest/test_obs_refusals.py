@@ -8,8 +8,8 @@ import pytest
 from sqlalchemy import func, select
 
 from advisory.errors import InputError
-from advisory.ingest.obsfile import StationInfo, parse_observation_bytes
 from advisory.ingest.observations import import_file
+from advisory.ingest.obsfile import StationInfo, parse_observation_bytes
 from advisory.store.schema import Observation
 
 ST = StationInfo(id=1, code="ST1", timezone="America/Los_Angeles")

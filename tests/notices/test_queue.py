@@ -81,7 +81,7 @@ def test_webhook_down_then_up_is_retried_once_delivered(farm_db, settings, open_
 def test_past_the_deadline_the_agent_is_told(farm_db_url, farm_db, settings, monkeypatch, capsys):
     port = free_port()
     with farm_db.transaction() as s:
-        wren = _point_wren_at(s, f"http://127.0.0.1:{port}/advisory")
+        _point_wren_at(s, f"http://127.0.0.1:{port}/advisory")
         row, block = store_notice(s, block_name="Bench Gala")
         deliver_notice(s, row, list(block.recipients), settings, channels=["email", "webhook"], retry=ONE,
                        timeout_s=5)
