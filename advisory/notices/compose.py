@@ -896,8 +896,8 @@ def _frost(a: Assessment, f: _Fmt, name: str):
         (f"{name} - {_short_name(a.block, SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True)]
     if _finite(a.p50_c):
         low = f"low {w.temp(a.p50_c, f.units, ascii_only=True)}"
-        if _finite(a.p10_c) and _finite(a.p90_c):  # shortened to the low alone when space is short
-            sms_parts.append((f"{low} ({w.temp_range(a.p10_c, a.p90_c, f.units, ascii_only=True)}).", 2,
+        if _finite(a.p10_c) and _finite(a.p90_c):  # shortened to the low alone first when space is short
+            sms_parts.append((f"{low} ({w.temp_range(a.p10_c, a.p90_c, f.units, ascii_only=True)}).", 1,
                               f"{low}."))
         else:
             sms_parts.append((f"{low}.", True))
@@ -908,9 +908,8 @@ def _frost(a: Assessment, f: _Fmt, name: str):
             sms_parts.append((f"{w.method_name(s.method).capitalize()}{on}{f.clock(s.start_utc)[:5]}{stop}.", True))
     if none_advised:
         sms_parts.append(("Check buds; call adviser tonight.", True))
-    if a.critical_time_utc and _finite(a.t10_c):
-        sms_parts.append((f"Critical {w.temp(a.t10_c, f.units, ascii_only=True)} at "
-                          f"{f.clock(a.critical_time_utc)[:5]}.", 1))
+    if a.critical_time_utc:  # when the air reaches T10, kept before the range when space is short
+        sms_parts.append((f"Critical at {f.clock(a.critical_time_utc)[:5]}.", 2))
 
     # body
     sections = []

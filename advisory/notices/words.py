@@ -84,7 +84,7 @@ _OLD_HEAT_KEYS = {"quiet": "easy", "elevated": "hot", "high": "very_hot", "acute
 
 #: Names shown for a frost level whose block has no usable protection tonight: the level's own name
 #: ("Protect") would read as an order that cannot be carried out.
-UNPROTECTED_NAMES = {"serious": "At risk, unprotected", "grave": "Grave, unprotected"}
+UNPROTECTED_NAMES = {"serious": "Unprotected: at risk", "grave": "Unprotected: grave"}
 UNPROTECTED_MEANING = ("No usable protection tonight: check the buds, call your adviser tonight and "
                        "record the stage.")
 

@@ -794,7 +794,8 @@ def required_sprinkler_rate_mm_h(min_temp_c, wind_speed_ms):
 
 
 #: Where the sprinkler rate table comes from, for the notices (the table was made for citrus).
-RATE_TABLE_ORIGIN = "rate table built for citrus (Gerber & Harrison 1964), used here for lack of one for this crop"
+RATE_TABLE_ORIGIN = ("the rate table was built for citrus (Gerber & Harrison 1964) and is used here for lack "
+                     "of one for this crop")
 
 
 def _crossing_down(times_ns, series, thr, valid):
@@ -1171,7 +1172,7 @@ def plan_night(blocks: Sequence[BlockSetup], curves: NightCurves, forecast: MinT
         plans = _recommend(plans, needs, col.p50[i], col.crit[i], st)
         if not plans:
             note = ("No protection equipment recorded for this block."
-                    + (f" Unprotected, about {100 * col.kill[i]:.0f} % of buds are expected killed tonight, "
+                    + (f" Unprotected, expected bud loss tonight {100 * col.kill[i]:.0f} %, "
                        f"with a {100 * col.kill_10[i]:.0f} % chance of losing 10 % or more." if needs else ""))
             plans = [MethodPlan("none", usable=False, recommended=needs, notes=(note,),
                                 caution_keys=cautions.cautions_for_method("none"))]
@@ -1263,21 +1264,21 @@ def _method_plan(method, params, i, b, st, fams, col: _Columns) -> MethodPlan:
                 keys.insert(0, "sprinkler_rate_short")
             elif rate is None:
                 usable = False
-                notes.append(f"Needed rate about {req_rate:.1f} mm/h ({RATE_TABLE_ORIGIN}); check the "
+                notes.append(f"Needed rate about {req_rate:.1f} mm/h; {RATE_TABLE_ORIGIN}. Check the "
                              "system can deliver it.")
             elif rate + 1e-9 < req_rate:
                 usable = False
                 notes.append(f"System {rate:g} mm/h, needs {req_rate:.1f} mm/h: {_share(rate, req_rate)} of the "
-                             f"need for wind up to {wind_max:.1f} m/s and a minimum near {_c(p50_c)} °C "
-                             f"({RATE_TABLE_ORIGIN}); too little water can freeze buds harder than none.")
+                             f"need for wind up to {wind_max:.1f} m/s and a minimum near {_c(p50_c)} °C; "
+                             f"{RATE_TABLE_ORIGIN}. Too little water can freeze buds harder than none.")
                 keys.insert(0, "sprinkler_rate_short")
             else:
                 notes.append(f"System {rate:g} mm/h, needs {req_rate:.1f} mm/h: {_share(rate, req_rate)} of the "
-                             f"need for the forecast minimum near {_c(p50_c)} °C ({RATE_TABLE_ORIGIN}).")
+                             f"need for the forecast minimum near {_c(p50_c)} °C; {RATE_TABLE_ORIGIN}.")
                 cold_need = float(req_rate_cold)
                 if not np.isfinite(cold_need) or rate + 1e-9 < cold_need:
                     need_txt = "more than the guidance covers" if not np.isfinite(cold_need) \
-                        else f"about {cold_need:.1f} mm/h"
+                        else f"about {cold_need:.1f} mm/h (the system gives {_share(rate, cold_need)} of that)"
                     notes.append(f"If the night runs as cold as {_c(p10_c)} °C, {need_txt} would be "
                                  "needed: watch the block thermometers and the ice (clear, dripping ice is "
                                  "working; milky, dry ice is not).")

@@ -506,9 +506,9 @@ def test_every_frost_notice_says_bud_temperature_is_not_air_temperature():
 
 def test_no_usable_protection_is_not_told_to_protect():
     n = compose_block(_unprotected())
-    assert n.level_name == "Grave, unprotected"
+    assert n.level_name == "Unprotected: grave"
     assert not n.headline.lower().startswith("protect") and "protect:" not in n.sms.lower()
-    assert n.sms.startswith("Grave, unprotected - Creek Bing")
+    assert n.sms.startswith("Unprotected: grave - Creek Bing")
     assert "Check buds; call adviser tonight." in n.sms
     assert any("check the buds, call your adviser tonight and record the stage" in x for x in n.lead)
     # a ruled-out method's start rule is not printed as something to do
@@ -516,7 +516,7 @@ def test_no_usable_protection_is_not_told_to_protect():
     text = " ".join(line for g in plan.groups for line in g.lines)
     assert "start rule" not in text.lower() and "when the wet bulb falls" not in text
     s = compose_farm([_unprotected()])
-    assert s.rows[0].level_name == "Grave, unprotected"
+    assert s.rows[0].level_name == "Unprotected: grave"
 
 
 def test_wine_grape_notice_says_the_values_are_for_another_cultivar_family():

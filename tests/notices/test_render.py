@@ -155,3 +155,7 @@ def test_md_escape():
     assert md_escape("a*b_c|d") == r"a\*b\_c\|d"
     assert md_escape("# not a heading") == r"\# not a heading"
     assert md_escape("<b>") == "&lt;b&gt;"
+
+
+def test_sms_gives_when_the_air_reaches_t10(frost):
+    assert "Critical at 02:40." in render(frost, "sms")      # the T10 time, not the start (01:50)

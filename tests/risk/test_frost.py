@@ -361,7 +361,8 @@ def test_no_equipment_states_the_risk():
     assert r.needs_protection and r.plans[0].method == "none" and r.plans[0].recommended
     note = r.plans[0].notes[0]
     # the loss figures, not the level's internal key (the notice names the level in its own words)
-    assert f"about {100 * r.expected_kill:.0f} % of buds" in note and r.level not in note
+    # one name for the figure everywhere: "expected bud loss" (it was also called "% of buds killed")
+    assert f"expected bud loss tonight {100 * r.expected_kill:.0f} %" in note and r.level not in note
 
 
 def test_quiet_night_needs_nothing():

@@ -165,4 +165,4 @@ def test_text_names_the_critical_time_and_one_word_for_loss():
     assert "buds at risk" not in text and "buds at risk" not in md
     assert "expected bud loss" in text and "expected bud loss" in md
     assert "reach T10" in text or "reaches T10" in text
-    assert "unprotected" in text                                 # an unprotected block is not told to protect
+    assert "Unprotected" in text                                 # an unprotected block is not told to protect
