@@ -94,7 +94,9 @@ def chart_png(notice: BlockNotice | dict, *, width_px: int = 480, height_px: int
 
     fig = Figure(figsize=(width_px / dpi, height_px / dpi), dpi=dpi)
     FigureCanvasAgg(fig)
-    ax = fig.add_axes((0.13, 0.33, 0.80, 0.57))
+    n_items = len(n.chart.lines) + len(n.chart.windows) + sum(m.get("role") in ("ready", "critical")
+                                                              for m in n.chart.marks) + 3
+    ax = fig.add_axes((0.13, 0.40, 0.80, 0.50) if n_items > 6 else (0.13, 0.33, 0.80, 0.57))
     ax.set_facecolor("#ffffff")
     ax.grid(True, color=GRID, linewidth=0.6)
     for side in ("top", "right"):
@@ -169,8 +171,9 @@ def chart_png(notice: BlockNotice | dict, *, width_px: int = 480, height_px: int
 
     handles, labels = ax.get_legend_handles_labels()
     if handles:
-        fig.legend(handles, labels, loc="lower center", ncol=min(3, len(handles)), fontsize=9,
-                   frameon=False, bbox_to_anchor=(0.5, 0.0))
+        many = len(handles) > 6  # a plan's start line and marks: two narrower columns, so nothing is cut
+        fig.legend(handles, labels, loc="lower center", ncol=2 if many else min(3, len(handles)),
+                   fontsize=8 if many else 9, frameon=False, bbox_to_anchor=(0.5, 0.0))
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=dpi * scale, facecolor="#ffffff", metadata={"Software": None})
     return buf.getvalue()

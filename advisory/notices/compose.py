@@ -958,10 +958,10 @@ def _frost(a: Assessment, f: _Fmt, name: str):
         wb_start = q.get("start_wet_bulb_c")
         if _finite(wb_start):
             chart.curves.append("wet_bulb")  # the wet bulb is drawn only where a plan starts on it
-            chart.lines.append({"label": f"start {w.method_name(s.method)}: wet bulb {f.t(wb_start)}",
+            chart.lines.append({"label": f"start: wet bulb {f.t(wb_start)}",
                                 "value_c": wb_start, "role": "start"})
         elif _finite(q.get("start_air_temp_c")):
-            chart.lines.append({"label": f"start {w.method_name(s.method)}: air {f.t(q['start_air_temp_c'])}",
+            chart.lines.append({"label": f"start: air {f.t(q['start_air_temp_c'])}",
                                 "value_c": q["start_air_temp_c"], "role": "start"})
         if s.start_utc is not None:
             chart.windows.append({"label": w.method_name(s.method), "start_utc": w.iso(s.start_utc),
@@ -971,7 +971,7 @@ def _frost(a: Assessment, f: _Fmt, name: str):
             chart.marks.append({"label": f"ready by {f.clock(ready)[:5]}", "time_utc": w.iso(ready), "role": "ready"})
     chart.curves = list(dict.fromkeys(chart.curves))
     if a.critical_time_utc:
-        chart.marks.append({"label": f"T10 at {f.clock(a.critical_time_utc)[:5]}",
+        chart.marks.append({"label": f"air at T10 {f.clock(a.critical_time_utc)[:5]}",
                             "time_utc": w.iso(a.critical_time_utc), "role": "critical"})
     if a.sunset_utc:
         chart.marks.append({"label": f"sunset {f.clock(a.sunset_utc)}", "time_utc": w.iso(a.sunset_utc),
