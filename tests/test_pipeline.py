@@ -176,7 +176,7 @@ def test_silent_station_gets_an_explicit_notice(spring_db):
 
 @pytest.mark.parametrize("every_reading_gone", [False, True])
 def test_station_silent_mid_run_says_keep_the_sprinklers_running(spring_db, quiet_channels, every_reading_gone):
-    """Creek Bing's update at 22:39 PDT has the over-tree sprinklers start at 23:30 PDT; QR-CREEK then
+    """Creek Bing's notice as of 22:39 PDT has the over-tree sprinklers start before midnight; QR-CREEK then
     falls silent after midnight.  The update that finds no forecast says so, and to keep them running."""
     pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     first = dt.datetime(2026, 4, 9, 5, 39, tzinfo=dt.UTC)           # 22:39 PDT
@@ -186,7 +186,9 @@ def test_station_silent_mid_run_says_keep_the_sprinklers_running(spring_db, quie
                          .order_by(Notice.revision.desc())).first()
         plan = told.forecast.payload["plan"]
     sprinklers = [p for p in plan if p["method"] == "overtree_sprinkler" and p["advised"]]
-    assert told.revision == 1 and sprinklers and sprinklers[0]["start_utc"] < "2026-04-09T07:00"
+    # The evening notice may already advise them (the sprinkler rate table is interpolated, so the
+    # 3.8 mm/h system meets the need); then the 22:39 update has nothing new to send.
+    assert told.revision in (0, 1) and sprinklers and sprinklers[0]["start_utc"] < "2026-04-09T07:00"
     cut = int(dt.datetime(2026, 4, 9, 7, 0, tzinfo=dt.UTC).timestamp())   # silent from 00:00 PDT
     if every_reading_gone:  # not a reading left: no evening state at all
         cut = 0
