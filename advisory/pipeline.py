@@ -57,8 +57,10 @@ from advisory import assessment as asm
 from advisory import settings as settings_mod
 from advisory.crops import thresholds
 from advisory.forecast import calibration as calib
+from advisory.forecast import outlook_effect
 from advisory.forecast.evening import evening_states
-from advisory.forecast.result import NightForecast, table_prob_below
+from advisory.forecast.result import NightForecast, table_prob_below, table_quantile
+from advisory.ingest.night_outlook import load_night_outlooks
 from advisory.ingest.observations import load_observations_many
 from advisory.notices import compose
 from advisory.physics import moisture, sun
@@ -547,6 +549,28 @@ def _set_curves(out: list[asm.Assessment], fc: NightForecast, states: pd.DataFra
         start = end
 
 
+def _apply_night_outlooks(session: Session, fc: NightForecast, states: pd.DataFrame, blocks: list[Block],
+                          cals: Mapping, station_ids: list[int]) -> list:
+    """Shift each block's forecast by its station's night outlook, where one is stored; its sentence per block.
+
+    See :mod:`advisory.forecast.outlook_effect`.  Without an outlook nothing changes.
+    """
+    ref = pd.DatetimeIndex(states["reference_time"])
+    rise = pd.DatetimeIndex(states["sunrise"])
+    valid = ~(ref.isna() | rise.isna())
+    if not valid.any():
+        return [None] * len(blocks)
+    hours = load_night_outlooks(session, station_ids, ref[valid].min(), rise[valid].max())
+    if not hours:
+        return [None] * len(blocks)
+    means = [outlook_effect.outlook_means(hours.get(b.station_id), ref[i], rise[i], b.farm.timezone)
+             for i, b in enumerate(blocks)]
+    weights = [getattr(cals.get(b.station_id), "outlook_weight", None) for b in blocks]
+    delta, notes = outlook_effect.outlook_shifts(states, means, weights)
+    fc.quantiles_c[:] = fc.quantiles_c + delta[:, None]
+    return notes
+
+
 def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of: dt.datetime | None = None,
                  update: bool = False, timings: StageTimes | None = None) -> list[asm.Assessment]:
     """Forecast and assess ``night`` for ``blocks`` (pure reads; nothing is written).
@@ -594,11 +618,15 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
     _lap(timings, "sun+evening state")
     cals = _latest_calibrations(session, station_ids, before=pd.Timestamp(ref_max).floor("us").to_pydatetime())
     fc = calib.forecast_night(states, {k: v for k, v in cals.items()}, block=[b.id for b in blocks])
+    outlook_notes = _apply_night_outlooks(session, fc, states, blocks, cals, station_ids)
     ok = fc.ok & (table["status"].to_numpy(dtype=object) == sun.NORMAL)
     verif = _recent_verification(session, [b.id for b in blocks], night)
     _lap(timings, "forecast")
 
     out = _assessments(blocks, night, update, table, states, obs, fc, ok, verif, ref_max)
+    for i, note in enumerate(outlook_notes):
+        if note and ok[i]:
+            out[i].details["night_outlook"] = note
     idx = np.flatnonzero(ok)
     if len(idx):
         upper = states["upper_air_temp_c"].to_numpy(float)
@@ -1876,12 +1904,59 @@ def _refit_some(session: Session, station_ids: list[int], start: dt.datetime, no
         history = night_history(frame, station.latitude, station.longitude, station.timezone, now)
         if history.empty:
             continue
-        cal = calib.fit_calibration(history)
+        cal = _fit_outlook_weight(session, calib.fit_calibration(history), history, station)
         session.add(Calibration(station_id=sid, kind="night_min", fitted_at=now,
                                 training_nights=int(cal.training_nights),
                                 params=cal.to_dict()))
         out[sid] = len(history)
     return out
+
+
+def _fit_outlook_weight(session: Session, cal: calib.Calibration, history: pd.DataFrame,
+                        station: Station) -> calib.Calibration:
+    """The station's calibration with the weight of its night outlooks, fitted jointly on its verified nights.
+
+    The outlook's physical change is a predictor of the night minimum next to the evening ones: the
+    regression is refitted on the observed minima less the outlook's share, and the share on the
+    residuals of that fit, a few times in turn (backfitting), so that the evening predictors do not
+    soak up what the outlook explains.  Without enough nights carrying an outlook the calibration is
+    returned as it was.
+    """
+    if cal.model != calib.CALIBRATED or history.empty:
+        return cal
+    ref = pd.DatetimeIndex(history["reference_time"])
+    rise = pd.DatetimeIndex(history["sunrise"])
+    hours = load_night_outlooks(session, [station.id], ref.min(), rise.max()).get(station.id)
+    if hours is None:
+        return cal
+    means = [outlook_effect.outlook_means(hours, r, s, station.timezone) for r, s in zip(ref, rise, strict=True)]
+    has = np.array([m.hours > 0 for m in means], dtype=bool)
+    if has.sum() < outlook_effect.MIN_NIGHTS:
+        cal.outlook_nights = int(has.sum())
+        return cal
+    from advisory.forecast.cooling import physical_night
+
+    change = np.zeros(len(history))
+    change[has] = outlook_effect.physical_change_c(
+        physical_night(history[has]), [m.sky_cover_pct for m, h in zip(means, has, strict=True) if h],
+        [m.wind_speed_ms for m, h in zip(means, has, strict=True) if h])
+    recency = 0.5 ** ((has.sum() - 1 - np.arange(has.sum())) / calib.HALF_LIFE_NIGHTS)
+    observed = history["observed_min_c"].to_numpy(float)
+    weight = outlook_effect.DEFAULT_WEIGHT
+    fitted = cal
+    for _ in range(4):
+        fitted = calib.fit_calibration(history.assign(observed_min_c=observed - weight * change))
+        q, _, _, _ = calib.forecast_quantiles(history[has], fitted)
+        residual = observed[has] - table_quantile(q, 0.5)
+        new, nights = outlook_effect.fit_outlook_weight(change[has], residual, recency)
+        if new is None:
+            return cal
+        done = abs(new - weight) < 0.01
+        weight = new
+        if done:
+            break
+    fitted.outlook_weight, fitted.outlook_nights = float(weight), int(nights)
+    return fitted
 
 
 def night_history(frame: pd.DataFrame, lat: float, lon: float, tz: str, now: dt.datetime) -> pd.DataFrame:

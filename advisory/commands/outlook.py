@@ -1,4 +1,4 @@
-"""`advisory outlook import|list`: forecast daily highs and lows per station, as copied by a grower."""
+"""`advisory outlook import|list`: forecast daily highs and lows, or a night's hours, per station, as copied by a grower."""
 
 from __future__ import annotations
 
@@ -7,6 +7,7 @@ import json
 
 from advisory import heat_pipeline
 from advisory.errors import InputError
+from advisory.ingest import night_outlook
 from advisory.store.db import Database
 
 
@@ -21,6 +22,10 @@ def register(sub) -> None:
                     "nothing: a bad line stops the import with its line and field named.")
     imp.add_argument("file", metavar="FILE", help="the CSV file")
     imp.add_argument("--station", metavar="CODE", help="the station for a file without a station column")
+    imp.add_argument("--kind", choices=("auto", "day", "night"), default="auto",
+                     help="day: daily highs and lows (station,date,high_c,...); night: the hours of a night "
+                          "(station,time,sky_cover_pct,wind_speed_ms,air_temp_c), used by the frost forecast; "
+                          "auto (default): night when the header has a 'time' column")
     imp.add_argument("--json", action="store_true", help="print the summary as JSON")
     imp.set_defaults(func=do_import)
     ls = osub.add_parser("list", help="stored outlooks")
@@ -30,8 +35,17 @@ def register(sub) -> None:
     ls.set_defaults(func=do_list)
 
 
+def _kind(args) -> str:
+    if args.kind != "auto":
+        return args.kind
+    return "night" if night_outlook.is_night_outlook_header(night_outlook.read_text(args.file)) else "day"
+
+
 def do_import(args) -> int:
-    report = heat_pipeline.import_outlook(Database(args.db), args.file, station=args.station)
+    if _kind(args) == "night":
+        report = night_outlook.import_night_outlook(Database(args.db), args.file, station=args.station)
+    else:
+        report = heat_pipeline.import_outlook(Database(args.db), args.file, station=args.station)
     print(json.dumps(report.as_dict(), indent=2) if args.json else report.text())
     return 0
 

@@ -240,6 +240,12 @@ class Calibration:
         empty: none (too few replayed nights, or the physical model).
     pit_nights : int
         Replayed nights behind ``pit_levels``.
+    outlook_weight : float or None
+        Fitted weight of a night outlook's physical change
+        (:func:`advisory.forecast.outlook_effect.fit_outlook_weight`); None:
+        too few verified nights carried one, the default applies.
+    outlook_nights : int
+        Verified nights with an outlook behind it.
     """
 
     model: str
@@ -258,6 +264,8 @@ class Calibration:
     settings: dict = field(default_factory=dict)
     pit_levels: np.ndarray = field(default_factory=lambda: np.zeros(0))
     pit_nights: int = 0
+    outlook_weight: float | None = None
+    outlook_nights: int = 0
 
     @classmethod
     def physical_default(cls) -> Calibration:
@@ -287,6 +295,8 @@ class Calibration:
             "settings": dict(self.settings),
             "pit_levels": _floats(self.pit_levels),
             "pit_nights": int(self.pit_nights),
+            "outlook_weight": None if self.outlook_weight is None else float(self.outlook_weight),
+            "outlook_nights": int(self.outlook_nights),
         }
 
     @classmethod
@@ -317,6 +327,8 @@ class Calibration:
             settings=dict(data.get("settings", {})),
             pit_levels=np.asarray(data.get("pit_levels", []), dtype=float),
             pit_nights=int(data.get("pit_nights", 0)),
+            outlook_weight=None if data.get("outlook_weight") is None else float(data["outlook_weight"]),
+            outlook_nights=int(data.get("outlook_nights", 0)),
         )
         if len(cal.pit_levels) not in (0, len(LEVELS)) or (
                 len(cal.pit_levels) and not np.all(np.diff(cal.pit_levels) >= 0)):

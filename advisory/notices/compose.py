@@ -761,6 +761,9 @@ def _data_section(a: Assessment, f: _Fmt) -> Section:
                          + ", ".join(f"{w.quantity_label(k)} {w.quantity(k, v, f.units)}" for k, v in state.items()))
     if a.model:
         sec.items.append(_model_line(a))
+    outlook = (a.details or {}).get("night_outlook") if a.kind != "heat" else None
+    if isinstance(outlook, str) and outlook.strip():
+        sec.items.append(_one_line(outlook))
     curve_model = (a.details or {}).get("curve_model") if a.kind == "heat" else None
     if isinstance(curve_model, str) and curve_model.strip():
         sec.items.append("Hourly curve: " + _one_line(curve_model))
@@ -1346,6 +1349,9 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
     changed = changes(a, previous) if a.is_update else []
     if a.kind != "heat" and (warn := stage_warning(a)):
         lead.insert(0, warn)
+    outlook = (a.details or {}).get("night_outlook") if a.kind != "heat" and a.status == asm.STATUS_OK else None
+    if isinstance(outlook, str) and " the forecast low is " in outlook:
+        lead.append(_one_line(outlook))
     when_txt = f"night of {w.short_day(a.night)}" if a.kind != "heat" else w.short_day(a.night)
     first = "morning note" if a.kind == "heat" else "evening notice"
     prefix = f"[{name}] "

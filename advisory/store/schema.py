@@ -268,6 +268,21 @@ class Outlook(Base):
     imported_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 
+class NightOutlook(Base):
+    """One hour of a night outlook for a station (sky cover, wind, temperature), as copied by an agent."""
+
+    __tablename__ = "night_outlooks"
+    __table_args__ = (UniqueConstraint("station_id", "valid_time"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    station_id: Mapped[int] = mapped_column(ForeignKey("stations.id", ondelete="CASCADE"), index=True)
+    valid_time: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    sky_cover_pct: Mapped[float | None] = mapped_column(Float, nullable=True)
+    wind_speed_ms: Mapped[float | None] = mapped_column(Float, nullable=True)
+    air_temp_c: Mapped[float | None] = mapped_column(Float, nullable=True)
+    imported_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
 class Calibration(Base):
     """Fitted model parameters for a station (night minimum or day maximum)."""
 
