@@ -41,7 +41,7 @@ from pathlib import Path
 import pandas as pd
 
 from advisory.errors import InputError
-from advisory.ingest.outlook import _norm, _number, _sniff_delimiter
+from advisory.ingest.outlook import _norm, _number, _sniff_delimiter, read_text
 
 __all__ = ["NIGHT_OUTLOOK_COLUMNS", "is_night_outlook_header", "parse_night_outlook_csv", "read_night_outlook_csv",
            "read_text", "localize_time", "NightOutlookImport", "import_night_outlook", "load_night_outlooks"]
@@ -201,26 +201,6 @@ def parse_night_outlook_csv(text: str, *, name: str = "<night outlook>", station
     for col in ("sky_cover_pct", "wind_speed_ms", "air_temp_c"):
         frame[col] = frame[col].astype(float)
     return frame
-
-
-def read_text(path) -> str:
-    """A CSV file's text (UTF-8, with or without BOM, or cp1252), or an InputError naming the file."""
-    p = Path(path)
-    name = str(path)
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise InputError("no such file", file=name) from None
-    except IsADirectoryError:
-        raise InputError("this is a folder, not a file", file=name) from None
-    except OSError as exc:
-        raise InputError(f"cannot read the file ({exc.strerror})", file=name) from None
-    for encoding in ("utf-8-sig", "cp1252"):
-        try:
-            return raw.decode(encoding)
-        except UnicodeDecodeError:
-            continue
-    raise InputError("the file is not text (UTF-8 expected)", file=name)  # pragma: no cover
 
 
 def read_night_outlook_csv(path, *, station: str | None = None) -> pd.DataFrame:

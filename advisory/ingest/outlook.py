@@ -29,7 +29,6 @@ from __future__ import annotations
 
 import csv
 import datetime as _dt
-import io
 import math
 import re
 from pathlib import Path
@@ -38,7 +37,7 @@ import pandas as pd
 
 from advisory.errors import InputError
 
-__all__ = ["OUTLOOK_COLUMNS", "parse_outlook_csv", "read_outlook_csv"]
+__all__ = ["OUTLOOK_COLUMNS", "parse_outlook_csv", "read_outlook_csv", "read_text"]
 
 #: Columns of the returned frame, in order.
 OUTLOOK_COLUMNS = ("station", "date", "high_c", "low_c", "min_rel_humidity_pct", "line")
@@ -222,6 +221,26 @@ def parse_outlook_csv(text: str, *, name: str = "<outlook>", station: str | None
     return frame.sort_values(["station", "date"], kind="stable").reset_index(drop=True)
 
 
+def read_text(path) -> str:
+    """A CSV file's text (UTF-8, with or without BOM, or cp1252), or an InputError naming the file."""
+    p = Path(path)
+    name = str(path)
+    try:
+        raw = p.read_bytes()
+    except FileNotFoundError:
+        raise InputError("no such file", file=name) from None
+    except IsADirectoryError:
+        raise InputError("this is a folder, not a file", file=name) from None
+    except OSError as exc:
+        raise InputError(f"cannot read the file ({exc.strerror})", file=name) from None
+    for encoding in ("utf-8-sig", "cp1252"):
+        try:
+            return raw.decode(encoding)
+        except UnicodeDecodeError:
+            continue
+    raise InputError("the file is not text (UTF-8 expected)", file=name)  # pragma: no cover
+
+
 def read_outlook_csv(path, *, station: str | None = None) -> pd.DataFrame:
     """Read and parse an outlook CSV file (see :func:`parse_outlook_csv`).
 
@@ -234,20 +253,4 @@ def read_outlook_csv(path, *, station: str | None = None) -> pd.DataFrame:
     -------
     pandas.DataFrame
     """
-    p = Path(path)
-    name = str(path)
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise InputError("no such file", file=name) from None
-    except OSError as exc:
-        raise InputError(f"cannot read the file ({exc.strerror})", file=name) from None
-    for encoding in ("utf-8-sig", "cp1252"):
-        try:
-            text = raw.decode(encoding)
-            break
-        except UnicodeDecodeError:
-            continue
-    else:  # pragma: no cover - cp1252 decodes almost anything
-        raise InputError("the file is not text (UTF-8 expected)", file=name)
-    return parse_outlook_csv(io.StringIO(text).getvalue(), name=name, station=station)
+    return parse_outlook_csv(read_text(path), name=str(path), station=station)
