@@ -15,6 +15,13 @@ File layout (see ``demo-farm/farm.toml`` for a full example)::
     units = "metric"             # or "imperial" (°F in notices)
     fallback = ["name", ...]     # optional: recipients told when a notice could not be delivered
                                  # by its deadline (default: the recipients whose role names an agent)
+    currency = "USD"             # optional: currency of crop values and costs (text, up to 8 characters);
+                                 # needed for the protection economics
+    crew_size = 3                # optional: blocks the crew can start and tend in one night
+    chill_start = "10-01"        # optional: start of chill accumulation, MM-DD (default 1 October in
+                                 # the north, 1 April in the south)
+    [farm.biofix]                # optional: start of heat accumulation per crop, MM-DD
+    apple = "01-01"              # (default 1 January in the north, 1 July in the south)
     [farm.settings]              # optional: risk thresholds and margins
 
     [[stations]]
@@ -35,9 +42,20 @@ File layout (see ``demo-farm/farm.toml`` for a full example)::
     recipients = ["name", ...]   # default: every recipient of the farm
     reference_offset_min = 120   # optional: evening reference time after sunset
     t10_override_c, t90_override_c   # optional
+    crop_value_per_ha = 18000    # optional: value of the crop [farm currency per ha]
     [[blocks.protection]]
     kind = "wind_machine" | "overtree_sprinkler" | "undertree_sprinkler" | "heater" | "none"
     ...parameters of that kind
+    running_cost_per_h = 120     # optional, any kind: fuel, water, power and labour for the block [currency/h]
+    fixed_cost_per_night = 250   # optional, any kind: cost of starting a night's run [currency]
+    protection_c = 1.5           # optional, any kind: rise of bud temperature the method gives [°C]
+                                 # (a wind machine without it: half the measured inversion)
+
+The values of the protection economics live in existing JSON columns: the
+farm's ``currency``, ``crew_size``, ``chill_start`` and ``biofix`` in the
+farm's settings, ``crop_value_per_ha`` in the block's settings, the costs and
+``protection_c`` in the equipment's parameters.  Without them nothing is
+estimated.
 """
 
 from __future__ import annotations
@@ -82,7 +100,29 @@ EQUIPMENT_PARAMS: dict[str, dict[str, tuple[bool, type, float | None, float | No
     },
 }
 
+#: Parameters every protection kind may carry, for the economics: name -> (required, type, min, max).
+COST_PARAMS: dict[str, tuple[bool, type, float | None, float | None]] = {
+    "running_cost_per_h": (False, float, 0, 1e7),
+    "fixed_cost_per_night": (False, float, 0, 1e7),
+    "protection_c": (False, float, 0, 15),
+}
+for _spec in EQUIPMENT_PARAMS.values():
+    _spec.update(COST_PARAMS)
+
 UNITS = ("metric", "imperial")
+
+
+def _month_day(chk: _Checker, value, table: str, idx: int | None, key: str) -> str:
+    """A ``MM-DD`` text, checked (29 February is refused: not every year has it)."""
+    if isinstance(value, str) and re.fullmatch(r"\d{2}-\d{2}", value.strip()):
+        m, d = (int(x) for x in value.strip().split("-"))
+        try:
+            dt.date(2001, m, d)
+            return value.strip()
+        except ValueError:
+            pass
+    chk.fail(f"'{key}' must be a month and day like \"01-01\" (MM-DD), got {value!r}", table, idx, key)
+    raise AssertionError  # not reached
 
 
 # --------------------------------------------------------------------------- line lookup
@@ -264,13 +304,14 @@ class _Checker:
 
 
 KNOWN_KEYS = {
-    "farm": {"name", "timezone", "units", "settings", "fallback"},
+    "farm": {"name", "timezone", "units", "settings", "fallback", "currency", "crew_size", "chill_start",
+             "biofix"},
     "stations": {"id", "name", "latitude", "longitude", "elevation_m", "temp_sensor_height_m",
                  "upper_sensor_height_m", "wind_sensor_height_m", "timezone", "inbox", "column_map"},
     "recipients": {"name", "role", "email", "webhook", "sms"},
     "blocks": {"name", "station", "latitude", "longitude", "elevation_m", "area_ha", "crop", "variety",
                "stage", "stage_date", "recipients", "reference_offset_min", "t10_override_c",
-               "t90_override_c", "protection", "settings"},
+               "t90_override_c", "protection", "settings", "crop_value_per_ha"},
 }
 
 
@@ -383,6 +424,28 @@ def parse_farm_text(text: str, path: str = "<farm file>") -> FarmSpec:
             if r not in recipient_names:
                 chk.fail(f"recipient '{r}' is not defined in this file", "farm", None, "fallback")
         farm_settings = {**farm_settings, "fallback_recipients": list(fallback)}
+    currency = chk.get(farm, "currency", "farm", None, str, required=False)
+    if currency is not None:
+        if len(currency) > 8:
+            chk.fail(f"'currency' must be a short code such as \"USD\" (at most 8 characters), got {currency!r}",
+                     "farm", None, "currency")
+        farm_settings = {**farm_settings, "currency": currency}
+    crew = chk.get(farm, "crew_size", "farm", None, int, required=False, lo=1, hi=1000)
+    if crew is not None:
+        farm_settings = {**farm_settings, "crew_size": crew}
+    if "chill_start" in farm:
+        farm_settings = {**farm_settings,
+                         "chill_start": _month_day(chk, farm["chill_start"], "farm", None, "chill_start")}
+    if "biofix" in farm:
+        raw_biofix = chk.get(farm, "biofix", "farm", None, dict)
+        biofix: dict[str, str] = {}
+        for crop_name, mmdd in raw_biofix.items():
+            try:
+                crop_key = thresholds.normalise_crop(crop_name)
+            except InputError as exc:
+                chk.fail(exc.message, "farm.biofix", None, crop_name)
+            biofix[crop_key] = _month_day(chk, mmdd, "farm.biofix", None, crop_name)
+        farm_settings = {**farm_settings, "biofix": biofix}
 
     blocks: list[BlockSpec] = []
     for i, bl in enumerate(doc.get("blocks", [])):
@@ -417,6 +480,10 @@ def parse_farm_text(text: str, path: str = "<farm file>") -> FarmSpec:
             for r in recips:
                 if r not in recipient_names:
                     chk.fail(f"recipient '{r}' is not defined in this file", "blocks", i, "recipients")
+        block_settings = chk.get(bl, "settings", "blocks", i, dict, required=False, default={})
+        value = chk.get(bl, "crop_value_per_ha", "blocks", i, float, required=False, lo=0, hi=1e8)
+        if value is not None:
+            block_settings = {**block_settings, "crop_value_per_ha": value}
         equipment: list[EquipmentSpec] = []
         for prot in bl.get("protection", []):
             equipment.extend(_parse_equipment(chk, prot, i))
@@ -430,7 +497,7 @@ def parse_farm_text(text: str, path: str = "<farm file>") -> FarmSpec:
             reference_offset_min=chk.get(bl, "reference_offset_min", "blocks", i, int, required=False,
                                          default=120, lo=0, hi=600),
             t10_override_c=t10, t90_override_c=t90, equipment=equipment,
-            settings=chk.get(bl, "settings", "blocks", i, dict, required=False, default={}),
+            settings=block_settings,
         ))
     return FarmSpec(name=farm_name, timezone=farm_tz, units=units, settings=farm_settings,
                     stations=stations, recipients=recipients, blocks=blocks, path=path)
