@@ -1,10 +1,11 @@
-"""`advisory blocks list|show|set-stage`."""
+"""`advisory blocks list|show|set-stage|stages`."""
 
 from __future__ import annotations
 
 import datetime as dt
 import json
 
+from advisory import stages as stages_report
 from advisory.crops import thresholds
 from advisory.errors import InputError
 from advisory.ingest.farm_file import record_stage
@@ -21,7 +22,13 @@ def register(sub) -> None:
     ls.add_argument("--farm", help="only this farm")
     ls.add_argument("--all", action="store_true", help="include inactive blocks")
     ls.add_argument("--json", action="store_true", help="print JSON")
+    ls.add_argument("--date", help="day of the stage check (YYYY-MM-DD; default the farm's today)")
     ls.set_defaults(func=do_list)
+    st = bsub.add_parser("stages", help="recorded and expected stages, the degree-days and chill behind them")
+    st.add_argument("--farm", help="only this farm")
+    st.add_argument("--date", help="day to estimate for (YYYY-MM-DD; default the farm's today)")
+    st.add_argument("--json", action="store_true", help="print JSON")
+    st.set_defaults(func=do_stages)
     sh = bsub.add_parser("show", help="show one block with its equipment and stage history")
     sh.add_argument("name", metavar="NAME")
     sh.add_argument("--farm")
@@ -54,10 +61,24 @@ def block_dict(b: Block, detail: bool = False) -> dict:
     return d
 
 
+def _day(text: str | None) -> dt.date | None:
+    if not text:
+        return None
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError:
+        raise InputError(f"'{text}' is not a date like 2026-04-02", field="--date") from None
+
+
 def do_list(args) -> int:
+    day = _day(getattr(args, "date", None))
     db = Database(args.db)
     with db.transaction() as s:
-        rows = [block_dict(b) for b in s.scalars(queries.blocks_query(args.farm, active_only=not args.all))]
+        blocks = list(s.scalars(queries.blocks_query(args.farm, active_only=not args.all)))
+        rows = [block_dict(b) for b in blocks]
+        checks = {(r.farm, r.block): r.check for r in stages_report.stage_rows(s, blocks, day)} if blocks else {}
+    for r in rows:
+        r["stage_check"] = checks.get((r["farm"], r["name"]))
     if args.json:
         print(json.dumps(rows, indent=2))
         return 0
@@ -72,6 +93,49 @@ def do_list(args) -> int:
     widths = [max(len(str(x)) for x in col) for col in zip(header, *table, strict=False)]
     for line in (header, *table):
         print("  ".join(str(x).ljust(w) for x, w in zip(line, widths, strict=True)).rstrip())
+    for r in rows:
+        if r["stage_check"]:
+            print(f"{r['name']}: {r['stage_check']}")
+    return 0
+
+
+def _num(v, fmt: str = "{:.0f}") -> str:
+    return "-" if v is None else fmt.format(v)
+
+
+def do_stages(args) -> int:
+    day = _day(args.date)
+    db = Database(args.db)
+    with db.transaction() as s:
+        rows = stages_report.stages_report(s, args.farm, day)
+    if args.json:
+        print(json.dumps([r.as_dict() for r in rows], indent=2))
+        return 0
+    if not rows:
+        print("no blocks (import a farm file with `advisory farm import FARM.toml`)")
+        return 0
+    for r in rows:
+        print(f"{r.block} ({r.farm}), {r.crop.replace('_', ' ')}")
+        print(f"  recorded    {r.recorded_stage} on {r.recorded_on}")
+        if r.base_c is None:
+            print("  expected    - (no heat model for this crop)")
+        else:
+            bound = " (lower bound: readings start after the stage date)" if r.gdd_since_record_lower_bound else ""
+            print(f"  expected    {r.expected_today} (range {r.expected_range_today}): "
+                  f"{_num(r.gdd_since_record_c, '{:.1f}')} °C-days base {r.base_c:g} since {r.recorded_on}, "
+                  f"from {r.hours_since_record_h:.0f} h of readings{bound}")
+            bound = " (lower bound: readings start after the biofix)" if r.gdd_since_biofix_lower_bound else ""
+            print(f"  since biofix {r.biofix}: {_num(r.gdd_since_biofix_c, '{:.1f}')} °C-days from "
+                  f"{r.hours_since_biofix_h:.0f} h of readings{bound}; alone it suggests {r.expected_from_biofix}")
+        if r.chill_hours_h:
+            bound = " (lower bound: readings start after the chill start)" if r.chill_lower_bound else ""
+            print(f"  chill since {r.chill_start}: {_num(r.utah_cu)} Utah chill units, "
+                  f"{_num(r.chill_portions, '{:.1f}')} chill portions, from {r.chill_hours_h:.0f} h{bound}; "
+                  f"typical need {r.chill_need_cu or '-'} CU, {r.chill_need_portions or '-'} portions")
+        else:
+            print(f"  chill since {r.chill_start}: no readings")
+        if r.check:
+            print(f"  check       {r.check}")
     return 0
 
 
