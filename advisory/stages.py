@@ -81,7 +81,7 @@ def stage_rows(session, blocks: list[Block], today: dt.date | None = None) -> li
             zone = b.farm.timezone
             day = today or dt.datetime.now(zoneinfo.ZoneInfo(zone)).date()
             fs = b.farm.settings or {}
-            biofix = phenology.biofix_date(day, b.latitude, (fs.get("biofix") or {}).get(b.crop))
+            biofix = phenology.biofix_date(day, b.latitude, (fs.get("biofix") or {}).get(b.crop), b.crop)
             cstart = chill.chill_start_date(day, b.latitude, fs.get("chill_start"))
             rows.append((b, day, biofix, cstart, zone))
         start = min(_local_midnight_utc(min(r[2], r[3], min(r[0].stage_date, r[1])), r[4]) for r in rows)

@@ -154,9 +154,23 @@ def season_start(day: dt.date, latitude: float, north_mmdd: str, south_mmdd: str
     return start
 
 
-def biofix_date(day: dt.date, latitude: float, override_mmdd: str | None = None) -> dt.date:
-    """Start of heat accumulation: 1 January in the north, 1 July in the south (common practice)."""
-    return season_start(day, latitude, "01-01", "07-01", override_mmdd)
+def biofix_date(day: dt.date, latitude: float, override_mmdd: str | None = None,
+                crop: str | None = None) -> dt.date:
+    """Start of heat accumulation.
+
+    The farm's own date for the crop wins; otherwise the stage table's biofix
+    for the crop (the date its stage sums count from: 1 March for the apple,
+    pear and peach guides, 1 January otherwise), six months later south of the
+    equator; without a crop, 1 January in the north and 1 July in the south
+    (common practice).
+    """
+    north = "01-01"
+    ch = stage_table().get(_crop_key(crop)) if crop else None
+    if ch is not None:
+        north = ch.biofix
+    m, d = _mmdd(north)
+    south = f"{(m + 5) % 12 + 1:02d}-{d:02d}"
+    return season_start(day, latitude, north, south, override_mmdd)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -167,8 +181,9 @@ def degree_days_from_readings(times_utc, air_temp_c, base_c, upper_c=np.inf, *, 
                               until_utc=None, max_gap_h: float = 1.5):
     """Growing degree-days from station readings, for many blocks at once.
 
-    Each reading stands for the interval until the next reading (at most
-    ``max_gap_h`` hours, and not past ``until_utc``); a missing reading (NaN)
+    Each reading stands for the interval until the next reading (the last one
+    for the record's median step; at most ``max_gap_h`` hours, and not past
+    ``until_utc``); a missing reading (NaN)
     contributes neither heat nor hours.  With hourly readings the result is the
     degree-hour sum over 24.
 
@@ -208,7 +223,9 @@ def degree_days_from_readings(times_utc, air_temp_c, base_c, upper_c=np.inf, *, 
     upper = np.broadcast_to(np.asarray(upper_c, float), (n,))[:, None]
     if m == 0:
         return np.zeros(n), np.zeros(n), np.full(n, np.datetime64("NaT", "ns"))
-    nxt = np.append(t[1:], t[-1] + np.int64(3600 * 10**9))
+    # The last reading stands for the record's usual step.
+    step = np.int64(np.median(np.diff(t))) if m > 1 else np.int64(3600 * 10**9)
+    nxt = np.append(t[1:], t[-1] + step)
     lo = np.full(n, np.iinfo(np.int64).min) if since_utc is None else _ns(since_utc, n)
     hi = np.full(n, np.iinfo(np.int64).max) if until_utc is None else _ns(until_utc, n)
     end = np.minimum(nxt[None, :], hi[:, None])
