@@ -427,3 +427,49 @@ class RunRecord(Base):
     finished_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime, nullable=True)
     status: Mapped[str] = mapped_column(String(20), default="running")
     detail: Mapped[dict[str, Any]] = mapped_column(default=dict)
+
+
+class WebUser(Base):
+    """A person who signs in to the web console: an agent (given farms, or all) or a grower (one farm)."""
+
+    __tablename__ = "web_users"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    username: Mapped[str] = mapped_column(String(80), unique=True)
+    #: An argon2 hash (never the password).
+    password_hash: Mapped[str] = mapped_column(String(200))
+    #: "agent" or "grower"
+    role: Mapped[str] = mapped_column(String(10))
+    #: An agent who sees every farm.
+    all_farms: Mapped[bool] = mapped_column(Boolean, default=False)
+    #: A grower's own farm.
+    farm_id: Mapped[int | None] = mapped_column(ForeignKey("farms.id", ondelete="CASCADE"), nullable=True)
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+class WebUserFarm(Base):
+    """A farm given to an agent."""
+
+    __tablename__ = "web_user_farms"
+
+    user_id: Mapped[int] = mapped_column(ForeignKey("web_users.id", ondelete="CASCADE"), primary_key=True)
+    farm_id: Mapped[int] = mapped_column(ForeignKey("farms.id", ondelete="CASCADE"), primary_key=True)
+
+
+class AuditEntry(Base):
+    """One change made through the web console: who, when, what."""
+
+    __tablename__ = "audit_log"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    #: The user's name as it was (kept when the user is removed).
+    username: Mapped[str] = mapped_column(String(80))
+    farm_id: Mapped[int] = mapped_column(ForeignKey("farms.id", ondelete="CASCADE"), index=True)
+    block_id: Mapped[int | None] = mapped_column(ForeignKey("blocks.id", ondelete="CASCADE"), nullable=True,
+                                                 index=True)
+    #: "stage", "recipient" or "resend"
+    action: Mapped[str] = mapped_column(String(20))
+    #: What changed, in words.
+    summary: Mapped[str] = mapped_column(Text, default="")
+    detail: Mapped[dict[str, Any]] = mapped_column(default=dict)
