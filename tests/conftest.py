@@ -1,4 +1,9 @@
-"""Shared fixtures: a migrated database, the demo farm file."""
+"""Shared fixtures: a migrated database, the demo farm file.
+
+The suite runs on SQLite; with ``ADVISORY_TEST_DB`` (a PostgreSQL URL, see ``make test-pg``) it runs on
+that server instead, each test in a database of its own.  A test that needs one engine says so with
+``@pytest.mark.sqlite_only(reason)`` or ``@pytest.mark.postgresql_only(reason)``.
+"""
 
 from __future__ import annotations
 
@@ -8,17 +13,65 @@ from pathlib import Path
 import pytest
 
 from advisory.store.db import Database, upgrade
+from tests.helpers import pg
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO_FARM = ROOT / "demo-farm"
 
 
+def pytest_collection_modifyitems(config, items):
+    for item in items:
+        for name, engine in (("sqlite_only", "sqlite"), ("postgresql_only", "postgresql")):
+            mark = item.get_closest_marker(name)
+            if mark is not None and engine != pg.ENGINE:
+                reason = mark.kwargs.get("reason") or (mark.args[0] if mark.args else "")
+                item.add_marker(pytest.mark.skip(reason=f"{engine} only: {reason}"))
+
+
+@pytest.fixture(scope="session")
+def pg_server():
+    """The PostgreSQL test server (:class:`tests.helpers.pg.PgServer`), or None on SQLite."""
+    if pg.TEST_DB is None:
+        yield None
+        return
+    server = pg.PgServer(pg.TEST_DB)
+    yield server
+    server.close()
+
+
+@pytest.fixture(scope="session")
+def _pg_schema_template(pg_server) -> str | None:
+    """A database on the test server migrated once per session, the template of each test's."""
+    if pg_server is None:
+        return None
+    name = pg_server.new_name("tpl")
+    url = pg_server.create(name)
+    upgrade(url)
+    return name
+
+
 @pytest.fixture
-def db_url(tmp_path) -> str:
-    """URL of a fresh SQLite database with the current schema."""
+def db_url(tmp_path, pg_server, _pg_schema_template) -> str:
+    """URL of a fresh database with the current schema (SQLite file, or a database on the test server)."""
+    if pg_server is not None:
+        url = pg_server.create(template=_pg_schema_template)
+        yield url
+        pg_server.drop(url)
+        return
     url = f"sqlite:///{tmp_path / 'test.sqlite'}"
     upgrade(url)
-    return url
+    yield url
+
+
+@pytest.fixture
+def empty_db_url(tmp_path, pg_server) -> str:
+    """URL of a database with nothing in it (a missing SQLite file, or an empty database on the server)."""
+    if pg_server is not None:
+        url = pg_server.create()
+        yield url
+        pg_server.drop(url)
+        return
+    yield f"sqlite:///{tmp_path / 'empty.sqlite'}"
 
 
 @pytest.fixture
@@ -57,3 +110,23 @@ def spring_db(db, demo_farm, quiet_channels):
     for code in ("QR-BENCH", "QR-CREEK"):
         import_file(db, code, demo_farm / "stations" / f"{code}-spring.csv")
     return db
+
+
+@pytest.fixture
+def fresh_db_url(tmp_path, pg_server, _pg_schema_template):
+    """A factory of more fresh migrated databases for one test: ``fresh_db_url(name)`` -> URL."""
+    made = []
+
+    def make(name: str = "more") -> str:
+        if pg_server is not None:
+            url = pg_server.create(template=_pg_schema_template)
+        else:
+            url = f"sqlite:///{tmp_path / (name + '.sqlite')}"
+            upgrade(url)
+        made.append(url)
+        return url
+
+    yield make
+    if pg_server is not None:
+        for url in made:
+            pg_server.drop(url)

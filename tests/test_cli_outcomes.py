@@ -85,6 +85,7 @@ def test_rehearsal_of_a_past_night_needs_allow_past(spring_db, quiet_channels, c
     assert "--allow-past" in capsys.readouterr().err
 
 
+@pytest.mark.sqlite_only(reason="database files made (or not) on disk by SQLite")
 def test_read_commands_create_nothing(tmp_path, quiet_channels, capsys):
     missing = tmp_path / "typo" / "advisory.sqlite"
     for argv in (["blocks", "list"], ["notices", "list"], ["db", "status"], ["obs", "report", "X"]):
@@ -93,6 +94,7 @@ def test_read_commands_create_nothing(tmp_path, quiet_channels, capsys):
     assert not missing.parent.exists()
 
 
+@pytest.mark.sqlite_only(reason="database files made (or not) on disk by SQLite")
 def test_db_upgrade_builds_a_new_database_only_when_asked(tmp_path, quiet_channels, capsys):
     typo = tmp_path / "typo" / "deeper" / "advisory.sqlite"
     assert cli.main(["--db", f"sqlite:///{typo}", "db", "upgrade"]) == 2
@@ -104,6 +106,7 @@ def test_db_upgrade_builds_a_new_database_only_when_asked(tmp_path, quiet_channe
     assert (tmp_path / "home" / "advisory.sqlite").exists()
 
 
+@pytest.mark.sqlite_only(reason="a read-only SQLite file (the server's read-only roles are not set up here)")
 def test_read_only_database_is_a_clear_error(db_url, quiet_channels, capsys, demo_farm):
     path = db_url.split("sqlite:///", 1)[1]
     sqlite3.connect(path).close()

@@ -186,14 +186,12 @@ def _stored(db):
     return forecasts, notices
 
 
-def _second_spring_db(path, demo_farm):
+def _second_spring_db(url, demo_farm):
     """Another database like the ``spring_db`` fixture (same farm, readings and block ids)."""
     from advisory.ingest.farm_file import import_farm_file
     from advisory.ingest.observations import import_file
-    from advisory.store.db import Database, upgrade
+    from advisory.store.db import Database
 
-    url = f"sqlite:///{path}"
-    upgrade(url)
     db = Database(url)
     import_farm_file(db, demo_farm / "farm.toml")
     for code in ("QR-BENCH", "QR-CREEK"):
@@ -203,8 +201,8 @@ def _second_spring_db(path, demo_farm):
 
 @pytest.mark.parametrize("update", [False, True])
 def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_path, monkeypatch, update,
-                                                      caplog):
-    url, serial_db = _second_spring_db(tmp_path / "serial.sqlite", demo_farm)
+                                                      caplog, fresh_db_url):
+    url, serial_db = _second_spring_db(fresh_db_url("serial"), demo_farm)
     later = NOW + dt.timedelta(hours=-3)
     one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
     pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
@@ -243,7 +241,7 @@ def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_
 
 @pytest.mark.parametrize("writer_fails, workers", [(False, 2), (True, 2), (False, 3)])
 def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo_farm, tmp_path, monkeypatch,
-                                                                  caplog, writer_fails, workers):
+                                                                  caplog, writer_fails, workers, fresh_db_url):
     """A large run's outbox files, written ahead by a forked copy while the run stores, are published
     only by the delivery and are the files one process writes; a stopped run's leftovers are removed."""
     import os
@@ -251,7 +249,7 @@ def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo
 
     from advisory.notices import deliver
 
-    url, serial_db = _second_spring_db(tmp_path / "serial.sqlite", demo_farm)
+    url, serial_db = _second_spring_db(fresh_db_url("serial"), demo_farm)
     one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
     pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
     serial_db.dispose()
@@ -355,8 +353,10 @@ def _raw_rows(url, table):
         con.close()
 
 
-def test_driver_level_inserts_store_what_the_orm_stores(spring_db, demo_farm, tmp_path, monkeypatch):
-    url, orm_db = _second_spring_db(tmp_path / "orm.sqlite", demo_farm)
+@pytest.mark.sqlite_only(reason="checks SQLite's driver-level insert path against the ORM's, reading the file")
+def test_driver_level_inserts_store_what_the_orm_stores(spring_db, demo_farm, tmp_path, monkeypatch,
+                                                        fresh_db_url):
+    url, orm_db = _second_spring_db(fresh_db_url("orm"), demo_farm)
     with monkeypatch.context() as m:
         m.setattr(pipeline, "_ROW_KEYS", {})  # no key to find the ids by: the ORM's bulk insert
         pipeline.run_night(orm_db, NIGHT, now=NOW, deliver=False)
@@ -375,11 +375,12 @@ def test_driver_level_inserts_store_what_the_orm_stores(spring_db, demo_farm, tm
             assert a == b
 
 
-def test_a_worker_that_stops_has_its_share_done_by_the_run(spring_db, demo_farm, tmp_path, monkeypatch, caplog):
+def test_a_worker_that_stops_has_its_share_done_by_the_run(spring_db, demo_farm, tmp_path, monkeypatch, caplog,
+                                                           fresh_db_url):
     """A worker process that dies mid-run: its share is assessed by the run's own process, once."""
     import os
 
-    url, serial_db = _second_spring_db(tmp_path / "serial.sqlite", demo_farm)
+    url, serial_db = _second_spring_db(fresh_db_url("serial"), demo_farm)
     one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
     pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
     want = _stored(serial_db)

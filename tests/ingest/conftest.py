@@ -7,7 +7,6 @@ The migrated database is built once per session and copied for each test
 from __future__ import annotations
 
 import hashlib
-import shutil
 from pathlib import Path
 
 import pytest
@@ -15,6 +14,7 @@ from sqlalchemy import text
 
 from advisory.store.db import Database, upgrade
 from advisory.store.schema import Farm, Station
+from tests.helpers.pg import DbTemplate
 
 #: Stations in the template database: code -> (zone, column map).
 STATIONS = {
@@ -29,9 +29,9 @@ STATIONS = {
 
 
 @pytest.fixture(scope="session")
-def obs_template(tmp_path_factory) -> Path:
-    path = tmp_path_factory.mktemp("obs-template") / "template.sqlite"
-    url = f"sqlite:///{path}"
+def obs_template(tmp_path_factory, pg_server) -> DbTemplate:
+    template = DbTemplate(pg_server, tmp_path_factory.mktemp("obs-template"))
+    url = template.url
     upgrade(url)
     db = Database(url)
     with db.transaction() as s:
@@ -41,23 +41,18 @@ def obs_template(tmp_path_factory) -> Path:
         for code, (zone, cmap) in STATIONS.items():
             s.add(Station(code=code, farm_id=farm.id, name=f"station {code}", latitude=36.0, longitude=-80.0,
                           elevation_m=250.0, timezone=zone, column_map=cmap))
-    with db.engine.connect() as conn:  # fold the write-ahead log into the file, so that a copy is whole
-        conn.exec_driver_sql("PRAGMA wal_checkpoint(TRUNCATE)")
     db.dispose()
-    return path
+    return template
 
 
 @pytest.fixture
 def obs_db(obs_template, tmp_path) -> Database:
     """A private migrated database holding the stations of :data:`STATIONS`."""
-    dest = tmp_path / "obs.sqlite"
-    shutil.copy(obs_template, dest)
-    wal = obs_template.with_name(obs_template.name + "-wal")
-    if wal.exists():
-        shutil.copy(wal, dest.with_name(dest.name + "-wal"))
-    d = Database(f"sqlite:///{dest}")
+    url = obs_template.copy(tmp_path)
+    d = Database(url)
     yield d
     d.dispose()
+    obs_template.drop(url)
 
 
 def station_id(db: Database, code: str) -> int:

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import shutil
 import tempfile
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -86,14 +85,15 @@ def _valid_series(n: int, seed: int) -> pd.DataFrame:
 class _Db:
     """A fresh copy of the template database in a private folder."""
 
-    def __init__(self, template: Path):
+    def __init__(self, template):
+        self.template = template
         self.dir = tempfile.mkdtemp(prefix="prop-db-")
-        dest = Path(self.dir) / "db.sqlite"
-        shutil.copy(template, dest)
-        self.db = Database(f"sqlite:///{dest}", check=False)  # a copy of a migrated template
+        self.url = template.copy(self.dir)
+        self.db = Database(self.url, check=False)  # a copy of a migrated template
 
     def close(self):
         self.db.dispose()
+        self.template.drop(self.url)
         shutil.rmtree(self.dir, ignore_errors=True)
 
 

@@ -5,8 +5,6 @@ from __future__ import annotations
 import dataclasses
 import shutil
 import socket
-import sqlite3
-from pathlib import Path
 
 import pytest
 from sqlalchemy import select
@@ -17,6 +15,7 @@ from advisory.settings import Settings, SmtpSettings
 from advisory.store.db import Database, upgrade
 from advisory.store.schema import Block, Farm, Notice
 from tests.conftest import DEMO_FARM
+from tests.helpers.pg import DbTemplate
 from tests.notices import samples
 
 SECRET = "test-webhook-secret-4f1c"
@@ -44,27 +43,25 @@ def with_smtp(settings: Settings, port: int, **kw) -> Settings:
 
 
 @pytest.fixture(scope="session")
-def _farm_template(tmp_path_factory) -> Path:
+def _farm_template(tmp_path_factory, pg_server) -> DbTemplate:
     """One migrated database with the demo farm, made once per session (migrations take most of a second)."""
     folder = tmp_path_factory.mktemp("notices-farm")
     farm_dir = folder / "demo-farm"
     shutil.copytree(DEMO_FARM, farm_dir, ignore=shutil.ignore_patterns("inbox", "__pycache__"))
-    path = folder / "template.sqlite"
-    url = f"sqlite:///{path}"
-    upgrade(url)
-    d = Database(url)
+    template = DbTemplate(pg_server, folder)
+    upgrade(template.url)
+    d = Database(template.url)
     import_farm_file(d, farm_dir / "farm.toml")
     d.dispose()
-    return path
+    return template
 
 
 @pytest.fixture
 def farm_db_url(_farm_template, tmp_path) -> str:
     """URL of a private copy of the demo-farm database (the same as `db` + `import_farm_file`, faster)."""
-    dest = tmp_path / "farm.sqlite"
-    with sqlite3.connect(_farm_template) as src, sqlite3.connect(dest) as dst:
-        src.backup(dst)
-    return f"sqlite:///{dest}"
+    url = _farm_template.copy(tmp_path)
+    yield url
+    _farm_template.drop(url)
 
 
 @pytest.fixture

@@ -18,16 +18,16 @@ def _diff(engine):
         return compare_metadata(ctx, Base.metadata)
 
 
-def test_upgrade_of_empty_database_gives_the_orm_schema(tmp_path):
-    url = f"sqlite:///{tmp_path / 'm.sqlite'}"
+def test_upgrade_of_empty_database_gives_the_orm_schema(empty_db_url):
+    url = empty_db_url
     store.upgrade(url)
     engine = store.make_engine(url)
     assert _diff(engine) == []
     assert set(inspect(engine).get_table_names()) >= set(Base.metadata.tables)
 
 
-def test_downgrade_then_upgrade(tmp_path):
-    url = f"sqlite:///{tmp_path / 'm.sqlite'}"
+def test_downgrade_then_upgrade(empty_db_url):
+    url = empty_db_url
     store.upgrade(url)
     store.downgrade(url, "base")
     engine = store.make_engine(url)
@@ -37,6 +37,7 @@ def test_downgrade_then_upgrade(tmp_path):
     assert store.current_revision(engine) == store.head_revision()
 
 
+@pytest.mark.sqlite_only(reason="SQLite's pragmas")
 def test_sqlite_pragmas(tmp_path):
     url = f"sqlite:///{tmp_path / 'm.sqlite'}"
     store.upgrade(url)
@@ -46,15 +47,14 @@ def test_sqlite_pragmas(tmp_path):
         assert conn.execute(text("PRAGMA journal_mode")).scalar() == "wal"
 
 
-def test_refuses_empty_database(tmp_path):
-    url = f"sqlite:///{tmp_path / 'empty.sqlite'}"
+def test_refuses_empty_database(empty_db_url):
+    url = empty_db_url
     with pytest.raises(SchemaVersionError, match="advisory db upgrade"):
         store.Database(url)
 
 
-def test_refuses_older_schema(tmp_path):
-    url = f"sqlite:///{tmp_path / 'old.sqlite'}"
-    store.upgrade(url)
+def test_refuses_older_schema(db_url):
+    url = db_url
     engine = store.make_engine(url)
     with engine.begin() as conn:
         # Pretend the database stopped at the (known) base revision of the chain.
@@ -67,9 +67,8 @@ def test_refuses_older_schema(tmp_path):
         store.Database(url)
 
 
-def test_refuses_known_older_revision(tmp_path, monkeypatch):
-    url = f"sqlite:///{tmp_path / 'old.sqlite'}"
-    store.upgrade(url)
+def test_refuses_known_older_revision(db_url, monkeypatch):
+    url = db_url
     # The code now expects a later head than the database has.
     monkeypatch.setattr(store, "head_revision", lambda: "9999")
     with pytest.raises(SchemaVersionError, match="older schema.*advisory db upgrade"):
