@@ -83,8 +83,12 @@ def _database_problem(exc: BaseException, url: str | None) -> str | None:
 
     if not isinstance(exc, OperationalError):
         return None
+    from advisory.store.db import connection_problem, sqlite_file
+
+    server = connection_problem(exc, url)
+    if server is not None:
+        return server
     text = str(getattr(exc, "orig", exc)).lower()
-    from advisory.store.db import sqlite_file
 
     path = sqlite_file(url) if url else None
     where = path or "the database"

@@ -485,6 +485,9 @@ def _insert_rows(conn, station_id: int, import_id: int, t: np.ndarray, v: np.nda
     masks (0).  SQLite stores a bound NaN as NULL; other databases get None.
     """
     cols = ["station_id", "time_utc", *VALUE_COLUMNS, *_QC_NAMES, "import_id"]
+    if conn.dialect.name == "postgresql" and conn.dialect.driver == "psycopg":
+        _copy_rows(conn, cols, station_id, import_id, t, v, q)
+        return
     ph = _placeholder(conn)
     if ph is None:  # pragma: no cover - other DBAPI parameter styles: plain Core executemany
         for sl in _chunks(len(t)):
@@ -524,6 +527,64 @@ def _insert_rows(conn, station_id: int, import_id: int, t: np.ndarray, v: np.nda
                     cur.executemany(many_sql, obj[:full].reshape(-1, width * k).tolist())
                 if full < len(obj):
                     cur.executemany(head + one, obj[full:].tolist())
+    finally:
+        cur.close()
+
+
+#: Rows per block of PostgreSQL's binary COPY data built at once (bounded memory).
+_COPY_ROWS = 100_000
+#: Binary COPY big-endian field types of the PostgreSQL column types of the observations table.
+_PG_BINARY = {"integer": ">i4", "bigint": ">i8", "smallint": ">i2", "double precision": ">f8"}
+
+
+def _copy_rows(conn, cols: list[str], station_id: int, import_id: int, t: np.ndarray, v: np.ndarray,
+               q: np.ndarray) -> None:
+    """Insert new readings on PostgreSQL with one binary ``COPY ... FROM STDIN`` (psycopg 3).
+
+    The binary rows are built by numpy, a block of rows at a time: every field is a 4-byte length then
+    the value in network byte order (a NULL is the length -1 alone), so rows with the same missing
+    values have one fixed layout; the rows are written in groups of one layout each (a table's rows
+    have no order).  The field widths follow the columns' types as the database has them.
+    """
+    types = dict(conn.exec_driver_sql(
+        "SELECT column_name, data_type FROM information_schema.columns "
+        f"WHERE table_name = '{_TABLE.name}' AND table_schema = current_schema()").all())
+    kinds = [np.dtype(_PG_BINARY[types[c]]) for c in cols]
+    nv = v.shape[1]
+    present = ~np.isnan(v)
+    pattern = present @ (1 << np.arange(nv))  # which value columns a row has, as bits
+    cur = conn.connection.cursor()
+    try:
+        with cur.copy(f"COPY {_TABLE.name} ({', '.join(cols)}) FROM STDIN (FORMAT BINARY)") as copy:
+            copy.write(b"PGCOPY\n\xff\r\n\x00" + b"\x00" * 8)  # signature, flags, no header extension
+            for pat in np.unique(pattern):
+                rows = np.flatnonzero(pattern == pat)
+                has = [bool(int(pat) >> j & 1) for j in range(nv)]
+                fields = [("n", ">i2")]
+                for k, (c, kind) in enumerate(zip(cols, kinds, strict=True)):
+                    fields.append((f"l{k}", ">i4"))
+                    if not (2 <= k < 2 + nv) or has[k - 2]:
+                        fields.append((c, kind))
+                layout = np.dtype(fields)
+                for sl in _chunks(len(rows), _COPY_ROWS):
+                    r = rows[sl]
+                    block = np.empty(len(r), dtype=layout)
+                    block["n"] = len(cols)
+                    for k, (c, kind) in enumerate(zip(cols, kinds, strict=True)):
+                        if c in layout.names:
+                            block[f"l{k}"] = kind.itemsize
+                        else:
+                            block[f"l{k}"] = -1
+                    block["station_id"] = station_id
+                    block["import_id"] = import_id
+                    block["time_utc"] = t[r]
+                    for j, c in enumerate(VALUE_COLUMNS):
+                        if has[j]:
+                            block[c] = v[r, j]
+                    for j, c in enumerate(_QC_NAMES):
+                        block[c] = q[r, j]
+                    copy.write(block.tobytes())
+            copy.write(b"\xff\xff")  # the end of the data
     finally:
         cur.close()
 

@@ -16,6 +16,7 @@ from typing import Any
 
 from sqlalchemy import (
     JSON,
+    BigInteger,
     Boolean,
     Date,
     DateTime,
@@ -60,10 +61,18 @@ class UTCDateTime(TypeDecorator):
 
 
 class EpochSeconds(TypeDecorator):
-    """Timezone-aware datetime stored as integer seconds since 1970-01-01 UTC."""
+    """Timezone-aware datetime stored as integer seconds since 1970-01-01 UTC.
+
+    SQLite's INTEGER holds 64 bits; on PostgreSQL the column is a BIGINT (its INTEGER would end in 2038).
+    """
 
     impl = Integer
     cache_ok = True
+
+    def load_dialect_impl(self, dialect):
+        if dialect.name == "sqlite":
+            return dialect.type_descriptor(Integer())
+        return dialect.type_descriptor(BigInteger())
 
     def process_bind_param(self, value, dialect):
         if value is None or isinstance(value, int):
