@@ -188,3 +188,40 @@ def test_demo_farm_file_parses():
     root = Path(__file__).resolve().parents[2]
     spec = parse_farm_text((root / "demo-farm" / "farm.toml").read_text())
     assert {b.crop for b in spec.blocks} == {"apple", "sweet_cherry", "pear", "peach", "wine_grape"}
+
+
+ECONOMICS = MINIMAL.replace('timezone = "America/Denver"\n', 'timezone = "America/Denver"\ncurrency = "USD"\n'
+                            'crew_size = 2\nchill_start = "10-15"\n', 1).replace(
+    'stage_date = 2026-04-01\n',
+    'stage_date = 2026-04-01\ncrop_value_per_ha = 18000\n[[blocks.protection]]\nkind = "heater"\n'
+    'count_per_ha = 80\nrunning_cost_per_h = 120\nfixed_cost_per_night = 250\nprotection_c = 1.5\n', 1) + (
+    '\n[farm.biofix]\napple = "02-15"\n')
+
+
+def test_economics_and_season_keys_are_read_into_the_json_columns():
+    spec = parse_farm_text(ECONOMICS, "farm.toml")
+    assert spec.settings["currency"] == "USD" and spec.settings["crew_size"] == 2
+    assert spec.settings["chill_start"] == "10-15" and spec.settings["biofix"] == {"apple": "02-15"}
+    assert spec.blocks[0].settings["crop_value_per_ha"] == 18000.0
+    assert spec.blocks[0].equipment[0].params == {"count_per_ha": 80.0, "running_cost_per_h": 120.0,
+                                                  "fixed_cost_per_night": 250.0, "protection_c": 1.5}
+
+
+@pytest.mark.parametrize("old,new,field,fragment", [
+    ('crew_size = 2', 'crew_size = 0', "farm.crew_size", "smallest"),
+    ('currency = "USD"', 'currency = "US dollars please"', "farm.currency", "at most 8"),
+    ('chill_start = "10-15"', 'chill_start = "10-45"', "farm.chill_start", "MM-DD"),
+    ('apple = "02-15"', 'mango = "02-15"', "farm.biofix.mango", "mango"),
+    ('apple = "02-15"', 'apple = "02-29"', "farm.biofix.apple", "MM-DD"),
+    ('crop_value_per_ha = 18000', 'crop_value_per_ha = -5', "blocks[0].crop_value_per_ha", "smallest"),
+    ('running_cost_per_h = 120', 'running_cost_per_h = "a lot"', "blocks[0].running_cost_per_h", "number"),
+    ('protection_c = 1.5', 'protection_c = 40', "blocks[0].protection_c", "largest"),
+])
+def test_bad_economics_keys_are_named(old, new, field, fragment):
+    assert old in ECONOMICS
+    text = ECONOMICS.replace(old, new, 1)
+    with pytest.raises(InputError) as err:
+        parse_farm_text(text, "farm.toml")
+    assert err.value.field == field
+    assert fragment in err.value.message
+    assert err.value.line == text.splitlines().index(new) + 1
