@@ -71,7 +71,11 @@ def empty_db_url(tmp_path, pg_server) -> str:
         yield url
         pg_server.drop(url)
         return
-    yield f"sqlite:///{tmp_path / 'empty.sqlite'}"
+    import sqlite3
+
+    path = tmp_path / "empty.sqlite"
+    sqlite3.connect(path).close()  # a file with no tables
+    yield f"sqlite:///{path}"
 
 
 @pytest.fixture
