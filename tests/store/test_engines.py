@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 import math
+import uuid
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -147,3 +148,61 @@ def test_observation_import_takes_the_engines_fast_path(db, tmp_path, monkeypatc
     assert int(np.isnan(frame["wind_speed_ms"]).sum()) == 60
     assert frame["air_temp_c"].iloc[0] == pytest.approx(5 + 3 * math.sin(1 / 20), abs=0.006)
     assert observations.import_file(db, "RT4", path).rows_added == 0         # the same file adds nothing
+
+
+def _station_file(tmp_path, code: str, n: int = 50):
+    rows = ["time,air_temp_c,rel_humidity_pct"]
+    for k in range(n):
+        t = dt.datetime(2026, 4, 1, tzinfo=dt.UTC) + dt.timedelta(minutes=10 * k)
+        rows.append(f"{t.isoformat()},{4 + k % 9 * 0.3:.1f},{80 - k % 5}")
+    path = tmp_path / f"{code}.csv"
+    path.write_text("\n".join(rows) + "\n")
+    return path
+
+
+@pytest.mark.postgresql_only(reason="the server's per-row foreign key checks and who may switch them off")
+def test_copy_checks_references_once_then_as_usual(db, tmp_path, pg_server, db_url, monkeypatch):
+    """The COPY's per-row reference checks are off for the COPY alone (a superuser here); a role without
+    the privilege imports the same rows with the server checking each one."""
+    from sqlalchemy import create_engine
+    from sqlalchemy.engine import make_url
+
+    from advisory.store.db import Database
+
+    switched = []
+    real = observations._check_references_once
+    monkeypatch.setattr(observations, "_check_references_once", lambda *a: switched.append(real(*a)) or switched[-1])
+    with db.transaction() as s:
+        farm = _farm(s)
+        for code in ("RT5", "RT6"):
+            s.add(Station(code=code, farm_id=farm.id, name="rt", latitude=36.0, longitude=-80.0,
+                          elevation_m=250.0, timezone="UTC"))
+    with db.transaction() as s:
+        observations.import_file(s, "RT5", _station_file(tmp_path, "RT5"))
+        assert s.execute(text("SHOW session_replication_role")).scalar() == "origin"
+        with pytest.raises(Exception, match="foreign key"), s.begin_nested():   # checked again afterwards
+            s.execute(text("INSERT INTO observations (station_id, time_utc, air_temp_qc, dew_point_qc, "
+                           "rel_humidity_qc, wind_speed_qc, cloud_cover_qc, upper_air_temp_qc) "
+                           "VALUES (999999, 1, 0, 0, 0, 0, 0, 0)"))
+    role = "importer_" + uuid.uuid4().hex[:8]
+    admin = create_engine(db_url, isolation_level="AUTOCOMMIT")
+    try:
+        with admin.connect() as conn:
+            conn.execute(text(f"CREATE ROLE {role} LOGIN"))
+            conn.execute(text(f"GRANT ALL ON ALL TABLES IN SCHEMA public TO {role}"))
+            conn.execute(text(f"GRANT ALL ON ALL SEQUENCES IN SCHEMA public TO {role}"))
+        plain = Database(make_url(db_url).set(username=role).render_as_string(hide_password=False))
+        try:
+            summary = observations.import_file(plain, "RT6", _station_file(tmp_path, "RT6"))
+        finally:
+            plain.dispose()
+        assert summary.rows_added == 50
+        assert switched == [True, False]   # the test server's superuser may switch the checks off; the role not
+        with db.transaction() as s:
+            assert s.execute(text("SELECT COUNT(*) FROM observations o JOIN stations s ON s.id = o.station_id "
+                                  "JOIN imports i ON i.id = o.import_id")).scalar() == 100
+    finally:
+        with admin.connect() as conn:
+            conn.execute(text(f"DROP OWNED BY {role}"))
+            conn.execute(text(f"DROP ROLE {role}"))
+        admin.dispose()
