@@ -20,7 +20,7 @@ from advisory.errors import AdvisoryError, InputError, SchemaVersionError
 
 #: Topic modules in the order their commands appear in --help.
 TOPICS = ("db", "farm", "blocks", "obs", "outlook", "night", "heat", "verify", "notices", "hindcast",
-          "calc", "serve", "demo")
+          "calc", "serve", "users", "web", "demo")
 
 
 def build_parser() -> argparse.ArgumentParser:
