@@ -22,12 +22,13 @@ from zoneinfo import ZoneInfo
 
 from sqlalchemy import select
 
-from advisory import pipeline, reports
+from advisory import reports
 from advisory import settings as settings_mod
 from advisory.ingest import inbox
 from advisory.ingest.farm_file import import_farm_file
 from advisory.ingest.report import station_report
 from advisory.physics import sun
+from advisory.runs import frost_night, morning_check
 from advisory.store.db import Database, upgrade
 from advisory.store.schema import Block, Farm
 
@@ -85,7 +86,7 @@ def _night_updates(db, night: dt.date, settings) -> tuple[int, int, list[str]]:
                                schedule.PlannerSettings(kinds=(schedule.UPDATE,)))
     lines, n_sent = [], 0
     for r in runs:
-        res = pipeline.run_night(db, night, list(r.block_ids), now=r.run_at, update=True, settings=settings)
+        res = frost_night.run_night(db, night, list(r.block_ids), now=r.run_at, update=True, settings=settings)
         if not res.notices:
             continue
         with db.transaction() as s:
@@ -191,7 +192,7 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
     echo("\n== 3. Spring week: each evening at sunset + 2 h, hourly updates until sunrise, each morning at sunrise + 1 h")
     worst = None
     for night in SPRING_NIGHTS:
-        res = pipeline.run_night(db, night, now=_evening_clock(db, night), settings=settings)
+        res = frost_night.run_night(db, night, now=_evening_clock(db, night), settings=settings)
         rank = max((a.level_rank for a in res.assessments), default=0)
         lows = ", ".join(f"{a.block} {a.p50_c:.1f}" for a in res.assessments if a.p50_c is not None)
         echo(f"  night of {night:%a %d %b}: forecast lows °C: {lows}")
@@ -202,7 +203,7 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
              "(only when the crew's work changes)")
         for line in lines:
             echo(line)
-        ver = pipeline.verify_night(db, night, now=_morning_clock(db, night))
+        ver = morning_check.verify_night(db, night, now=_morning_clock(db, night))
         if ver.verified:
             errs = [v["forecast_c"] - v["observed_c"] for v in ver.verified if v["forecast_c"] is not None]
             echo(f"      next morning: {len(ver.verified)} blocks verified, mean error "
@@ -222,12 +223,12 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
 
     if heat:
         try:
-            from advisory import heat_pipeline
+            from advisory import demo_heat
         except ImportError:  # heat notes not installed in this build
-            heat_pipeline = None
-        if heat_pipeline is not None and hasattr(heat_pipeline, "demo_heat"):
+            demo_heat = None
+        if demo_heat is not None and hasattr(demo_heat, "demo_heat"):
             echo("\n== 7. Summer heat week: a morning heat note per block")
-            echo(heat_pipeline.demo_heat(paths, db, echo=echo) or "")
+            echo(demo_heat.demo_heat(paths, db, echo=echo) or "")
 
     with db.transaction() as s:
         from sqlalchemy import func

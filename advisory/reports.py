@@ -1,20 +1,17 @@
-"""Text the command line prints: run results, run sheets, verification skill.
+"""Text the command line prints from what is stored: run sheets, farm summaries, verification skill.
 
-Thin glue between the pipeline, the store and the renderers; no models here.
+Only reads: no run module is imported here (runs print through :mod:`advisory.runs.command_text`).
 """
 
 from __future__ import annotations
 
 import datetime as dt
 from collections import defaultdict
-from zoneinfo import ZoneInfo
 
 import numpy as np
 from sqlalchemy import select
 
 from advisory import assessment as asm
-from advisory import pipeline
-from advisory import settings as settings_mod
 from advisory.errors import InputError
 from advisory.notices import render
 from advisory.physics import sun
@@ -58,46 +55,6 @@ def summary_text(db, notice_ids: list[int], fmt: str = "text") -> list[str]:
     return out
 
 
-def night_run(db, night: dt.date | None, *, farm: str | None = None, names: list[str] | None = None,
-              update: bool = False, deliver: bool = True, fmt: str = "text", now: dt.datetime | None = None,
-              settings=None) -> str:
-    night = night or _default_night(db, farm, now)
-    ids = block_ids_for(db, farm, names)
-    settings = settings or settings_mod.load(db.url)
-    res = pipeline.run_night(db, night, ids, farm=farm, update=update, deliver=deliver, now=now,
-                             settings=settings)
-    lines = []
-    if not res.assessments and not res.skipped:
-        return f"night {night}: no active blocks selected"
-    lines.extend(summary_text(db, res.notices, fmt))
-    if update:
-        sent = sum(1 for _ in res.notices)
-        lines.append(f"update of night {night}: {len(res.assessments)} blocks re-forecast, {sent} notices "
-                     "(a notice goes out only when the level, the advised methods or the start time changed)")
-    for msg in res.skipped:
-        lines.append(f"skipped: {msg}")
-    if res.deliveries:
-        lines.append("deliveries: " + ", ".join(f"{k} {v}" for k, v in sorted(res.deliveries.items())))
-        lines.append(f"outbox: {settings.outbox}")
-    return "\n".join(lines)
-
-
-def night_verify(db, night: dt.date | None, *, names: list[str] | None = None,
-                 now: dt.datetime | None = None) -> str:
-    now = now or dt.datetime.now(dt.UTC)
-    # default: the last night that has ended (local noon to noon)
-    night = night or _default_night(db, None, now - dt.timedelta(hours=12))
-    res = pipeline.verify_night(db, night, block_ids_for(db, None, names), now=now)
-    lines = [f"night {night}: {len(res.verified)} forecasts verified"]
-    for v in res.verified:
-        err = v["forecast_c"] - v["observed_c"] if v["forecast_c"] is not None else float("nan")
-        lines.append(f"  {v['block']:<24} forecast {v['forecast_c']:6.1f} °C  observed {v['observed_c']:6.1f} °C"
-                     f"  error {err:+.1f} °C")
-    for m in res.skipped:
-        lines.append(f"  skipped: {m}")
-    return "\n".join(lines)
-
-
 def stored_assessments(session, farm: Farm, night: dt.date, kind: str = "frost") -> list[asm.Assessment]:
     """The latest stored assessment of each of a farm's blocks for a night."""
     rows = session.scalars(select(Forecast).join(Block)
@@ -120,33 +77,6 @@ def run_sheet(db, farm: str, night: dt.date, fmt: str = "text") -> str:
                                          [a for a in items if a.status == asm.STATUS_OK], units=f.units)
     return {"text": runsheet.render_text, "markdown": runsheet.render_markdown,
             "csv": runsheet.render_csv}[fmt](sheet)
-
-
-def heat_verify(db, day: dt.date | None, *, names: list[str] | None = None,
-                now: dt.datetime | None = None) -> str:
-    """Check a heat day's forecasts against the observed high and say what was found."""
-    from advisory import heat_pipeline
-
-    now = now or dt.datetime.now(dt.UTC)
-    # default: yesterday in the farm's zone (today is not over before sunset)
-    day = day or (now.astimezone(ZoneInfo(farm_zone(db, None))).date() - dt.timedelta(days=1))
-    ids = block_ids_for(db, None, names)
-    res = heat_pipeline.verify_day(db, day, ids, now=now)
-    lines = [f"heat day {day}: {len(res.verified)} forecast high{'s' if len(res.verified) != 1 else ''} checked"]
-    for v in res.verified:
-        rng = ("" if v["p10_c"] is None or v["p90_c"] is None else
-               f"  (8-in-10 range {v['p10_c']:.1f} to {v['p90_c']:.1f}"
-               f"{', inside' if v['p10_c'] <= v['observed_c'] <= v['p90_c'] else ', outside'})")
-        err = "" if v["error_c"] is None else f"  error {v['error_c']:+.1f} °C"
-        est = "  [estimated high]" if v["estimated"] else ""
-        fc = "-" if v["forecast_c"] is None else f"{v['forecast_c']:.1f}"
-        lines.append(f"  {v['block']:<24} forecast {fc:>5} °C  observed {v['observed_c']:5.1f} °C{err}{rng}{est}")
-    already = heat_pipeline.checked_count(db, day, ids) - len(res.verified)
-    if already > 0:
-        lines.append(f"  {already} checked before (a check is stored once)")
-    for m in res.skipped:
-        lines.append(f"  skipped: {m}")
-    return "\n".join(lines)
 
 
 #: What ``advisory verify report`` covers, in its order.

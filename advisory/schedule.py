@@ -11,7 +11,7 @@ sun:
 
 Blocks due at the same minute for the same kind of run are grouped into one
 run, so that the pipeline handles them in one array pass.  Every run has a
-deterministic key; :mod:`advisory.pipeline` records each key it completes in
+deterministic key; :mod:`advisory.runs.record` records each key it completes in
 the ``runs`` table, and its forecasts and notices carry their own idempotency
 keys, so that planning the same run twice, restarting mid-run or rerunning a
 night never sends a notice twice.
@@ -225,14 +225,14 @@ def execute_run(db_url: str, kind: str, night_iso: str, block_ids: list[int], ru
     Safe to call twice: the pipeline skips work already recorded under ``key``
     and never sends a notice twice.
     """
-    from advisory import pipeline
+    from advisory.runs import planned
     from advisory.store.db import Database
 
     db = Database(db_url)
     try:
         night = dt.date.fromisoformat(night_iso)
         run_at = dt.datetime.fromisoformat(run_at_iso)
-        pipeline.run_planned(db, kind, night, list(block_ids), run_at=run_at, key=key)
+        planned.run_planned(db, kind, night, list(block_ids), run_at=run_at, key=key)
     finally:
         db.dispose()
 
@@ -242,17 +242,17 @@ def reconcile(db, scheduler, now: dt.datetime, settings: PlannerSettings) -> dic
 
     Returns counts of what was done.
     """
-    from advisory import pipeline
+    from advisory.runs import planned, record
 
     clocks = load_block_clocks(db)
     lookback = dt.timedelta(hours=18)
     runs = plan(clocks, now - lookback, now + dt.timedelta(hours=settings.horizon_h), settings)
-    done = pipeline.finished_run_keys(db, [r.key for r in runs])
+    done = record.finished_run_keys(db, [r.key for r in runs])
     missed, due, future = split_due([r for r in runs if r.key not in done], now, settings.grace_min)
     counts = {"placed": 0, "due": 0, "missed": 0}
     for r in missed:
         if r.kind == EVENING:
-            pipeline.record_missed(db, r.night, list(r.block_ids), key=r.key, run_at=r.run_at, now=now)
+            planned.record_missed(db, r.night, list(r.block_ids), key=r.key, run_at=r.run_at, now=now)
             counts["missed"] += 1
     for r in due + future:
         job_id = r.key

@@ -13,7 +13,7 @@ the physical model.
 Then, each in a fresh process (so that the peak resident memory is the run's
 own), it measures:
 
-* ``evening``: :func:`advisory.pipeline.run_night` end to end -- load blocks,
+* ``evening``: :func:`advisory.runs.frost_night.run_night` end to end -- load blocks,
   load observations, sun and evening state, forecast, risk and plan, compose,
   store (one transaction), delivery to the outbox (the only channel: the
   recipients have no e-mail, webhook or text-message address) -- with the
@@ -311,7 +311,7 @@ def child(args) -> None:
     else:
         from sqlalchemy import func, select
 
-        from advisory import pipeline
+        from advisory.runs import frost_night
         from advisory.store.schema import Delivery, Forecast, Notice
 
         db = Database(args.db)
@@ -331,7 +331,7 @@ def child(args) -> None:
             prof.enable()
         cpu0 = _cpu_s()
         t0 = time.perf_counter()
-        res = pipeline.run_night(db, NIGHT, now=as_of or now, update=update, settings=settings,
+        res = frost_night.run_night(db, NIGHT, now=as_of or now, update=update, settings=settings,
                                  sleep=lambda s: None)
         wall = time.perf_counter() - t0
         cpu1 = _cpu_s()

@@ -156,12 +156,12 @@ def test_farm_file_fallback_must_name_recipients(tmp_path):
 
 
 def test_stage_from_an_earlier_season_is_warned_in_the_night_run(spring_db, quiet_channels):
-    from advisory import pipeline
+    from advisory.runs import frost_night
     from advisory.store.schema import Block
 
     with spring_db.transaction() as s:
         s.scalar(select(Block).where(Block.name == "Creek Bing")).stage_date = dt.date(2025, 4, 1)
-    pipeline.run_night(spring_db, dt.date(2026, 4, 8), now=dt.datetime(2026, 4, 9, 4, 40, tzinfo=dt.UTC),
+    frost_night.run_night(spring_db, dt.date(2026, 4, 8), now=dt.datetime(2026, 4, 9, 4, 40, tzinfo=dt.UTC),
                        deliver=False)
     with spring_db.transaction() as s:
         leads = {b: n.content["lead"] for n, b in s.execute(

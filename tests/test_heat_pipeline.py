@@ -11,13 +11,14 @@ import pytest
 from sqlalchemy import func, select
 
 from advisory import assessment as asm
-from advisory import heat_pipeline as hp
-from advisory import pipeline
+from advisory import demo_heat
 from advisory.forecast import dayshape, daytime
+from advisory.ingest import outlook_import
 from advisory.ingest.farm_file import import_farm_file
 from advisory.ingest.observations import import_file, load_observations_many
 from advisory.notices import compose
 from advisory.risk import heat as risk_heat
+from advisory.runs import blocks, heat_assess, heat_day, heat_morning, heat_refit, planned
 from advisory.store.schema import Block, Calibration, Delivery, Forecast, Notice, Outlook, RunRecord, Station
 
 ESTIMATE_DAY = dt.date(2026, 7, 17)      # the demo outlook leaves this day out on purpose
@@ -48,13 +49,13 @@ def summer_db(db, demo_farm, quiet_channels):
     import_farm_file(db, demo_farm / "farm.toml")
     for code in ("QR-BENCH", "QR-CREEK"):
         import_file(db, code, demo_farm / "stations" / f"{code}-summer.csv")
-    hp.import_outlook(db, demo_farm / "outlook-summer.csv")
+    outlook_import.import_outlook(db, demo_farm / "outlook-summer.csv")
     return db
 
 
 def _blocks(db, names=None):
     s = db.transaction().__enter__()
-    return s, pipeline._load_blocks(s, None, names=names)
+    return s, blocks._load_blocks(s, None, names=names)
 
 
 # --------------------------------------------------------------------------- the demo week
@@ -63,11 +64,11 @@ def test_demo_heat_week_end_to_end_and_idempotent(db, demo_farm, quiet_channels,
     import_farm_file(db, demo_farm / "farm.toml")
     paths = types.SimpleNamespace(outbox=quiet_channels, farm_dir=demo_farm)
     lines = []
-    text = hp.demo_heat(paths, db, echo=lines.append)
+    text = demo_heat.demo_heat(paths, db, echo=lines.append)
     assert any("outlook-summer.csv" in x and "12 added" in x for x in lines)
     day_lines = {ln.split(":")[0].strip(): ln for ln in text.splitlines() if ln.startswith("  ") and ": highs" in ln}
-    assert list(day_lines) == [f"{d:%a %d %b}" for d in hp.DEMO_HEAT_DAYS]
-    for d, ln in zip(hp.DEMO_HEAT_DAYS, day_lines.values(), strict=True):
+    assert list(day_lines) == [f"{d:%a %d %b}" for d in demo_heat.DEMO_HEAT_DAYS]
+    for d, ln in zip(demo_heat.DEMO_HEAT_DAYS, day_lines.values(), strict=True):
         assert ("ESTIMATED, no outlook" in ln) is (d == ESTIMATE_DAY)
         assert "evaporative cooling Creek Bing" in ln
     assert "QUILLBACK RIDGE ORCHARDS - Fri 17 Jul 2026" in text           # that day's farm summary ...
@@ -77,9 +78,9 @@ def test_demo_heat_week_end_to_end_and_idempotent(db, demo_farm, quiet_channels,
     assert "HOUR BY HOUR" in text and "SAFETY" in text
 
     n_blocks = 6
-    assert _count(db, Forecast, Forecast.kind == "heat") == n_blocks * len(hp.DEMO_HEAT_DAYS)
-    assert _count(db, Notice, Notice.kind == "heat") == n_blocks * len(hp.DEMO_HEAT_DAYS)
-    assert _count(db, Notice, Notice.kind == "heat-summary") == len(hp.DEMO_HEAT_DAYS)
+    assert _count(db, Forecast, Forecast.kind == "heat") == n_blocks * len(demo_heat.DEMO_HEAT_DAYS)
+    assert _count(db, Notice, Notice.kind == "heat") == n_blocks * len(demo_heat.DEMO_HEAT_DAYS)
+    assert _count(db, Notice, Notice.kind == "heat-summary") == len(demo_heat.DEMO_HEAT_DAYS)
     with db.transaction() as s:
         forecasts = list(s.scalars(select(Forecast).where(Forecast.kind == "heat")))
         contents = {(n.block_id, n.night): n.content for n in s.scalars(select(Notice).where(Notice.kind == "heat"))}
@@ -117,14 +118,14 @@ def test_demo_heat_week_end_to_end_and_idempotent(db, demo_farm, quiet_channels,
     assert any(p.suffix == ".txt" and "heat" in p.name for p in files)
 
     counts = {m: _count(db, m) for m in (Forecast, Notice, Delivery, Calibration, Outlook)}
-    again = hp.demo_heat(paths, db, echo=lambda s: None)
-    assert again.count("already assessed (6 blocks)") == len(hp.DEMO_HEAT_DAYS)
+    again = demo_heat.demo_heat(paths, db, echo=lambda s: None)
+    assert again.count("already assessed (6 blocks)") == len(demo_heat.DEMO_HEAT_DAYS)
     assert {m: _count(db, m) for m in counts} == counts
     assert sorted(p for p in quiet_channels.rglob("*") if p.is_file()) == sorted(files)
 
 
 def test_a_heat_note_goes_out_with_its_hourly_chart(summer_db, quiet_channels):
-    res = hp.run_heat(summer_db, OUTLOOK_DAY, names=["Bench Gala"], now=_clock(OUTLOOK_DAY), sleep=lambda s: None)
+    res = heat_day.run_heat(summer_db, OUTLOOK_DAY, names=["Bench Gala"], now=_clock(OUTLOOK_DAY), sleep=lambda s: None)
     assert len(res.notices) == 2      # the block and the farm summary
     pngs = list(quiet_channels.rglob("*bench-gala_heat*.png"))
     assert len(pngs) == 1 and pngs[0].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
@@ -135,7 +136,7 @@ def test_a_heat_note_goes_out_with_its_hourly_chart(summer_db, quiet_channels):
 def test_without_outlook_the_high_is_an_estimate_and_the_note_says_so(summer_db):
     s, blocks = _blocks(summer_db, ["Bench Gala"])
     try:
-        (a,) = hp.assess_day(s, blocks, ESTIMATE_DAY, as_of=_clock(ESTIMATE_DAY))
+        (a,) = heat_assess.assess_day(s, blocks, ESTIMATE_DAY, as_of=_clock(ESTIMATE_DAY))
         frame = load_observations_many(s, [blocks[0].station_id], pd.Timestamp("2026-07-16 07:00", tz="UTC"),
                                        pd.Timestamp("2026-07-17 07:00", tz="UTC"))[blocks[0].station_id]
         morning = load_observations_many(s, [blocks[0].station_id], pd.Timestamp("2026-07-17 07:00", tz="UTC"),
@@ -160,7 +161,7 @@ def test_without_outlook_the_high_is_an_estimate_and_the_note_says_so(summer_db)
 def test_with_outlook_the_high_is_not_an_estimate(summer_db):
     s, blocks = _blocks(summer_db, ["Creek Bing"])
     try:
-        (a,) = hp.assess_day(s, blocks, OUTLOOK_DAY, as_of=_clock(OUTLOOK_DAY))
+        (a,) = heat_assess.assess_day(s, blocks, OUTLOOK_DAY, as_of=_clock(OUTLOOK_DAY))
     finally:
         s.rollback()
         s.close()
@@ -181,7 +182,7 @@ def test_no_outlook_and_no_readings_gives_an_explicit_no_forecast(summer_db):
         s.query(Outlook).delete()
     s, blocks = _blocks(summer_db, ["Bench Gala"])
     try:
-        (a,) = hp.assess_day(s, blocks, dt.date(2026, 8, 20), as_of=_clock(dt.date(2026, 8, 20)))
+        (a,) = heat_assess.assess_day(s, blocks, dt.date(2026, 8, 20), as_of=_clock(dt.date(2026, 8, 20)))
     finally:
         s.rollback()
         s.close()
@@ -194,9 +195,9 @@ def test_run_right_at_sunrise_plus_two_hours_uses_the_latest_reading(summer_db):
     s, blocks = _blocks(summer_db, ["Bench Gala"])
     try:
         st = blocks[0].station
-        sr = hp.sun_by_date(st.latitude, st.longitude, st.timezone, [ESTIMATE_DAY])["sunrise"].iat[0]
+        sr = heat_refit.sun_by_date(st.latitude, st.longitude, st.timezone, [ESTIMATE_DAY])["sunrise"].iat[0]
         at = (sr + pd.Timedelta(hours=2)).to_pydatetime()   # the scheduler's clock: no later reading yet
-        ms = hp.morning_states(load_observations_many(s, [st.id], at - dt.timedelta(days=2), at), [st.id],
+        ms = heat_morning.morning_states(load_observations_many(s, [st.id], at - dt.timedelta(days=2), at), [st.id],
                                [st.latitude], [st.longitude], [st.timezone], ESTIMATE_DAY, cutoff=pd.Timestamp(at))
     finally:
         s.rollback()
@@ -256,7 +257,7 @@ def test_regression_is_fitted_stored_and_used_on_real_hourly_history(tmp_path, d
     now = dt.datetime(2001, 7, 19, 16, tzinfo=dt.UTC)
     s, blocks = _blocks(db)
     try:
-        (a,) = hp.assess_day(s, blocks, day, as_of=now)
+        (a,) = heat_assess.assess_day(s, blocks, day, as_of=now)
         rows = {r.kind: r for r in s.scalars(select(Calibration))}
         s.commit()
     finally:
@@ -286,11 +287,11 @@ def test_regression_is_fitted_stored_and_used_on_real_hourly_history(tmp_path, d
     # ... and its top is the estimated high, after solar noon
     assert today.max() < a.p50_c
     assert curve.max() == pytest.approx(a.p50_c, abs=0.5) and curve.max() <= a.p50_c + 1e-9
-    noon = hp.sun_by_date(36.1, -79.95, "Etc/GMT+5", [day])["solar_noon"].iat[0]
+    noon = heat_refit.sun_by_date(36.1, -79.95, "Etc/GMT+5", [day])["solar_noon"].iat[0]
     assert noon <= curve.idxmax() < noon + pd.Timedelta(hours=5)
     # the same numbers as the model's own functions on the same readings
     hist = frame[frame.index < pd.Timestamp(day).tz_localize("Etc/GMT+5")]
-    sun_t = hp._station_sun(36.1, -79.95, "Etc/GMT+5", pd.date_range("2001-01-01", day, freq="D").date)
+    sun_t = heat_refit._station_sun(36.1, -79.95, "Etc/GMT+5", pd.date_range("2001-01-01", day, freq="D").date)
     feats = daytime.morning_features(pd.concat([hist, frame[frame.index.date == day]])[
         lambda x: x.index < pd.Timestamp(now)], sun_t[["sunrise", "sunset"]], "Etc/GMT+5")
     expected = daytime.predict_max_temp(params, feats.loc[[day]])
@@ -298,18 +299,18 @@ def test_regression_is_fitted_stored_and_used_on_real_hourly_history(tmp_path, d
     assert a.p10_c == pytest.approx(float(expected["low_c"].iat[0]), abs=1e-6)
     # past outlooks checked against the readings set the outlook's centre and range
     obs_max = feats["max_temp_c"].dropna().iloc[-40:]
-    params2, _ = hp.fit_station_day_models(frame, 36.1, -79.95, "Etc/GMT+5", day,
+    params2, _ = heat_refit.fit_station_day_models(frame, 36.1, -79.95, "Etc/GMT+5", day,
                                            outlook_highs={d: v + 1.0 for d, v in obs_max.items()})
     assert params2["outlook_n"] == 40 and params2["outlook_residual_q50_c"] == pytest.approx(1.0)
     outlook = Outlook(day=day, high_c=33.0, imported_at=now)
-    high = hp._high_for(types.SimpleNamespace(code="PIED", timezone="Etc/GMT+5"), outlook, feats.loc[[day]],
+    high = heat_morning._high_for(types.SimpleNamespace(code="PIED", timezone="Etc/GMT+5"), outlook, feats.loc[[day]],
                         params2, "metric")
     assert (high.p10, high.p50, high.p90) == pytest.approx((32.0, 32.0, 32.0))
     assert "40 past outlook days" in high.text
     # a fresh fit is not refitted the next day
     s, blocks = _blocks(db)
     try:
-        hp.assess_day(s, blocks, day + dt.timedelta(days=1), as_of=now + dt.timedelta(days=1))
+        heat_assess.assess_day(s, blocks, day + dt.timedelta(days=1), as_of=now + dt.timedelta(days=1))
         assert s.scalar(select(func.count()).select_from(Calibration)) == 2
     finally:
         s.rollback()
@@ -322,10 +323,10 @@ def test_morning_states_match_morning_features(summer_db):
         obs = load_observations_many(s, [x.id for x in stations], pd.Timestamp("2026-07-13", tz="UTC"),
                                      pd.Timestamp("2026-07-21", tz="UTC"))
     day = dt.date(2026, 7, 18)
-    ms = hp.morning_states(obs, [x.id for x in stations], [x.latitude for x in stations],
+    ms = heat_morning.morning_states(obs, [x.id for x in stations], [x.latitude for x in stations],
                            [x.longitude for x in stations], [x.timezone for x in stations], day)
     for st in stations:
-        sun_t = hp._station_sun(st.latitude, st.longitude, st.timezone, [day - dt.timedelta(days=1), day])
+        sun_t = heat_refit._station_sun(st.latitude, st.longitude, st.timezone, [day - dt.timedelta(days=1), day])
         ref = daytime.morning_features(obs[st.id], sun_t[["sunrise", "sunset"]], st.timezone).loc[day]
         got = ms.loc[st.id]
         assert got["issued_at"] == ref["issued_at"]
@@ -340,14 +341,14 @@ def test_needs_refit_rules():
     def row(fitted_for, coefficients=(0.1,)):
         return Calibration(kind="day_max", params={"fitted_for": fitted_for, "coefficients": list(coefficients)})
 
-    assert hp.needs_refit(None, day)
-    assert hp.needs_refit(row(None), day)
-    assert hp.needs_refit(row("2026-07-20"), day)          # fitted on later readings
-    assert not hp.needs_refit(row("2026-07-17"), day)
-    assert not hp.needs_refit(row("2026-07-10"), day)
-    assert hp.needs_refit(row("2026-07-09"), day)          # older than a week
-    assert not hp.needs_refit(row("2026-07-17", ()), day)   # not fittable today: not again today
-    assert hp.needs_refit(row("2026-07-16", ()), day)       # ... but tomorrow, with a day more
+    assert heat_refit.needs_refit(None, day)
+    assert heat_refit.needs_refit(row(None), day)
+    assert heat_refit.needs_refit(row("2026-07-20"), day)          # fitted on later readings
+    assert not heat_refit.needs_refit(row("2026-07-17"), day)
+    assert not heat_refit.needs_refit(row("2026-07-10"), day)
+    assert heat_refit.needs_refit(row("2026-07-09"), day)          # older than a week
+    assert not heat_refit.needs_refit(row("2026-07-17", ()), day)   # not fittable today: not again today
+    assert heat_refit.needs_refit(row("2026-07-16", ()), day)       # ... but tomorrow, with a day more
 
 
 # --------------------------------------------------------------------------- places and clocks
@@ -415,7 +416,7 @@ stage_date = 2026-10-01
                        "SOUTH,2026-06-21,16.0,5.0,60\n"
                        "SOUTH,2027-01-15,41.0,22.0,12\n"
                        "SOUTH,2027-04-04,33.0,15.0,30\n")
-    hp.import_outlook(db, outlook)
+    outlook_import.import_outlook(db, outlook)
 
 
 def test_polar_night_polar_day_and_a_half_hour_zone(tmp_path, db, quiet_channels):
@@ -423,13 +424,13 @@ def test_polar_night_polar_day_and_a_half_hour_zone(tmp_path, db, quiet_channels
     s, blocks = _blocks(db, ["Polar apples", "Half-hour zone vines"])
     try:
         polar = blocks[[b.name for b in blocks].index("Polar apples")]
-        (night,) = hp.assess_day(s, [polar], dt.date(2026, 12, 21), refit=False)
+        (night,) = heat_assess.assess_day(s, [polar], dt.date(2026, 12, 21), refit=False)
         # two farms, two zones, two hemispheres in one call
-        by_name = {a.block: a for a in hp.assess_day(s, blocks, dt.date(2026, 6, 21), refit=False)}
+        by_name = {a.block: a for a in heat_assess.assess_day(s, blocks, dt.date(2026, 6, 21), refit=False)}
         day, winter = by_name["Polar apples"], by_name["Half-hour zone vines"]
         south_blocks = [b for b in blocks if b is not polar]
-        (south,) = hp.assess_day(s, south_blocks, dt.date(2027, 1, 15), refit=False)
-        (dst,) = hp.assess_day(s, south_blocks, dt.date(2027, 4, 4), refit=False)   # clocks go back: 25 h
+        (south,) = heat_assess.assess_day(s, south_blocks, dt.date(2027, 1, 15), refit=False)
+        (dst,) = heat_assess.assess_day(s, south_blocks, dt.date(2027, 4, 4), refit=False)   # clocks go back: 25 h
     finally:
         s.rollback()
         s.close()
@@ -445,7 +446,7 @@ def test_polar_night_polar_day_and_a_half_hour_zone(tmp_path, db, quiet_channels
     local = [pd.Timestamp(p.time_utc).tz_convert("Australia/Adelaide") for p in south.curve]
     assert all(t.minute == 0 for t in local) and local[0].hour == 0 and len(local) == 24
     peak = max(south.curve, key=lambda p: p.p50_c)
-    noon = hp.sun_by_date(-34.93, 138.60, "Australia/Adelaide", [dt.date(2027, 1, 15)])["solar_noon"].iat[0]
+    noon = heat_refit.sun_by_date(-34.93, 138.60, "Australia/Adelaide", [dt.date(2027, 1, 15)])["solar_noon"].iat[0]
     assert noon < pd.Timestamp(peak.time_utc) < noon + pd.Timedelta(hours=5)
     assert south.level == "scorching"        # 41 °C: above the grape's severe threshold and the crew limits
     assert winter.status == asm.STATUS_OK and winter.level == "easy" and len(winter.curve) == 24
@@ -456,12 +457,12 @@ def test_scheduler_entry_runs_once_per_key(summer_db, no_charts):
     with summer_db.transaction() as s:
         ids = [b.id for b in s.scalars(select(Block).order_by(Block.id))]
     key = f"heat:{OUTLOOK_DAY}:test"
-    pipeline.run_planned(summer_db, "heat", OUTLOOK_DAY, ids, run_at=_clock(OUTLOOK_DAY), key=key)
+    planned.run_planned(summer_db, "heat", OUTLOOK_DAY, ids, run_at=_clock(OUTLOOK_DAY), key=key)
     counts = {m: _count(summer_db, m) for m in (Forecast, Notice, Delivery)}
     assert counts[Forecast] == len(ids)
     with summer_db.transaction() as s:
         assert s.scalar(select(RunRecord.status).where(RunRecord.key == key)) == "finished"
-    pipeline.run_planned(summer_db, "heat", OUTLOOK_DAY, ids, run_at=_clock(OUTLOOK_DAY), key=key)
+    planned.run_planned(summer_db, "heat", OUTLOOK_DAY, ids, run_at=_clock(OUTLOOK_DAY), key=key)
     assert {m: _count(summer_db, m) for m in counts} == counts
 
 
@@ -483,7 +484,7 @@ def test_heat_run_command(summer_db, capsys, no_charts):
 def test_curve_daylight_hours_are_finite_and_levels_match_risk_model(summer_db):
     s, blocks = _blocks(summer_db)
     try:
-        out = hp.assess_day(s, blocks, OUTLOOK_DAY, as_of=_clock(OUTLOOK_DAY))
+        out = heat_assess.assess_day(s, blocks, OUTLOOK_DAY, as_of=_clock(OUTLOOK_DAY))
     finally:
         s.rollback()
         s.close()
@@ -508,7 +509,7 @@ def _station_readings(db, station_id, day):
 def test_heat_curve_passes_through_the_morning_reading_and_peaks_at_the_high(summer_db, day):
     s, blocks = _blocks(summer_db)
     try:
-        out = hp.assess_day(s, blocks, day, as_of=_clock(day))
+        out = heat_assess.assess_day(s, blocks, day, as_of=_clock(day))
         station_of = {b.name: b.station_id for b in blocks}
     finally:
         s.rollback()
@@ -546,7 +547,7 @@ def test_a_station_without_enough_history_uses_the_default_shapes(summer_db, mon
     def run():
         s, blocks = _blocks(summer_db, ["Bench Gala"])
         try:
-            (a,) = hp.assess_day(s, blocks, OUTLOOK_DAY, as_of=_clock(OUTLOOK_DAY))
+            (a,) = heat_assess.assess_day(s, blocks, OUTLOOK_DAY, as_of=_clock(OUTLOOK_DAY))
             kinds = set(s.scalars(select(Calibration.kind)))
         finally:
             s.rollback()
@@ -556,7 +557,7 @@ def test_a_station_without_enough_history_uses_the_default_shapes(summer_db, mon
     a, kinds = run()
     # a week of readings: too few days to fit the station's own shapes
     assert "diurnal" not in kinds
-    assert hp._day_shapes(None) is dayshape.DEFAULT_SHAPES
+    assert heat_assess._day_shapes(None) is dayshape.DEFAULT_SHAPES
     assert "default shapes" in a.details["curve_model"]
     # the curve follows DEFAULT_SHAPES: other defaults (an early peak) give another afternoon
     early = dayshape.DayShape(max_lag_h=0.5, rise_exponent=1.0, sunset_fall_fraction=0.6, fall_exponent=1.0)
@@ -573,7 +574,7 @@ def test_readings_on_grid_takes_the_nearest_reading_within_ten_minutes():
     obs = {1: pd.DataFrame({"air_temp_c": [10.0, 11.0, np.nan, 14.0]},
                            index=t0 + pd.to_timedelta([-5, 62, 120, 185], unit="min")),
            2: pd.DataFrame({"air_temp_c": [20.0]}, index=[t0 + pd.Timedelta(minutes=11)])}
-    got = hp.readings_on_grid(obs, [1, 2, 1, 3], grid)
+    got = heat_assess.readings_on_grid(obs, [1, 2, 1, 3], grid)
     nan = np.nan
     np.testing.assert_array_equal(got, [[10.0, 11.0, nan, 14.0], [nan] * 4, [10.0, 11.0, nan, 14.0], [nan] * 4])
 
@@ -582,12 +583,12 @@ def test_curve_model_text_names_the_reading_the_shapes_and_their_miss():
     at = pd.Timestamp("2026-07-16 07:30", tz="America/Los_Angeles")
     fitted = {"n_days": 200, "day_shapes": dayshape.DEFAULT_SHAPES.to_dict(), "day_shape_rmse_c": 1.234,
               "day_shape_days": 190}
-    text = hp._curve_model_text(fitted, at, False, False, "metric")
+    text = heat_assess._curve_model_text(fitted, at, False, False, "metric")
     assert text.startswith("Curve drawn through this morning's 07:30 reading, rising to the day's high")
     assert "fitted on 190 days of this station (typical daytime miss 1.2 °C)" in text
-    assert "already read" in hp._curve_model_text(fitted, at, False, True, "metric")
-    assert "before sunrise + 2 h" in hp._curve_model_text(fitted, at, True, False, "metric")
-    none = hp._curve_model_text(None, None, False, False, "metric")
+    assert "already read" in heat_assess._curve_model_text(fitted, at, False, True, "metric")
+    assert "before sunrise + 2 h" in heat_assess._curve_model_text(fitted, at, True, False, "metric")
+    none = heat_assess._curve_model_text(None, None, False, False, "metric")
     assert none.startswith("No morning reading") and "default shapes" in none and "too few days" in none
-    old = hp._curve_model_text({"n_days": 200, "rmse_c": 1.5}, at, False, False, "metric")
+    old = heat_assess._curve_model_text({"n_days": 200, "rmse_c": 1.5}, at, False, False, "metric")
     assert "default shapes" in old and "next refit" in old

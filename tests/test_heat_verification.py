@@ -11,10 +11,11 @@ import pytest
 from pvlib.solarposition import sun_rise_set_transit_spa
 from sqlalchemy import func, select, update
 
-from advisory import cli, reports
-from advisory import heat_pipeline as hp
+from advisory import cli, demo_heat, reports
+from advisory.ingest import outlook_import
 from advisory.ingest.farm_file import import_farm_file
 from advisory.ingest.observations import import_file
+from advisory.runs import heat_check, heat_day
 from advisory.store.schema import Block, Forecast, Observation, Station, Verification
 
 DAY = dt.date(2026, 7, 16)              # the demo outlook covers this day
@@ -40,8 +41,8 @@ def summer_db(db, demo_farm, quiet_channels, no_charts):
     import_farm_file(db, demo_farm / "farm.toml")
     for code in ("QR-BENCH", "QR-CREEK"):
         import_file(db, code, demo_farm / "stations" / f"{code}-summer.csv")
-    hp.import_outlook(db, demo_farm / "outlook-summer.csv")
-    hp.run_heat(db, DAY, now=_clock(DAY), deliver=False, check_days=0)
+    outlook_import.import_outlook(db, demo_farm / "outlook-summer.csv")
+    heat_day.run_heat(db, DAY, now=_clock(DAY), deliver=False, check_days=0)
     return db
 
 
@@ -60,7 +61,7 @@ def _count(db) -> int:
 
 
 def test_each_forecast_is_checked_once_against_the_highest_daylight_reading(summer_db, demo_farm):
-    res = hp.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
+    res = heat_check.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
     assert len(res.verified) == N_BLOCKS and not res.skipped
     rows = _rows(summer_db)
     assert len(rows) == N_BLOCKS
@@ -108,29 +109,29 @@ def _position(db, block_id) -> tuple[float, float]:
 
 def test_a_rerun_adds_nothing(summer_db):
     later = _clock(DAY + dt.timedelta(days=1))
-    hp.verify_day(summer_db, DAY, now=later)
+    heat_check.verify_day(summer_db, DAY, now=later)
     before = _count(summer_db)
-    again = hp.verify_day(summer_db, DAY, now=later + dt.timedelta(hours=3))
+    again = heat_check.verify_day(summer_db, DAY, now=later + dt.timedelta(hours=3))
     assert again.verified == [] and again.skipped == [] and _count(summer_db) == before == N_BLOCKS
     # a keyed run that finished is not run at all
     key = f"heat-check:{DAY}:test"
-    hp.verify_day(summer_db, DAY, now=later, key=key)
-    assert hp.verify_day(summer_db, DAY, now=later, key=key).skipped == [f"run {key} already done"]
+    heat_check.verify_day(summer_db, DAY, now=later, key=key)
+    assert heat_check.verify_day(summer_db, DAY, now=later, key=key).skipped == [f"run {key} already done"]
     assert _count(summer_db) == N_BLOCKS
 
 
 def test_the_morning_heat_run_checks_yesterday_first(summer_db):
     nxt = DAY + dt.timedelta(days=1)
-    res = hp.run_heat(summer_db, nxt, now=_clock(nxt), deliver=False)
+    res = heat_day.run_heat(summer_db, nxt, now=_clock(nxt), deliver=False)
     assert len(res.verified) == N_BLOCKS and {v["day"] for v in res.verified} == {DAY}
     assert len(_rows(summer_db)) == N_BLOCKS and _rows(summer_db, nxt) == []
     # the next morning's run checks the estimated day and nothing twice
     after = nxt + dt.timedelta(days=1)
-    res = hp.run_heat(summer_db, after, now=_clock(after), deliver=False)
+    res = heat_day.run_heat(summer_db, after, now=_clock(after), deliver=False)
     assert {v["day"] for v in res.verified} == {nxt} and len(res.verified) == N_BLOCKS
     assert all(v["estimated"] for v in res.verified)
     assert _count(summer_db) == 2 * N_BLOCKS
-    text = hp.check_summary_line(res.verified)
+    text = heat_check.check_summary_line(res.verified)
     assert f"checked heat day {nxt}: 6 forecast highs" in text and "8-in-10 range" in text
 
 
@@ -138,7 +139,7 @@ def test_the_next_heat_note_shows_the_check(summer_db):
     from advisory.notices.compose import compose_block
 
     nxt = DAY + dt.timedelta(days=1)
-    res = hp.run_heat(summer_db, nxt, now=_clock(nxt), deliver=False)
+    res = heat_day.run_heat(summer_db, nxt, now=_clock(nxt), deliver=False)
     a = res.assessments[0]
     assert [r["night"] for r in a.verification] == [DAY.isoformat()]
     section = next(s for s in compose_block(a).sections if s.key == "verification")
@@ -146,13 +147,13 @@ def test_the_next_heat_note_shows_the_check(summer_db):
 
 
 def test_a_day_not_over_is_left_for_later_with_a_reason(summer_db):
-    res = hp.verify_day(summer_db, DAY, now=_clock(DAY, hour=15))
+    res = heat_check.verify_day(summer_db, DAY, now=_clock(DAY, hour=15))
     assert res.verified == [] and _count(summer_db) == 0
     assert len(res.skipped) == N_BLOCKS and all("not over yet" in m for m in res.skipped)
     # an hour after sunset it is over
     with summer_db.transaction() as s:
         sunset = max(pd.Timestamp(f.payload["sunset_utc"]) for f in s.scalars(select(Forecast)))
-    res = hp.verify_day(summer_db, DAY, now=(sunset + pd.Timedelta(hours=1, minutes=1)).to_pydatetime())
+    res = heat_check.verify_day(summer_db, DAY, now=(sunset + pd.Timedelta(hours=1, minutes=1)).to_pydatetime())
     assert len(res.verified) == N_BLOCKS
 
 
@@ -165,7 +166,7 @@ def test_a_gap_in_the_readings_leaves_the_day_unchecked(summer_db):
                                     Observation.time_utc > dt.datetime(2026, 7, 16, 19, tzinfo=dt.UTC),
                                     Observation.time_utc < dt.datetime(2026, 7, 16, 21, tzinfo=dt.UTC)
                                     ).delete(synchronize_session=False)
-    res = hp.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
+    res = heat_check.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
     assert len(res.skipped) == n_bench > 0
     assert all("do not cover the daylight hours" in m for m in res.skipped)
     assert len(res.verified) == N_BLOCKS - n_bench
@@ -175,13 +176,13 @@ def test_a_gap_in_the_readings_leaves_the_day_unchecked(summer_db):
 def test_a_reading_that_failed_qc_does_not_count(summer_db):
     with summer_db.transaction() as s:
         creek = s.scalar(select(Station.id).where(Station.code == "QR-CREEK"))
-    hp.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
+    heat_check.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
     top = max(v.observed_c for v, _, code in _rows(summer_db) if code == "QR-CREEK")
     with summer_db.transaction() as s:
         s.query(Verification).delete()
         s.execute(update(Observation).where(Observation.station_id == creek, Observation.air_temp_c == top)
                   .values(air_temp_qc=1))
-    hp.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
+    heat_check.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
     assert all(v.observed_c < top for v, _, code in _rows(summer_db) if code == "QR-CREEK")
 
 
@@ -189,18 +190,18 @@ def test_observed_maximum_needs_the_window_covered():
     t = pd.date_range("2026-07-16 12:00", "2026-07-17 04:00", freq="15min", tz="UTC")
     frame = pd.DataFrame({"air_temp_c": np.linspace(20.0, 30.0, len(t))}, index=t)
     start, end = pd.Timestamp("2026-07-16 13:00", tz="UTC"), pd.Timestamp("2026-07-17 03:00", tz="UTC")
-    assert hp.observed_maximum(frame, start, end) == pytest.approx(frame.loc[:end, "air_temp_c"].max())
-    assert hp.observed_maximum(frame[frame.index > start + pd.Timedelta(hours=2)], start, end) is None
-    assert hp.observed_maximum(frame[frame.index < end - pd.Timedelta(hours=2)], start, end) is None
+    assert heat_check.observed_maximum(frame, start, end) == pytest.approx(frame.loc[:end, "air_temp_c"].max())
+    assert heat_check.observed_maximum(frame[frame.index > start + pd.Timedelta(hours=2)], start, end) is None
+    assert heat_check.observed_maximum(frame[frame.index < end - pd.Timedelta(hours=2)], start, end) is None
     gap = (frame.index > start + pd.Timedelta(hours=4)) & (frame.index < start + pd.Timedelta(hours=6))
-    assert hp.observed_maximum(frame[~gap], start, end) is None
+    assert heat_check.observed_maximum(frame[~gap], start, end) is None
     short = (frame.index > start + pd.Timedelta(hours=4)) & (frame.index < start + pd.Timedelta(hours=5))
-    assert hp.observed_maximum(frame[~short], start, end) is not None
-    assert hp.observed_maximum(None, start, end) is None
+    assert heat_check.observed_maximum(frame[~short], start, end) is not None
+    assert heat_check.observed_maximum(None, start, end) is None
 
 
 def test_the_report_shows_heat_skill_after_frost(summer_db, capsys):
-    hp.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
+    heat_check.verify_day(summer_db, DAY, now=_clock(DAY + dt.timedelta(days=1)))
     rows = _rows(summer_db)
     data = reports.verification_report(summer_db)
     assert data["frost"]["blocks"] == [] and len(data["heat"]["blocks"]) == N_BLOCKS
@@ -234,18 +235,18 @@ def test_heat_verify_command(summer_db, capsys):
 def test_daylight_window_of_a_polar_day_is_the_local_day():
     # Svalbard at midsummer: the sun neither rises nor sets that day
     payload = {"night": "2026-06-21", "farm_tz": "Arctic/Longyearbyen", "sunrise_utc": None, "sunset_utc": None}
-    start, end = hp.daylight_window(payload)
+    start, end = heat_check.daylight_window(payload)
     # summer time there is UTC+2: the local day runs 22:00 to 22:00 UTC
     assert start == pd.Timestamp("2026-06-20 22:00", tz="UTC") and end == pd.Timestamp("2026-06-21 22:00", tz="UTC")
 
 
 def test_the_demo_heat_week_ends_with_its_checks(db, demo_farm, quiet_channels, no_charts):
     import_farm_file(db, demo_farm / "farm.toml")
-    text = hp.demo_heat(types.SimpleNamespace(outbox=quiet_channels, farm_dir=demo_farm), db, echo=lambda s: None)
+    text = demo_heat.demo_heat(types.SimpleNamespace(outbox=quiet_channels, farm_dir=demo_farm), db, echo=lambda s: None)
     tail = text[text.index("Each morning the heat run first checks"):]
     checks = [ln for ln in tail.splitlines() if ln.startswith("  ") and "observed" in ln]
-    assert [ln.split(":")[0].strip().split(" (")[0] for ln in checks] == [f"{d:%a %d %b}" for d in hp.DEMO_HEAT_DAYS]
+    assert [ln.split(":")[0].strip().split(" (")[0] for ln in checks] == [f"{d:%a %d %b}" for d in demo_heat.DEMO_HEAT_DAYS]
     assert "Heat days" in tail and "all blocks" in tail and "estimated from readings" in tail
-    assert _count(db) == N_BLOCKS * len(hp.DEMO_HEAT_DAYS)
-    hp.demo_heat(types.SimpleNamespace(outbox=quiet_channels, farm_dir=demo_farm), db, echo=lambda s: None)
-    assert _count(db) == N_BLOCKS * len(hp.DEMO_HEAT_DAYS)
+    assert _count(db) == N_BLOCKS * len(demo_heat.DEMO_HEAT_DAYS)
+    demo_heat.demo_heat(types.SimpleNamespace(outbox=quiet_channels, farm_dir=demo_farm), db, echo=lambda s: None)
+    assert _count(db) == N_BLOCKS * len(demo_heat.DEMO_HEAT_DAYS)

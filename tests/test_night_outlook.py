@@ -7,9 +7,9 @@ import datetime as dt
 import pytest
 from sqlalchemy import func, select
 
-from advisory import pipeline
 from advisory.errors import InputError
 from advisory.ingest.night_outlook import import_night_outlook, parse_night_outlook_csv
+from advisory.runs import calibration_refit, frost_assess, frost_night
 from advisory.store.schema import NightOutlook
 
 NIGHT = dt.date(2026, 4, 8)
@@ -89,7 +89,7 @@ def _assess(db):
     with db.transaction() as s:
         blocks = list(s.scalars(select(Block).options(selectinload(Block.farm)).order_by(Block.id)))
         codes = {b.name: b.station.code for b in blocks}
-        return {a.block: a for a in pipeline.assess_night(s, blocks, NIGHT)}, codes
+        return {a.block: a for a in frost_assess.assess_night(s, blocks, NIGHT)}, codes
 
 
 def test_without_an_outlook_nothing_changes_and_with_one_the_forecast_moves_and_says_why(spring_db, tmp_path):
@@ -114,7 +114,7 @@ def test_without_an_outlook_nothing_changes_and_with_one_the_forecast_moves_and_
 
 def test_the_notice_gives_the_outlooks_reason(spring_db, tmp_path, quiet_channels):
     import_night_outlook(spring_db, _clearing_file(tmp_path, evening_sky=100, late_sky=0))
-    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     texts = [p.read_text() for p in quiet_channels.rglob("*bench-gala*frost_r0*.txt") if ".sms." not in p.name]
     assert texts and "The night outlook " in texts[0]
 
@@ -144,8 +144,8 @@ def test_the_morning_refit_learns_the_outlooks_weight(monkeypatch):
     class _Station:
         id, timezone = 1, "UTC"
 
-    monkeypatch.setattr(pipeline, "load_night_outlooks", lambda session, ids, t0, t1: {1: hours})
-    cal = pipeline._fit_outlook_weight(None, cal, hist, _Station())
+    monkeypatch.setattr(calibration_refit, "load_night_outlooks", lambda session, ids, t0, t1: {1: hours})
+    cal = calibration_refit._fit_outlook_weight(None, cal, hist, _Station())
     assert cal.outlook_nights == 200
     assert cal.outlook_weight == pytest.approx(1.0, abs=0.25), cal.outlook_weight
     assert calib.Calibration.from_dict(cal.to_dict()).outlook_weight == pytest.approx(cal.outlook_weight)

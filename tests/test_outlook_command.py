@@ -8,7 +8,7 @@ import pytest
 from sqlalchemy import func, select
 
 from advisory import cli
-from advisory import heat_pipeline as hp
+from advisory.ingest import outlook_import
 from advisory.ingest.farm_file import import_farm_file
 from advisory.store.schema import Outlook
 
@@ -90,7 +90,7 @@ def test_bad_file_is_an_input_error(farm_db, tmp_path, capsys):
 def test_list(farm_db, demo_farm, capsys):
     assert _run(farm_db, "list") == 0
     assert "no outlook stored" in capsys.readouterr().out
-    hp.import_outlook(farm_db, demo_farm / "outlook-summer.csv")
+    outlook_import.import_outlook(farm_db, demo_farm / "outlook-summer.csv")
     assert _run(farm_db, "list", "--station", "QR-CREEK", "--since", "2026-07-18") == 0
     out = capsys.readouterr().out.splitlines()
     assert len(out) == 4 and out[1].split()[:3] == ["QR-CREEK", "2026-07-18", "36.5"]

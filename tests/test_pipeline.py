@@ -8,7 +8,7 @@ import pytest
 from sqlalchemy import func, select, text
 
 from advisory import assessment as asm
-from advisory import pipeline
+from advisory.runs import blocks, calibration_refit, frost_night, frost_update, morning_check, planned
 from advisory.store.schema import Delivery, Forecast, Notice, Verification
 
 NIGHT = dt.date(2026, 4, 8)      # a radiation-frost night of the demo week
@@ -21,7 +21,7 @@ def _count(db, model, *where):
 
 
 def test_evening_run_assesses_every_block_once_and_rerun_sends_nothing(spring_db, quiet_channels):
-    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    res = frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     assert len(res.assessments) == 6
     assert all(a.status == asm.STATUS_OK for a in res.assessments)
     # a frost night: every block is at some risk, and the plan says something for each
@@ -32,7 +32,7 @@ def test_evening_run_assesses_every_block_once_and_rerun_sends_nothing(spring_db
     assert notices == 7  # six blocks and one farm summary
     outbox_files = sorted(p.name for p in quiet_channels.rglob("*") if p.is_file())
     assert outbox_files
-    again = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    again = frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     assert len(again.skipped) == 6
     assert _count(spring_db, Forecast) == 6
     assert _count(spring_db, Notice) == notices
@@ -41,11 +41,11 @@ def test_evening_run_assesses_every_block_once_and_rerun_sends_nothing(spring_db
 
 
 def test_update_notice_only_on_material_change(spring_db):
-    first = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    first = frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     n0 = _count(spring_db, Notice)
     # an update a minute after the reference time sees the same readings: nothing material
     ref = min(a.reference_time_utc for a in first.assessments)
-    res = pipeline.run_night(spring_db, NIGHT, now=ref + dt.timedelta(minutes=1), update=True,
+    res = frost_night.run_night(spring_db, NIGHT, now=ref + dt.timedelta(minutes=1), update=True,
                              sleep=lambda s: None)
     assert _count(spring_db, Forecast, Forecast.revision == 1) == 6
     assert all(a.is_update for a in res.assessments)
@@ -75,45 +75,45 @@ def _update(old, **changes):
 
 def test_material_change_rules():
     """A notice at night wakes someone: what changes the crew's work goes out, flips near an edge do not
-    (the rules of pipeline.material_change)."""
+    (the rules of frost_update.material_change)."""
     start = NOW + dt.timedelta(hours=2)   # still ahead at the update's clock
     base = _noticed(start=start)
-    assert pipeline.material_change(_update(base), base) == []
-    m = pipeline.MATERIAL_START_SHIFT_MIN
-    assert pipeline.material_change(_update(base, start=start - dt.timedelta(minutes=m)), base)
-    assert pipeline.material_change(_update(base, start=start - dt.timedelta(minutes=m - 1)), base) == []
+    assert frost_update.material_change(_update(base), base) == []
+    m = frost_update.MATERIAL_START_SHIFT_MIN
+    assert frost_update.material_change(_update(base, start=start - dt.timedelta(minutes=m)), base)
+    assert frost_update.material_change(_update(base, start=start - dt.timedelta(minutes=m - 1)), base) == []
     # later: a larger shift is needed, the crew is ready anyway
-    assert pipeline.material_change(_update(base, start=start + dt.timedelta(minutes=m)), base) == []
-    assert pipeline.material_change(
-        _update(base, start=start + dt.timedelta(minutes=pipeline.MATERIAL_LATER_SHIFT_MIN)), base)
+    assert frost_update.material_change(_update(base, start=start + dt.timedelta(minutes=m)), base) == []
+    assert frost_update.material_change(
+        _update(base, start=start + dt.timedelta(minutes=frost_update.MATERIAL_LATER_SHIFT_MIN)), base)
     # a firm start where the last notice said only "be ready"
     ready = _noticed(ready=start)
-    assert pipeline.material_change(_update(ready, start=start, ready=None), ready) == ["start time set"]
-    assert pipeline.material_change(_update(ready, ready=start - dt.timedelta(minutes=m)), ready)
-    assert pipeline.material_change(_update(ready, ready=start + dt.timedelta(minutes=2 * m)), ready) == []
+    assert frost_update.material_change(_update(ready, start=start, ready=None), ready) == ["start time set"]
+    assert frost_update.material_change(_update(ready, ready=start - dt.timedelta(minutes=m)), ready)
+    assert frost_update.material_change(_update(ready, ready=start + dt.timedelta(minutes=2 * m)), ready) == []
     # once the noticed start has passed, the crew is running: a new "start" is not news
     running = _noticed(start=NOW - dt.timedelta(hours=2.5))
-    assert pipeline.material_change(_update(running, start=NOW - dt.timedelta(minutes=90)), running) == []
+    assert frost_update.material_change(_update(running, start=NOW - dt.timedelta(minutes=90)), running) == []
 
 
 def test_material_change_levels_move_by_action_not_by_name():
     quiet = _noticed(level="nil", rank=0, p50=2.0)
-    assert pipeline.material_change(_update(quiet, level="slight", level_rank=1), quiet) == []
+    assert frost_update.material_change(_update(quiet, level="slight", level_rank=1), quiet) == []
     protect = _noticed(level="serious", rank=3, needs=True, p50=-1.0)
-    assert pipeline.material_change(_update(protect, level="grave", level_rank=4, p50_c=-1.4), protect) == []
-    assert pipeline.material_change(_update(quiet, level="serious", level_rank=3, p50_c=-1.0,
+    assert frost_update.material_change(_update(protect, level="grave", level_rank=4, p50_c=-1.4), protect) == []
+    assert frost_update.material_change(_update(quiet, level="serious", level_rank=3, p50_c=-1.0,
                                             details={"needs_protection": True}), quiet)
     # standing down must hold by a margin: 0.3 °C warmer is a flip near the edge, 0.6 °C is news
     down = {"level": "slight", "level_rank": 1, "details": {"needs_protection": False}}
-    assert pipeline.material_change(_update(protect, p50_c=-0.7, **down), protect) == []
-    assert pipeline.material_change(_update(protect, p50_c=-1.0 + pipeline.MATERIAL_STAND_DOWN_C, **down), protect)
+    assert frost_update.material_change(_update(protect, p50_c=-0.7, **down), protect) == []
+    assert frost_update.material_change(_update(protect, p50_c=-1.0 + frost_update.MATERIAL_STAND_DOWN_C, **down), protect)
     # a method dropped, the same margin; a method added goes out at once
     dropped = _update(protect, p50_c=-0.8)
     dropped.plan[0].advised = False
-    assert pipeline.material_change(dropped, protect) == []
+    assert frost_update.material_change(dropped, protect) == []
     added = _update(protect)
     added.plan.append(asm.ProtectionStep("heater", True, start_utc=NOW + dt.timedelta(hours=1)))
-    assert "advised protection changed" in pipeline.material_change(added, protect)
+    assert "advised protection changed" in frost_update.material_change(added, protect)
 
 
 def test_updates_through_a_frost_night_never_stop_sprinklers_once_started(spring_db, quiet_channels):
@@ -123,12 +123,12 @@ def test_updates_through_a_frost_night_never_stop_sprinklers_once_started(spring
     from advisory import schedule
     from advisory.risk import continuity
 
-    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     runs = schedule.night_runs(schedule.load_block_clocks(spring_db), NIGHT,
                                schedule.PlannerSettings(kinds=(schedule.UPDATE,)))
     assert len(runs) >= 6
     for r in runs:
-        pipeline.run_night(spring_db, NIGHT, list(r.block_ids), now=r.run_at, update=True, sleep=lambda s: None)
+        frost_night.run_night(spring_db, NIGHT, list(r.block_ids), now=r.run_at, update=True, sleep=lambda s: None)
     with spring_db.transaction() as s:
         rows = s.execute(select(Forecast.block_id, Forecast.revision, Forecast.payload)
                          .where(Forecast.night == NIGHT).order_by(Forecast.block_id, Forecast.revision)).all()
@@ -165,7 +165,7 @@ def test_silent_station_gets_an_explicit_notice(spring_db):
     with spring_db.engine.begin() as conn:
         conn.execute(text("DELETE FROM observations WHERE station_id = (SELECT id FROM stations WHERE code = "
                           "'QR-CREEK') AND time_utc >= :t"), {"t": cut})
-    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    res = frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     creek = [a for a in res.assessments if a.station == "QR-CREEK"]
     assert creek and all(a.status == asm.STATUS_NO_FORECAST for a in creek)
     assert all("silent since Wed 08 Apr 14:45 PDT" in a.reason for a in creek)
@@ -178,9 +178,9 @@ def test_silent_station_gets_an_explicit_notice(spring_db):
 def test_station_silent_mid_run_says_keep_the_sprinklers_running(spring_db, quiet_channels, every_reading_gone):
     """Creek Bing's notice as of 22:39 PDT has the over-tree sprinklers start before midnight; QR-CREEK then
     falls silent after midnight.  The update that finds no forecast says so, and to keep them running."""
-    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     first = dt.datetime(2026, 4, 9, 5, 39, tzinfo=dt.UTC)           # 22:39 PDT
-    pipeline.run_night(spring_db, NIGHT, [2], now=first, update=True, sleep=lambda s: None)
+    frost_night.run_night(spring_db, NIGHT, [2], now=first, update=True, sleep=lambda s: None)
     with spring_db.transaction() as s:
         told = s.scalars(select(Notice).where(Notice.block_id == 2, Notice.night == NIGHT)
                          .order_by(Notice.revision.desc())).first()
@@ -195,7 +195,7 @@ def test_station_silent_mid_run_says_keep_the_sprinklers_running(spring_db, quie
     with spring_db.engine.begin() as conn:
         conn.execute(text("DELETE FROM observations WHERE station_id = (SELECT id FROM stations WHERE code = "
                           "'QR-CREEK') AND time_utc >= :t"), {"t": cut})
-    res = pipeline.run_night(spring_db, NIGHT, [2], now=dt.datetime(2026, 4, 9, 9, 39, tzinfo=dt.UTC),
+    res = frost_night.run_night(spring_db, NIGHT, [2], now=dt.datetime(2026, 4, 9, 9, 39, tzinfo=dt.UTC),
                              update=True, sleep=lambda s: None)
     a = res.assessments[0]
     assert a.status == asm.STATUS_NO_FORECAST
@@ -210,27 +210,27 @@ def test_station_silent_mid_run_says_keep_the_sprinklers_running(spring_db, quie
 
 def test_missed_evening_run_sends_one_notice(spring_db):
     run_at = dt.datetime(2026, 4, 9, 4, 39, tzinfo=dt.UTC)
-    res = pipeline.record_missed(spring_db, NIGHT, [1, 2], key="evening:test", run_at=run_at,
+    res = planned.record_missed(spring_db, NIGHT, [1, 2], key="evening:test", run_at=run_at,
                                  now=run_at + dt.timedelta(hours=3))
     assert {a.status for a in res.assessments} == {asm.STATUS_MISSED}
     assert "was missed" in res.assessments[0].reason
-    again = pipeline.record_missed(spring_db, NIGHT, [1, 2], key="evening:test", run_at=run_at,
+    again = planned.record_missed(spring_db, NIGHT, [1, 2], key="evening:test", run_at=run_at,
                                    now=run_at + dt.timedelta(hours=3))
     assert again.assessments == []
     assert _count(spring_db, Notice, Notice.block_id.is_not(None)) == 2
 
 
 def test_morning_verification_stores_observed_minimum(spring_db):
-    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
-    early = pipeline.verify_night(spring_db, NIGHT, now=NOW)
+    frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    early = morning_check.verify_night(spring_db, NIGHT, now=NOW)
     assert early.verified == [] and early.skipped
-    res = pipeline.verify_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 15, tzinfo=dt.UTC))
+    res = morning_check.verify_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 15, tzinfo=dt.UTC))
     assert len(res.verified) == 6
     assert _count(spring_db, Verification) == 6
     # the demo's bench station bottoms out near -3.4 °C at dawn (see demo-farm/generate.py)
     bench = [v for v in res.verified if v["block"] == "Bench Gala"][0]
     assert -4.5 < bench["observed_c"] < -2.5
-    again = pipeline.verify_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 16, tzinfo=dt.UTC))
+    again = morning_check.verify_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 16, tzinfo=dt.UTC))
     assert again.verified == []
 
 
@@ -242,16 +242,16 @@ def test_calibrations_are_refitted_on_a_schedule(spring_db):
     with spring_db.transaction() as s:
         ids = list(s.scalars(select(Station.id).order_by(Station.id)))
         t0 = dt.datetime(2026, 4, 9, 15, tzinfo=dt.UTC)
-        assert pipeline.stations_due_for_refit(s, ids, t0) == ids  # none fitted yet
+        assert calibration_refit.stations_due_for_refit(s, ids, t0) == ids  # none fitted yet
         s.add(Calibration(station_id=ids[0], kind="night_min", fitted_at=t0, training_nights=400, params={}))
         s.add(Calibration(station_id=ids[1], kind="night_min", fitted_at=t0, training_nights=20, params={}))
         s.flush()
         day = dt.timedelta(days=1)
         # next morning: the young fit (20 nights) again, the seasoned one (400 nights) not yet
-        assert pipeline.stations_due_for_refit(s, ids, t0 + day) == [ids[1]]
-        assert pipeline.stations_due_for_refit(s, ids, t0 + 6 * day) == [ids[1]]
+        assert calibration_refit.stations_due_for_refit(s, ids, t0 + day) == [ids[1]]
+        assert calibration_refit.stations_due_for_refit(s, ids, t0 + 6 * day) == [ids[1]]
         # a week on, both
-        assert pipeline.stations_due_for_refit(s, ids, t0 + pipeline.REFIT_EVERY_DAYS * day) == ids
+        assert calibration_refit.stations_due_for_refit(s, ids, t0 + calibration_refit.REFIT_EVERY_DAYS * day) == ids
 
 
 def test_a_past_night_run_again_uses_only_calibrations_fitted_by_then(spring_db):
@@ -259,15 +259,15 @@ def test_a_past_night_run_again_uses_only_calibrations_fitted_by_then(spring_db)
 
     from advisory.store.schema import Calibration, Station
 
-    pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False)
+    frost_night.run_night(spring_db, NIGHT, now=NOW, deliver=False)
     morning = dt.datetime(2026, 4, 9, 15, tzinfo=dt.UTC)
-    pipeline.verify_night(spring_db, NIGHT, now=morning)  # fits the stations' calibrations
+    morning_check.verify_night(spring_db, NIGHT, now=morning)  # fits the stations' calibrations
     with spring_db.transaction() as s:
         ids = list(s.scalars(select(Station.id).order_by(Station.id)))
         fitted = set(s.scalars(select(Calibration.station_id).where(Calibration.kind == "night_min")))
         assert fitted
-        assert pipeline._latest_calibrations(s, ids, before=NOW) == {}  # the evening before: not yet known
-        assert set(pipeline._latest_calibrations(s, ids, before=morning)) == fitted
+        assert blocks._latest_calibrations(s, ids, before=NOW) == {}  # the evening before: not yet known
+        assert set(blocks._latest_calibrations(s, ids, before=morning)) == fitted
 
 
 def test_observed_minimum_needs_a_covered_window():
@@ -275,6 +275,6 @@ def test_observed_minimum_needs_a_covered_window():
 
     idx = pd.date_range("2026-04-09 04:00", "2026-04-09 14:00", freq="15min", tz="UTC")
     frame = pd.DataFrame({"air_temp_c": range(len(idx))}, index=idx, dtype=float)
-    assert pipeline.observed_minimum(frame, idx[0], idx[-1]) == 0.0
+    assert morning_check.observed_minimum(frame, idx[0], idx[-1]) == 0.0
     holed = frame.drop(frame.index[8:20])
-    assert pipeline.observed_minimum(holed, idx[0], idx[-1]) is None
+    assert morning_check.observed_minimum(holed, idx[0], idx[-1]) is None

@@ -10,10 +10,10 @@ import pandas as pd
 import pytest
 
 from advisory import assessment as asm
-from advisory import pipeline
 from advisory import settings as settings_mod
 from advisory.errors import InputError
 from advisory.forecast.result import LEVELS, table_prob_below
+from advisory.runs import frost_assess, frost_night, save, sizes
 from advisory.store import jsoncodec
 
 NIGHT = dt.date(2026, 4, 8)      # a radiation-frost night of the demo week
@@ -21,7 +21,7 @@ NOW = dt.datetime(2026, 4, 9, 5, 0, tzinfo=dt.UTC)
 
 
 def test_fast_payload_equals_to_dict(spring_db):
-    res = pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False)
+    res = frost_night.run_night(spring_db, NIGHT, now=NOW, deliver=False)
     odd = dataclasses.replace(res.assessments[0], details={
         "np_nan": np.float64("nan"), "nan": float("nan"), "n": np.int64(3), "pair": (1, 2.5),
         "day": dt.date(2026, 1, 2), "when": dt.datetime(2026, 1, 2, 3, tzinfo=dt.timezone(dt.timedelta(hours=2))),
@@ -54,13 +54,13 @@ def _utc_written(value) -> bytes:
 def test_the_runs_instants_are_utc_so_stored_json_writes_them_in_utc(spring_db):
     """orjson writes an instant with its own offset: every instant of a run's assessments and notices
     must be UTC already for the stored JSON to be in UTC (:mod:`advisory.store.jsoncodec`)."""
-    from advisory import heat_pipeline
     from advisory.notices import compose
+    from advisory.runs import heat_day
 
-    frost = pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False).assessments
-    update = pipeline.run_night(spring_db, NIGHT, now=NOW + dt.timedelta(hours=4), update=True,
+    frost = frost_night.run_night(spring_db, NIGHT, now=NOW, deliver=False).assessments
+    update = frost_night.run_night(spring_db, NIGHT, now=NOW + dt.timedelta(hours=4), update=True,
                                 deliver=False).assessments
-    heat = heat_pipeline.run_heat(spring_db, NIGHT, now=dt.datetime(2026, 4, 8, 16, tzinfo=dt.UTC),
+    heat = heat_day.run_heat(spring_db, NIGHT, now=dt.datetime(2026, 4, 8, 16, tzinfo=dt.UTC),
                                   deliver=False).assessments
     values = [*frost, *update, *heat]
     values += [compose.compose_block(a) for a in frost + heat]
@@ -81,7 +81,7 @@ def test_cdf_equals_column_by_column_table_lookup():
     x[:, 2] = q[:, 10]                          # exactly on a level
     x[3, 4] = np.nan
     fc = type("F", (), {"quantiles_c": q})()
-    got = pipeline._cdf(fc, np.arange(n))(x)
+    got = frost_assess._cdf(fc, np.arange(n))(x)
     want = np.stack([table_prob_below(q, x[:, j]) for j in range(x.shape[1])], axis=1)
     np.testing.assert_array_equal(got, want)
 
@@ -90,14 +90,14 @@ def test_night_groups_split_far_apart_reference_times():
     ref = pd.DatetimeIndex(["2026-04-08 09:00", "2026-04-09 03:00", "2026-04-08 10:30", "2026-04-09 05:00",
                             "2026-04-09 08:30"], tz="UTC")
     fc = type("F", (), {"reference_time": ref})()
-    groups = pipeline._night_groups(fc, np.arange(5), span_h=4.0)
+    groups = frost_assess._night_groups(fc, np.arange(5), span_h=4.0)
     assert [g.tolist() for g in groups] == [[0, 2], [1, 3], [4]]
 
 
 def test_lean_outbox_setting(spring_db, quiet_channels, monkeypatch):
     monkeypatch.setenv("ADVISORY_OUTBOX_FORMATS", "json, sms")
     monkeypatch.setenv("ADVISORY_OUTBOX_CHARTS", "never")
-    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    res = frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     assert res.deliveries["outbox sent"] == 7
     files = [p.name for p in quiet_channels.rglob("*") if p.is_file()]
 
@@ -134,11 +134,11 @@ def test_outbox_settings_are_checked(monkeypatch, tmp_path):
 
 def test_crash_before_delivery_is_delivered_by_the_next_run(spring_db, quiet_channels):
     # stored but not delivered (as if the process died between the two transactions)
-    first = pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False)
+    first = frost_night.run_night(spring_db, NIGHT, now=NOW, deliver=False)
     assert first.notices and not first.deliveries
-    again = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    again = frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     assert again.notices == [] and again.deliveries["outbox sent"] == len(first.notices)
-    assert pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None).deliveries == {}
+    assert frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None).deliveries == {}
 
 
 def test_notice_data_is_stored_once_and_joined_again(spring_db, quiet_channels, monkeypatch):
@@ -149,7 +149,7 @@ def test_notice_data_is_stored_once_and_joined_again(spring_db, quiet_channels, 
     from advisory.store.schema import Notice
 
     monkeypatch.setenv("ADVISORY_OUTBOX_FORMATS", "json")
-    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    res = frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     written = {p.name: p.read_text() for p in quiet_channels.rglob("*.json")}
     with spring_db.transaction() as s:
         rows = list(s.scalars(select(Notice).where(Notice.id.in_(res.notices))))
@@ -167,7 +167,7 @@ def test_notice_data_is_stored_once_and_joined_again(spring_db, quiet_channels, 
 def test_email_chart_setting_draws_charts_for_mailed_notices(spring_db, quiet_channels, monkeypatch):
     monkeypatch.setenv("ADVISORY_OUTBOX_FORMATS", "json")
     monkeypatch.setenv("ADVISORY_OUTBOX_CHARTS", "email")
-    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     blocks = [p.name for p in quiet_channels.rglob("*") if p.is_file() and "_farm-summary_" not in p.name
               and p.name.split(".", 1)[1].count(".") == 0]
     # every demo block has a recipient with an e-mail address: its chart and the page showing it are kept
@@ -205,20 +205,20 @@ def test_forked_workers_store_what_one_process_stores(spring_db, demo_farm, tmp_
     url, serial_db = _second_spring_db(fresh_db_url("serial"), demo_farm)
     later = NOW + dt.timedelta(hours=-3)
     one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
-    pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
+    frost_night.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
     if update:
-        pipeline.run_night(serial_db, NIGHT, now=later, update=True, settings=one, sleep=lambda s: None)
+        frost_night.run_night(serial_db, NIGHT, now=later, update=True, settings=one, sleep=lambda s: None)
 
     from advisory.notices import deliver
 
-    monkeypatch.setattr(pipeline, "PARALLEL_FROM_BLOCKS", 2)  # the demo farm has six blocks
+    monkeypatch.setattr(sizes, "PARALLEL_FROM_BLOCKS", 2)  # the demo farm has six blocks
     monkeypatch.setattr(deliver, "FORK_OUTBOX_FROM", 2)
     three = dataclasses.replace(one, db_url=spring_db.url, workers=3, outbox=tmp_path / "outbox-three")
     caplog.set_level("INFO", logger="advisory.notices.deliver")
-    runs = [pipeline.run_night(spring_db, NIGHT, now=NOW, settings=three, sleep=lambda s: None)]
+    runs = [frost_night.run_night(spring_db, NIGHT, now=NOW, settings=three, sleep=lambda s: None)]
     assert "with 3 processes" in caplog.text
     if update:
-        runs.append(pipeline.run_night(spring_db, NIGHT, now=later, update=True, settings=three,
+        runs.append(frost_night.run_night(spring_db, NIGHT, now=later, update=True, settings=three,
                                        sleep=lambda s: None))
     assert all("wait for workers" in r.timings for r in runs)  # the shares went to forked processes
     # the same outbox, file for file (written by three processes here, by one there)
@@ -251,7 +251,7 @@ def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo
 
     url, serial_db = _second_spring_db(fresh_db_url("serial"), demo_farm)
     one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
-    pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
+    frost_night.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
     serial_db.dispose()
 
     two = dataclasses.replace(one, db_url=spring_db.url, workers=workers, outbox=tmp_path / "outbox-two")
@@ -261,14 +261,14 @@ def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo
     for p in (stale, fresh):
         p.write_text("{}")
     os.utime(stale, (time.time() - 2 * deliver.STALE_STAGED_S,) * 2)
-    monkeypatch.setattr(pipeline, "STAGE_OUTBOX_FROM", 2)  # the demo farm has six blocks
-    monkeypatch.setattr(pipeline, "PARALLEL_FROM_BLOCKS", 2)  # and its workers hand their files over
+    monkeypatch.setattr(sizes, "STAGE_OUTBOX_FROM", 2)  # the demo farm has six blocks
+    monkeypatch.setattr(sizes, "PARALLEL_FROM_BLOCKS", 2)  # and its workers hand their files over
     if writer_fails:
         def broken(*args, **kw):
             raise OSError("disk full")
         monkeypatch.setattr(deliver, "stage_outbox", broken)
-    caplog.set_level("WARNING", logger="advisory.pipeline")
-    res = pipeline.run_night(spring_db, NIGHT, now=NOW, settings=two, sleep=lambda s: None)
+    caplog.set_level("WARNING", logger="advisory.runs.staging")
+    res = frost_night.run_night(spring_db, NIGHT, now=NOW, settings=two, sleep=lambda s: None)
     assert ("outbox files written ahead" in res.timings) is not writer_fails
     assert "wait for workers" in res.timings
     assert ("disk full" in caplog.text) is writer_fails
@@ -293,7 +293,7 @@ def test_a_run_that_fails_after_writing_ahead_publishes_nothing(spring_db, quiet
     from advisory.store import bulk
     from advisory.store.schema import Forecast, Notice
 
-    monkeypatch.setattr(pipeline, "STAGE_OUTBOX_FROM", 2)
+    monkeypatch.setattr(sizes, "STAGE_OUTBOX_FROM", 2)
     real = bulk.insert_rows
 
     def failing(session, model, rows, key=None):
@@ -303,12 +303,12 @@ def test_a_run_that_fails_after_writing_ahead_publishes_nothing(spring_db, quiet
 
     monkeypatch.setattr(bulk, "insert_rows", failing)
     with pytest.raises(RuntimeError, match="went away"):
-        pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+        frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     assert [p for p in quiet_channels.rglob("*") if p.is_file()] == []   # nothing published, nothing left
     with spring_db.transaction() as s:
         assert s.query(Forecast).count() == 0 and s.query(Notice).count() == 0
     monkeypatch.setattr(bulk, "insert_rows", real)
-    res = pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)   # the next run does it all
+    res = frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)   # the next run does it all
     assert res.deliveries["outbox sent"] == len(res.notices) == 7
 
 
@@ -335,9 +335,9 @@ def test_table_quantiles_invert_the_table_cdf():
     q[4, 20:30] = q[4, 20]  # a flat stretch (a jump of the CDF)
     fc = type("F", (), {"quantiles_c": q})()
     probs = (np.arange(200) + 0.5) / 200
-    x = pipeline._table_quantiles(fc, np.arange(n))(probs)
+    x = frost_assess._table_quantiles(fc, np.arange(n))(probs)
     assert x.shape == (n, 200) and np.all(np.diff(x, axis=1) >= 0)
-    p = pipeline._cdf(fc, np.arange(n))(x)
+    p = frost_assess._cdf(fc, np.arange(n))(x)
     ok = np.ones_like(p, bool)
     ok[4] = (probs < LEVELS[20] - 1e-9) | (probs > LEVELS[29] + 1e-9)  # inside the jump the CDF steps past
     np.testing.assert_allclose(p[ok], np.broadcast_to(probs, p.shape)[ok], atol=1e-9)
@@ -358,14 +358,14 @@ def test_driver_level_inserts_store_what_the_orm_stores(spring_db, demo_farm, tm
                                                         fresh_db_url):
     url, orm_db = _second_spring_db(fresh_db_url("orm"), demo_farm)
     with monkeypatch.context() as m:
-        m.setattr(pipeline, "_ROW_KEYS", {})  # no key to find the ids by: the ORM's bulk insert
-        pipeline.run_night(orm_db, NIGHT, now=NOW, deliver=False)
+        m.setattr(save, "_ROW_KEYS", {})  # no key to find the ids by: the ORM's bulk insert
+        frost_night.run_night(orm_db, NIGHT, now=NOW, deliver=False)
     looked_up = []
     from advisory.store import bulk
 
     real = bulk._numbered_after
     monkeypatch.setattr(bulk, "_numbered_after", lambda c, t, b, n: looked_up.append(t.name) or real(c, t, b, n))
-    pipeline.run_night(spring_db, NIGHT, now=NOW, deliver=False)
+    frost_night.run_night(spring_db, NIGHT, now=NOW, deliver=False)
     assert looked_up == ["forecasts", "notices"]  # the driver-level path was taken
     orm_db.dispose()
     for table in ("forecasts", "notices"):
@@ -382,24 +382,24 @@ def test_a_worker_that_stops_has_its_share_done_by_the_run(spring_db, demo_farm,
 
     url, serial_db = _second_spring_db(fresh_db_url("serial"), demo_farm)
     one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
-    pipeline.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
+    frost_night.run_night(serial_db, NIGHT, now=NOW, settings=one, sleep=lambda s: None)
     want = _stored(serial_db)
     serial_db.dispose()
 
     home = os.getpid()
-    real = pipeline._assess_share
+    real = frost_night._assess_share
 
     def dies(*args, **kw):
         if os.getpid() != home:
             os._exit(3)  # without a word
         return real(*args, **kw)
 
-    monkeypatch.setattr(pipeline, "_assess_share", dies)
-    monkeypatch.setattr(pipeline, "PARALLEL_FROM_BLOCKS", 2)
-    monkeypatch.setattr(pipeline, "STAGE_OUTBOX_FROM", 2)
+    monkeypatch.setattr(frost_night, "_assess_share", dies)
+    monkeypatch.setattr(sizes, "PARALLEL_FROM_BLOCKS", 2)
+    monkeypatch.setattr(sizes, "STAGE_OUTBOX_FROM", 2)
     two = dataclasses.replace(one, db_url=spring_db.url, workers=2, outbox=tmp_path / "outbox-two")
     caplog.set_level("WARNING", logger="advisory.forking")
-    res = pipeline.run_night(spring_db, NIGHT, now=NOW, settings=two, sleep=lambda s: None)
+    res = frost_night.run_night(spring_db, NIGHT, now=NOW, settings=two, sleep=lambda s: None)
     assert "a worker process stopped" in caplog.text
     assert len(res.assessments) == len({a.block_id for a in res.assessments}) == 6
     _same(_stored(spring_db), want)

@@ -9,8 +9,9 @@ import pytest
 from scipy.special import ndtri
 from sqlalchemy import select
 
-from advisory import pipeline, reports
+from advisory import reports
 from advisory.forecast.result import LEVELS, table_crps, table_quantile, two_piece_table
+from advisory.runs import frost_night, morning_check
 from advisory.store.schema import Verification
 
 NIGHT = dt.date(2026, 4, 8)
@@ -27,8 +28,8 @@ def test_two_piece_table_passes_through_its_three_quantiles():
 
 
 def test_report_gives_crps_and_reliability(spring_db):
-    pipeline.run_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 5, tzinfo=dt.UTC), sleep=lambda s: None)
-    pipeline.verify_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 15, tzinfo=dt.UTC))
+    frost_night.run_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 5, tzinfo=dt.UTC), sleep=lambda s: None)
+    morning_check.verify_night(spring_db, NIGHT, now=dt.datetime(2026, 4, 9, 15, tzinfo=dt.UTC))
     data = reports.verification_report(spring_db, kind="frost")
     frost = data["frost"]
     with spring_db.transaction() as s:

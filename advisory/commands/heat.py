@@ -5,8 +5,9 @@ from __future__ import annotations
 import datetime as dt
 from zoneinfo import ZoneInfo
 
-from advisory import heat_pipeline, reports
+from advisory import reports
 from advisory.commands.night import _date, add_date_limits, check_date_window, settle_deliveries
+from advisory.runs import command_text
 from advisory.store.db import Database
 
 
@@ -43,7 +44,7 @@ def do_run(args) -> int:
     check_date_window(db, day, args.farm, args, what="day")
     started = dt.datetime.now(dt.UTC)
     day = day or started.astimezone(ZoneInfo(reports.farm_zone(db, args.farm))).date()
-    print(heat_pipeline.heat_run_text(db, day, farm=args.farm, names=args.block,
+    print(command_text.heat_run_text(db, day, farm=args.farm, names=args.block,
                                       deliver=not args.no_deliver, fmt=args.format), flush=True)
     if args.no_deliver:
         return 0
@@ -52,5 +53,5 @@ def do_run(args) -> int:
 
 def do_verify(args) -> int:
     db = Database(args.db)
-    print(reports.heat_verify(db, _date(args.date), names=args.block))
+    print(command_text.heat_verify(db, _date(args.date), names=args.block))
     return 0

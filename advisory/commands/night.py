@@ -9,6 +9,7 @@ from zoneinfo import ZoneInfo
 
 from advisory import reports
 from advisory.errors import InputError
+from advisory.runs import command_text
 from advisory.store.db import Database
 
 #: A night or heat day further than this from today (the farm's local date) needs --allow-past or
@@ -132,7 +133,7 @@ def do_run(args) -> int:
     check_date_window(db, night, args.farm, args)
     started = dt.datetime.now(dt.UTC)
     night = night or reports._default_night(db, args.farm, started)
-    out = reports.night_run(db, night, farm=args.farm, names=args.block, update=args.update,
+    out = command_text.night_run(db, night, farm=args.farm, names=args.block, update=args.update,
                             deliver=not args.no_deliver, fmt=args.format)
     print(out, flush=True)
     if args.no_deliver:
@@ -142,7 +143,7 @@ def do_run(args) -> int:
 
 def do_verify(args) -> int:
     db = Database(args.db)
-    print(reports.night_verify(db, _date(args.date), names=args.block))
+    print(command_text.night_verify(db, _date(args.date), names=args.block))
     return 0
 
 

@@ -5,9 +5,8 @@ from __future__ import annotations
 import datetime as dt
 import json
 
-from advisory import heat_pipeline
 from advisory.errors import InputError
-from advisory.ingest import night_outlook
+from advisory.ingest import night_outlook, outlook_import
 from advisory.store.db import Database
 
 
@@ -45,7 +44,7 @@ def do_import(args) -> int:
     if _kind(args) == "night":
         report = night_outlook.import_night_outlook(Database(args.db), args.file, station=args.station)
     else:
-        report = heat_pipeline.import_outlook(Database(args.db), args.file, station=args.station)
+        report = outlook_import.import_outlook(Database(args.db), args.file, station=args.station)
     print(json.dumps(report.as_dict(), indent=2) if args.json else report.text())
     return 0
 
@@ -57,6 +56,6 @@ def do_list(args) -> int:
             since = dt.date.fromisoformat(args.since)
         except ValueError:
             raise InputError(f"'{args.since}' is not a date like 2026-07-15", field="--since") from None
-    rows = heat_pipeline.list_outlooks(Database(args.db), station=args.station, since=since)
-    print(json.dumps(rows, indent=2) if args.json else heat_pipeline.format_outlooks(rows))
+    rows = outlook_import.list_outlooks(Database(args.db), station=args.station, since=since)
+    print(json.dumps(rows, indent=2) if args.json else outlook_import.format_outlooks(rows))
     return 0

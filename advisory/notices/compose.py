@@ -1174,7 +1174,7 @@ def _status(a: Assessment, f: _Fmt, name: str):
         latest = dq.get("latest_obs_utc")
         if latest:
             first = f"No forecast {when_txt}: station {a.station} silent since {f.when(latest)}."
-        else:  # the reason may begin with the same words (advisory.pipeline._silence_reason)
+        else:  # the reason may begin with the same words (advisory.runs.frost_assess._silence_reason)
             why = re.sub(r"(?i)^no forecast (tonight|today):\s*", "", a.reason or "").rstrip(".")
             first = f"No forecast {when_txt}: " + (why + "." if why else f"no usable data from station {a.station}.")
         core = f"{a.block}: no forecast {when_txt}"

@@ -7,9 +7,9 @@ import types
 
 import pytest
 
-from advisory import heat_pipeline as hp
-from advisory import pipeline
+from advisory import demo_heat
 from advisory.notices import compose, words
+from advisory.runs import frost_night
 
 NIGHT = dt.date(2026, 4, 8)      # the demo week's radiation-frost night
 NOW = dt.datetime(2026, 4, 9, 5, 0, tzinfo=dt.UTC)
@@ -34,10 +34,10 @@ def test_demo_frost_and_heat_messages_fit_one_message_and_end_with_a_caution(spr
                                                                               demo_farm, no_charts):
     from advisory.ingest.observations import import_file
 
-    pipeline.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
+    frost_night.run_night(spring_db, NIGHT, now=NOW, sleep=lambda s: None)
     for code in ("QR-BENCH", "QR-CREEK"):
         import_file(spring_db, code, demo_farm / "stations" / f"{code}-summer.csv")
-    hp.demo_heat(types.SimpleNamespace(outbox=quiet_channels, farm_dir=demo_farm), spring_db, echo=lambda s: None)
+    demo_heat.demo_heat(types.SimpleNamespace(outbox=quiet_channels, farm_dir=demo_farm), spring_db, echo=lambda s: None)
     msgs = _messages(quiet_channels)
     kinds = {"frost": 0, "heat": 0}
     for name, text in msgs:

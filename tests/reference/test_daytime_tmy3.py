@@ -234,7 +234,7 @@ def _cloud_grid(d) -> np.ndarray:
 
 def _anchor(d, cloud=None) -> dict:
     # The morning reading: the first at or after sunrise + 2 h (the heat note's reading, see
-    # advisory.heat_pipeline.MORNING_LEAD_H); every hour up to it is already observed.
+    # advisory.runs.heat_refit.MORNING_LEAD_H); every hour up to it is already observed.
     return ds.morning_anchor(d["times"], d["temp"], d["sr"], cloud_cover_pct=cloud)
 
 

@@ -9,8 +9,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from advisory import heat_pipeline as hp
 from advisory.forecast import daytime as dt
+from advisory.runs import heat_refit
 from tests.reference.test_daytime_tmy3 import _features
 
 
@@ -19,13 +19,13 @@ def test_persistence_range_is_the_one_measured_on_real_days():
     f = _features()
     miss = (f["prev_max_temp_c"] - f["max_temp_c"]).dropna()
     assert len(miss) >= 360
-    q10, q90 = hp.PERSISTENCE_RESIDUAL_Q_C
+    q10, q90 = heat_refit.PERSISTENCE_RESIDUAL_Q_C
     assert q10 == pytest.approx(miss.quantile(0.1), abs=0.05)
     assert q90 == pytest.approx(miss.quantile(0.9), abs=0.05)
-    mae = hp.PERSISTENCE_MAE_C
+    mae = heat_refit.PERSISTENCE_MAE_C
     assert mae == pytest.approx(miss.abs().mean(), abs=0.05)
     # about 80 % of real days fall inside the stated range
-    lo, hi = hp.PERSISTENCE_RESIDUAL_Q_C
+    lo, hi = heat_refit.PERSISTENCE_RESIDUAL_Q_C
     inside = np.mean((miss >= lo) & (miss <= hi))
     assert 0.78 <= inside <= 0.86
 
@@ -34,4 +34,4 @@ def test_regression_range_before_its_own_record_is_wider_than_its_typical_miss()
     # pvlib 723170TYA.CSV: the regression's rolling-origin miss (MAE about 1.6 °C)
     ro = dt.rolling_origin_max_temp(_features(), min_train_days=30)
     mae = float(ro["residual_c"].dropna().abs().mean())
-    assert mae < hp.REGRESSION_HALF_RANGE_C < 2 * mae
+    assert mae < heat_refit.REGRESSION_HALF_RANGE_C < 2 * mae
