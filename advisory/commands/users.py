@@ -60,7 +60,7 @@ def do_list(args) -> int:
     db = Database(args.db)
     with db.transaction() as s:
         users = list(s.scalars(select(WebUser).order_by(WebUser.username)))
-        names = dict(s.execute(select(Farm.id, Farm.name)).tuples().all())
+        names = dict(s.execute(select(Farm.id, Farm.name)).all())
         given: dict[int, list[str]] = {}
         for uid, fid in s.execute(select(WebUserFarm.user_id, WebUserFarm.farm_id)):
             given.setdefault(uid, []).append(names.get(fid, str(fid)))

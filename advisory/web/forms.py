@@ -58,5 +58,6 @@ def check_channels(values: dict[str, str]) -> dict[str, str]:
     try:
         spec = parse_farm_text("\n".join(lines) + "\n", path="<console form>")
     except InputError as exc:
-        raise FormError(exc.field if exc.field in CHANNELS else "email", exc.message) from None
+        key = (exc.field or "").rsplit(".", 1)[-1]  # "recipients[0].email"
+        raise FormError(key if key in CHANNELS else "email", exc.message) from None
     return dict(spec.recipients[0].channels)

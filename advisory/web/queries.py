@@ -184,7 +184,7 @@ def _fill_page(s: Session, rows: list[OverviewRow], kind: str) -> None:
                                 .order_by(Equipment.id)):
         equip.setdefault(bid, []).append(kind_)
     fids = [r.forecast_id for r in rows if r.forecast_id is not None]
-    payloads = dict(s.execute(select(Forecast.id, Forecast.payload).where(Forecast.id.in_(fids))).tuples().all()) if fids else {}
+    payloads = dict(s.execute(select(Forecast.id, Forecast.payload).where(Forecast.id.in_(fids))).all()) if fids else {}
     refs: dict[int, dt.datetime] = {}
     for r in rows:
         ct = critical(r.crop, r.stage, r.t10_override_c, r.t90_override_c) if kind == "frost" else None
