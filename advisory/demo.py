@@ -242,4 +242,7 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
     echo(f"Every notice (text, Markdown, HTML, JSON, text messages) is in {paths.outbox}")
     echo("Watch the scheduler run a night in under a minute:  advisory --db "
          f"{paths.db_url} serve --rehearse 2026-04-10 --allow-past --seconds-per-hour 4")
+    echo("Open the web console: add a user, start it, then open http://127.0.0.1:8040/")
+    echo(f"  advisory --db {paths.db_url} users add wren --role agent --all-farms")
+    echo(f"  advisory --db {paths.db_url} web")
     return db
