@@ -16,7 +16,7 @@ from advisory.forecast import dayshape, daytime
 from advisory.ingest import outlook_import
 from advisory.ingest.farm_file import import_farm_file
 from advisory.ingest.observations import import_file, load_observations_many
-from advisory.notices import compose
+from advisory.notices import compose, notice_data
 from advisory.risk import heat as risk_heat
 from advisory.runs import blocks, heat_assess, heat_day, heat_morning, heat_refit, planned
 from advisory.store.schema import Block, Calibration, Delivery, Forecast, Notice, Outlook, RunRecord, Station
@@ -104,7 +104,7 @@ def test_demo_heat_week_end_to_end_and_idempotent(db, demo_farm, quiet_channels,
                 o = s.scalar(select(Outlook).where(Outlook.station_id == st.id, Outlook.day == a.night))
             assert a.p50_c == pytest.approx(o.high_c)
         # every block's note carries the heat cautions (illness signs, never alone, not a heat plan)
-        notice = compose.BlockNotice.from_dict(contents[(f.block_id, f.night)])
+        notice = notice_data.BlockNotice.from_dict(contents[(f.block_id, f.night)])
         cautions = " ".join(c.text for c in notice.cautions)
         assert "Heat stroke" in cautions and "Never work alone" in cautions and "heat plan" in cautions
         assert notice.chart is not None and notice.chart.kind == "heat"

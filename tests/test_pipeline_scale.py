@@ -54,7 +54,7 @@ def _utc_written(value) -> bytes:
 def test_the_runs_instants_are_utc_so_stored_json_writes_them_in_utc(spring_db):
     """orjson writes an instant with its own offset: every instant of a run's assessments and notices
     must be UTC already for the stored JSON to be in UTC (:mod:`advisory.store.jsoncodec`)."""
-    from advisory.notices import compose
+    from advisory.notices import compose, farm_summary
     from advisory.runs import heat_day
 
     frost = frost_night.run_night(spring_db, NIGHT, now=NOW, deliver=False).assessments
@@ -64,7 +64,7 @@ def test_the_runs_instants_are_utc_so_stored_json_writes_them_in_utc(spring_db):
                                   deliver=False).assessments
     values = [*frost, *update, *heat]
     values += [compose.compose_block(a) for a in frost + heat]
-    values.append(compose.compose_farm(frost))
+    values.append(farm_summary.compose_farm(frost))
     assert frost and update and heat
     for v in values:
         assert jsoncodec.encode(v) == _utc_written(v)

@@ -25,7 +25,7 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import MaxNLocator
 
 from advisory.notices import words as w
-from advisory.notices.compose import BlockNotice, notice_from_dict
+from advisory.notices.notice_data import BlockNotice, notice_from_dict
 
 # Colours of our own.
 INK = "#1f2933"

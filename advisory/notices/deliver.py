@@ -76,7 +76,7 @@ from sqlalchemy.orm import Session
 
 from advisory import __version__
 from advisory.notices import words as w
-from advisory.notices.compose import BlockNotice, FarmSummary
+from advisory.notices.notice_data import BlockNotice, FarmSummary
 from advisory.notices.render import EXTENSIONS, as_notice, render
 from advisory.store.schema import Delivery, Notice, Recipient
 

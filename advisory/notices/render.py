@@ -33,7 +33,7 @@ import jinja2
 
 from advisory.errors import InputError
 from advisory.notices import words as w
-from advisory.notices.compose import BlockNotice, FarmSummary, json_file, notice_from_dict, stored_json
+from advisory.notices.notice_data import BlockNotice, FarmSummary, json_file, notice_from_dict, stored_json
 from advisory.store import jsoncodec
 
 FORMATS = ("sms", "text", "markdown", "html", "json")
@@ -165,7 +165,7 @@ def render(notice: BlockNotice | FarmSummary | dict, fmt: str, *, chart_src: str
     if fmt == "sms":
         return n.sms
     if fmt == "json":
-        if isinstance(n, BlockNotice):  # the same bytes the nightly run writes (see compose.json_file)
+        if isinstance(n, BlockNotice):  # the same bytes the nightly run writes (see notice_data.json_file)
             return json_file(stored_json(n), jsoncodec.encode(n.data)).decode("utf-8")
         return jsoncodec.dumps(n) + "\n"
     kind = "farm" if isinstance(n, FarmSummary) else "block"

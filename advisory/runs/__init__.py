@@ -19,7 +19,7 @@ twice:
 
 * forecast: (block, kind, night, revision) is unique; the evening forecast is
   revision 0 and is never made twice;
-* notice: :func:`advisory.notices.compose.notice_key` (kind, farm, block, night,
+* notice: :func:`advisory.notices.notice_data.notice_key` (kind, farm, block, night,
   revision) is unique;
 * delivery: a notice already sent to a recipient on a channel is not sent again;
 * run: the ``runs`` table records each planned run's key once it is stored and

@@ -27,7 +27,7 @@ from sqlalchemy.orm import Session
 
 from advisory import assessment as asm
 from advisory import settings as settings_mod
-from advisory.notices import compose
+from advisory.notices import notice_data
 from advisory.runs import sizes
 from advisory.runs.blocks import _block_links, _block_query, _load_blocks
 from advisory.runs.frost_assess import assess_night
@@ -184,7 +184,7 @@ def _assess_share(url: str, block_ids: list[int], night: dt.date, now: dt.dateti
     finally:
         db.engine.dispose()
     # each notice goes back as the bytes already made of it (read again only where it is rendered)
-    composed = [c if c is None else (c[0], c[1], compose.EncodedBlockNotice.of(c[2], c[3], payload), c[3])
+    composed = [c if c is None else (c[0], c[1], notice_data.EncodedBlockNotice.of(c[2], c[3], payload), c[3])
                 for c, payload in zip(p.composed, p.payloads, strict=True)]
     mine = [(c[0], c[2], (c[3], payload)) for c, payload in zip(composed, p.payloads, strict=True) if c]
     fed = staging is not None and staging.write_share(k, mine)

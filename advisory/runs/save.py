@@ -16,7 +16,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from advisory import assessment as asm
-from advisory.notices import compose
+from advisory.notices import compose, farm_summary, notice_data
 from advisory.risk import continuity
 from advisory.runs import sizes
 from advisory.runs.blocks import _chunked
@@ -78,8 +78,8 @@ class StoredNotice:
     key: str
     farm_id: int
     block_id: int | None
-    #: The composed notice (:class:`~advisory.notices.compose.BlockNotice` or
-    #: :class:`~advisory.notices.compose.FarmSummary`) when the run that stored it
+    #: The composed notice (:class:`~advisory.notices.notice_data.BlockNotice` or
+    #: :class:`~advisory.notices.notice_data.FarmSummary`) when the run that stored it
     #: still has it, else ``Notice.content`` as stored (plain data).
     content: Any = field(repr=False, default_factory=dict)
 
@@ -160,7 +160,7 @@ def _prepare(session: Session, assessments: list[asm.Assessment], *, revision_mo
         if not a.is_update or why:
             n = compose.compose_block(a, previous_noticed, data=jsoncodec.Encoded(encoded))
             # stored without its data (the forecast's payload, stored once)
-            notice = (n.key, n.subject, n, compose.stored_json(n))
+            notice = (n.key, n.subject, n, notice_data.stored_json(n))
         payloads.append(encoded)
         composed.append(notice)
     _lap(timings, "compose")
@@ -228,7 +228,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
         elif revision_mode == "update":
             # the farm's whole picture: the blocks with news as now, the others as last sent
             farm_assessments = _farm_last_noticed(session, farm_id, a0.night, a0.kind, farm_assessments)
-        key = compose.notice_key(a0.kind + "-summary", a0.farm, None, a0.night, revision) + f":{_batch_tag(items)}"
+        key = notice_data.notice_key(a0.kind + "-summary", a0.farm, None, a0.night, revision) + f":{_batch_tag(items)}"
         if session.scalar(select(Notice.id).where(Notice.key == key)) is not None:
             continue
         recips = {r.id: r for _, b in items for r in b.recipients}
@@ -239,7 +239,7 @@ def _store(session: Session, assessments: list[asm.Assessment], *, revision_mode
     share = workers if sum(len(x[1]) for x in wanted) >= sizes.PARALLEL_FROM_BLOCKS else 1
     news = {a.block_id for a, notice in zip(todo, composed, strict=True) if notice is not None}
     composed_summaries = forking.fork_map(
-        lambda x: compose.compose_farm(x[1], revision=x[2], changed=news if x[2] else None), wanted, share)
+        lambda x: farm_summary.compose_farm(x[1], revision=x[2], changed=news if x[2] else None), wanted, share)
     _lap(timings, "compose summaries")
     if stage is not None:  # every notice is composed: its outbox files can be written ahead
         stage([(c[0], c[2], (c[3], p)) for c, p in zip(composed, payloads, strict=True) if c],

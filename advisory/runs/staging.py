@@ -12,7 +12,7 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
-from advisory.notices import compose
+from advisory.notices import notice_data
 from advisory.runs import sizes
 from advisory.store import db as db_mod
 
@@ -99,7 +99,7 @@ class _Staging:
 
     def _json(self, parts: tuple[bytes, bytes]) -> bytes:
         """A block notice's JSON file from its stored JSON and its payload's (empty without JSON)."""
-        return compose.json_file(*parts) if "json" in self.formats else b""
+        return notice_data.json_file(*parts) if "json" in self.formats else b""
 
     def _send_blocks(self, inbox, items: list) -> None:
         """Have the writer write ``items`` (stage items), a few hundred at a time, through ``inbox``
@@ -121,7 +121,7 @@ class _Staging:
                   summaries: list[tuple[str, Any]] = (), fed: Collection[str] = ()) -> None:
         """Give the writer composed notices (as soon as they are composed; each once): ``blocks`` are
         each block notice's key, the notice, and its stored JSON and its payload's (joined by
-        :func:`advisory.notices.compose.json_file`); ``summaries`` each farm summary's key and the
+        :func:`advisory.notices.notice_data.json_file`); ``summaries`` each farm summary's key and the
         summary; ``fed`` the keys of notices worker processes handed over themselves
         (:meth:`write_share`), which are left out, as are those handed over before."""
         from advisory.notices import deliver as deliver_mod

@@ -9,14 +9,9 @@ import pytest
 
 from advisory.assessment import CurvePoint, ProtectionStep, from_dict, to_dict
 from advisory.notices import words
-from advisory.notices.compose import (
-    BlockNotice,
-    FarmSummary,
-    compose_block,
-    compose_farm,
-    notice_from_dict,
-    notice_key,
-)
+from advisory.notices.compose import compose_block
+from advisory.notices.farm_summary import compose_farm
+from advisory.notices.notice_data import BlockNotice, FarmSummary, notice_from_dict, notice_key
 from tests.notices import samples
 
 UTC = dt.UTC
@@ -377,7 +372,8 @@ def test_ready_by_before_start_is_said():
 
 
 def test_fast_paths_agree_with_the_reference_functions():
-    from advisory.notices.compose import _Fmt, _plain
+    from advisory.notices.notice_data import _plain
+    from advisory.notices.notice_parts import _Fmt
 
     for a in (samples.frost_assessment(), samples.heat_assessment(), samples.quiet_assessment()):
         assert _plain(a) == to_dict(a)
@@ -565,7 +561,7 @@ def test_level_words_and_colours_are_our_own():
 
 def test_every_text_message_ends_with_a_caution_within_one_message():
     """One GSM 03.38 message: 160 characters of the basic set, the caution included, even at the longest."""
-    from advisory.notices import compose as cm
+    from advisory.notices import notice_parts
     long_name = "Upper Terrace Late Chardonnay North Slope Extension"
     started = samples.frost_assessment(level="grave", level_rank=4, is_update=True, revision=12, block=long_name,
                                        units="imperial", p10_c=-12.3, p50_c=-10.6, p90_c=-8.8)
@@ -578,7 +574,7 @@ def test_every_text_message_ends_with_a_caution_within_one_message():
                                                                   units="imperial")]
     for a in cases:
         n = compose_block(a)
-        tail = cm.SMS_CAUTION_HEAT if a.kind == "heat" else cm.SMS_CAUTION_FROST
+        tail = notice_parts.SMS_CAUTION_HEAT if a.kind == "heat" else notice_parts.SMS_CAUTION_FROST
         assert n.sms.endswith(" " + tail), n.sms
         assert len(n.sms) <= 160 and all(ch in words._GSM7_BASIC for ch in n.sms), n.sms
         assert "..." not in n.sms, n.sms               # nothing cut: the parts that must stay fit
@@ -586,5 +582,5 @@ def test_every_text_message_ends_with_a_caution_within_one_message():
             for i in range(8)]
     frost = [_unprotected(block_id=i, block=f"{long_name} {i}") for i in range(8)]
     for s in (compose_farm(heat), compose_farm(frost), compose_farm(frost, revision=14, changed={1, 2})):
-        tail = cm.SMS_CAUTION_HEAT if s.kind == "heat" else cm.SMS_CAUTION_FROST
+        tail = notice_parts.SMS_CAUTION_HEAT if s.kind == "heat" else notice_parts.SMS_CAUTION_FROST
         assert s.sms.endswith(" " + tail) and len(s.sms) <= 160, s.sms

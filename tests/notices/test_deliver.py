@@ -300,7 +300,7 @@ def test_bad_address_is_a_permanent_failure(farm_db, settings):
 
 
 def test_farm_summary_delivers_to_outbox(farm_db, settings):
-    from advisory.notices.compose import compose_farm
+    from advisory.notices.farm_summary import compose_farm
     from advisory.store.schema import Farm, Notice
 
     with farm_db.transaction() as s:

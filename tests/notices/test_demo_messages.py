@@ -8,7 +8,7 @@ import types
 import pytest
 
 from advisory import demo_heat
-from advisory.notices import compose, words
+from advisory.notices import notice_parts, words
 from advisory.runs import frost_night
 
 NIGHT = dt.date(2026, 4, 8)      # the demo week's radiation-frost night
@@ -43,12 +43,12 @@ def test_demo_frost_and_heat_messages_fit_one_message_and_end_with_a_caution(spr
     for name, text in msgs:
         kind = "heat" if "_heat_" in name else "frost"
         kinds[kind] += 1
-        tail = compose.SMS_CAUTION_HEAT if kind == "heat" else compose.SMS_CAUTION_FROST
+        tail = notice_parts.SMS_CAUTION_HEAT if kind == "heat" else notice_parts.SMS_CAUTION_FROST
         assert text.endswith(" " + tail), (name, text)
-        assert len(text) <= compose.SMS_MAX, (name, len(text), text)
+        assert len(text) <= notice_parts.SMS_MAX, (name, len(text), text)
         assert all(ch in words._GSM7_BASIC for ch in text), text
         assert "..." not in text, text             # nothing had to be cut
         assert not any(w.isupper() and len(w) > 3 for w in text.split() if w.isalpha()), text  # sentence case
     assert kinds["frost"] >= 12 and kinds["heat"] >= 12
     longest = max(msgs, key=lambda m: len(m[1]))
-    assert len(longest[1]) <= compose.SMS_MAX
+    assert len(longest[1]) <= notice_parts.SMS_MAX

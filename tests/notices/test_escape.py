@@ -5,7 +5,8 @@ from __future__ import annotations
 import re
 
 from advisory.notices.charts import chart_png
-from advisory.notices.compose import compose_block, compose_farm
+from advisory.notices.compose import compose_block
+from advisory.notices.farm_summary import compose_farm
 from advisory.notices.render import render
 from tests.notices import samples
 

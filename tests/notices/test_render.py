@@ -8,7 +8,8 @@ from html.parser import HTMLParser
 import pytest
 
 from advisory.errors import InputError
-from advisory.notices.compose import compose_block, compose_farm
+from advisory.notices.compose import compose_block
+from advisory.notices.farm_summary import compose_farm
 from advisory.notices.render import FORMATS, WIDTH, md_escape, render
 from tests.notices import samples
 

@@ -9,7 +9,8 @@ import json
 import pickle
 
 from advisory.notices import render
-from advisory.notices.compose import BlockNotice, EncodedBlockNotice, compose_block, stored_json, whole_json
+from advisory.notices.compose import compose_block
+from advisory.notices.notice_data import BlockNotice, EncodedBlockNotice, stored_json, whole_json
 from advisory.store import jsoncodec
 from tests.notices import samples
 
