@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from advisory.crops import thresholds as th
+from advisory.risk import damage, frost_data
 from advisory.risk import frost as fr
 from advisory.risk import runsheet as rs
 
@@ -32,15 +33,15 @@ def build(n: int, seed: int = 0):
     air = cool + np.where(h > 10, (h - 10) * 2.5, 0.0)
     dew = (t_min - rng.uniform(0, 6, n)[:, None]) * np.ones_like(air)
     sunrise = np.full(n, np.datetime64("2024-04-10T12:10", "ns"))
-    curves = fr.NightCurves(times, air, dew, rng.uniform(0, 3, (n, 1)), sunrise)
+    curves = frost_data.NightCurves(times, air, dew, rng.uniform(0, 3, (n, 1)), sunrise)
     p50 = t_min[:, 0]
-    base = fr.MinTempForecast(p50 - 1.5, p50, p50 + 1.0)
-    fc = fr.MinTempForecast(base.p10_c, base.p50_c, base.p90_c, cdf=base.cdf_at)
+    base = damage.MinTempForecast(p50 - 1.5, p50, p50 + 1.0)
+    fc = damage.MinTempForecast(base.p10_c, base.p50_c, base.p90_c, cdf=base.cdf_at)
     tab = th.table()
     rows = tab.sample(n, replace=True, random_state=seed).reset_index(drop=True)
     kinds = [[{"kind": "overtree_sprinkler", "rate_mm_h": 4.0}], [{"kind": "wind_machine"}, {"kind": "heater"}],
              [{"kind": "heater", "fuel_l_per_h_per_ha": 80}], []]
-    blocks = [fr.BlockSetup(f"B{i}", r.crop, r.stage, r.t10_c, r.t90_c, 3.0, equipment=kinds[i % 4],
+    blocks = [frost_data.BlockSetup(f"B{i}", r.crop, r.stage, r.t10_c, r.t90_c, 3.0, equipment=kinds[i % 4],
                             upper_inversion_c=2.0 if i % 3 else None, cloud_cover_pct=10.0)
               for i, r in enumerate(rows.itertuples())]
     return blocks, curves, fc

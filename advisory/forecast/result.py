@@ -121,7 +121,7 @@ def two_piece_table(p10_c, p50_c, p90_c) -> np.ndarray:
     """Quantile table (N, K) of the two-piece normal through a forecast's 10th, 50th and 90th percentiles.
 
     The same reading of three stored quantiles as
-    :class:`advisory.risk.frost.MinTempForecast` uses without a full table: a
+    :class:`advisory.risk.damage.MinTempForecast` uses without a full table: a
     normal of spread ``(p50 - p10) / z90`` below the median and
     ``(p90 - p50) / z90`` above it, ``z90 = 1.2816``.
     """

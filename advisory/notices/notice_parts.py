@@ -248,7 +248,7 @@ def _rules(a: Assessment, s, f: _Fmt) -> tuple[str, str]:
 
 #: Quantities shown for a method that is not advised (they explain why).
 _ADEQUACY_KEYS = ("rate_needed_mm_h", "required_rate_mm_h", "rate_available_mm_h", "rate_mm_h", "inversion_c")
-#: How the plan's note on a wind machine's inversion begins (``risk.frost``).
+#: How the plan's note on a wind machine's inversion begins (``risk.protection.wind_machine``).
 _INVERSION_NOTE = "Inversion "
 
 

@@ -50,7 +50,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from advisory.risk.frost import kill_fraction
+from advisory.risk.damage import kill_fraction
 
 
 def cost_loss_protect(p_loss, cost, loss):

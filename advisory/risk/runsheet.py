@@ -1,6 +1,6 @@
 """The crew run sheet for one farm and night.
 
-Pure: takes the :class:`advisory.risk.frost.BlockRisk` objects (or the stored
+Pure: takes the :class:`advisory.risk.frost_data.BlockRisk` objects (or the stored
 :class:`advisory.assessment.Assessment` objects) of a farm's blocks for a night
 and returns strings.  Every block that needs protection
 appears once per method in its plan, in the order the crew must start them
@@ -28,7 +28,8 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from advisory.errors import InputError
 from advisory.risk import cautions as caut
-from advisory.risk.frost import BlockRisk, MethodPlan, risk_from_assessment
+from advisory.risk.frost_assessment import risk_from_assessment
+from advisory.risk.frost_data import BlockRisk, MethodPlan
 
 METHOD_NAMES = {
     "overtree_sprinkler": "Over-tree sprinklers",
@@ -131,7 +132,7 @@ def build_run_sheet(farm: str, night: date, timezone: str, risks: Sequence[Block
         The farm's IANA zone.
     risks : sequence of BlockRisk or advisory.assessment.Assessment
         All of the farm's blocks for the night (stored frost Assessments are
-        converted with :func:`advisory.risk.frost.risk_from_assessment`, so a
+        converted with :func:`advisory.risk.frost_assessment.risk_from_assessment`, so a
         sheet can be reprinted from the database).
     generated_utc : datetime, optional
         When the sheet was made (default: now).

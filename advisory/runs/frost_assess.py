@@ -20,7 +20,7 @@ from advisory.forecast.result import NightForecast, table_prob_below
 from advisory.ingest.night_outlook import load_night_outlooks
 from advisory.ingest.observations import load_observations_many
 from advisory.physics import moisture, sun
-from advisory.risk import frost
+from advisory.risk import damage, frost, frost_assessment, frost_data
 from advisory.runs.blocks import _equipment_of, _latest_calibrations, _recent_verification
 from advisory.runs.record import StageTimes, _lap
 from advisory.store.schema import (
@@ -52,7 +52,7 @@ def _silence_reason(station: Station, latest: pd.Timestamp | None, reason: str |
 
 
 def _curves_on_grid(fc: NightForecast, states: pd.DataFrame, idx: np.ndarray, elevation_m: np.ndarray
-                    ) -> frost.NightCurves:
+                    ) -> frost_data.NightCurves:
     """The forecast's median curves for blocks ``idx`` on one shared 15-minute UTC grid."""
     ref = fc.reference_time[idx].as_unit("ns")
     end = (fc.sunrise[idx] + pd.Timedelta(hours=2)).as_unit("ns")
@@ -71,7 +71,7 @@ def _curves_on_grid(fc: NightForecast, states: pd.DataFrame, idx: np.ndarray, el
     temps = np.where(inside, temps, np.nan).T                            # (n, H)
     dew = states["dew_point_c"].to_numpy(float)[idx]
     wind = np.nan_to_num(states["wind_speed_ms"].to_numpy(float)[idx], nan=1.0)
-    return frost.NightCurves(
+    return frost_data.NightCurves(
         times_utc=grid, air_temp_c=temps,
         dew_point_c=np.minimum(dew[:, None], np.where(np.isfinite(temps), temps, dew[:, None])),
         wind_speed_ms=wind[:, None], sunrise_utc=fc.sunrise[idx],
@@ -167,11 +167,11 @@ def _critical(b: Block, cache: dict | None):
     return cache[key]
 
 
-def _frost_settings(b: Block, cache: dict) -> frost.FrostSettings:
+def _frost_settings(b: Block, cache: dict) -> frost_data.FrostSettings:
     """The block's frost settings (farm's, overridden by the block's), memoised per distinct pair."""
     key = (b.farm_id, repr(b.farm.settings), repr(b.settings))
     if key not in cache:
-        cache[key] = frost.FrostSettings.from_mappings(b.farm.settings, b.settings,
+        cache[key] = frost_data.FrostSettings.from_mappings(b.farm.settings, b.settings,
                                                        where=f"block '{b.name}' settings")
     return cache[key]
 
@@ -380,14 +380,14 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
         # grid of each pass is not padded with the hours of the other side of the world.
         for group in _night_groups(fc, idx):
             curves = _curves_on_grid(fc, states, group, elev)
-            forecast = frost.MinTempForecast(fc.quantile(0.1)[group], fc.quantile(0.5)[group],
+            forecast = damage.MinTempForecast(fc.quantile(0.1)[group], fc.quantile(0.5)[group],
                                              fc.quantile(0.9)[group], cdf=_cdf(fc, group),
                                              quantile=_table_quantiles(fc, group))
             setups = []
             for i in group:
                 b = blocks[i]
                 a = out[i]
-                setups.append(frost.BlockSetup(
+                setups.append(frost_data.BlockSetup(
                     name=b.name, crop=b.crop, stage=b.stage, t10_c=a.t10_c, t90_c=a.t90_c, area_ha=b.area_ha,
                     equipment=gear.get(b.id, []),
                     upper_inversion_c=None if np.isnan(inversion[i]) else float(inversion[i]),
@@ -396,7 +396,7 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
             risks = frost.plan_night(setups, curves, forecast)
             for k, i in enumerate(group):
                 a = out[i]
-                for key, value in frost.assessment_fields(risks[k]).items():
+                for key, value in frost_assessment.assessment_fields(risks[k]).items():
                     setattr(a, key, {**(a.details or {}), **value} if key == "details" else value)
                 a.model = str(fc.model[i])
                 a.training_nights = int(fc.training_nights[i])

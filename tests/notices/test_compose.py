@@ -390,22 +390,23 @@ def test_wind_machine_inversion_is_given_once():
     import pandas as pd
 
     from advisory.crops import thresholds as th
+    from advisory.risk import damage, frost_assessment, frost_data
     from advisory.risk import frost as fr
 
     hours = pd.date_range("2026-04-07T03:00Z", periods=14, freq="h")
     h = np.arange(14, dtype=float)
     air = 6.0 - 8.0 * np.sqrt(np.minimum(h, 10) / 10) + np.where(h > 10, (h - 10) * 2.5, 0.0)
     sunrise = (hours[0] + pd.Timedelta(hours=10.2)).tz_localize(None)
-    curves = fr.NightCurves(times_utc=hours, air_temp_c=air[None, :], dew_point_c=np.full((1, 14), -5.0),
+    curves = frost_data.NightCurves(times_utc=hours, air_temp_c=air[None, :], dew_point_c=np.full((1, 14), -5.0),
                             wind_speed_ms=np.full((1, 14), 1.0), sunrise_utc=np.array([np.datetime64(sunrise, "ns")]))
     ct = th.critical_temps("apple", "full bloom")
     for inversion, advised in ((2.5, True), (1.0, False)):
-        b = fr.BlockSetup("B1", "apple", "full bloom", ct.t10_c, ct.t90_c, 4.0,
+        b = frost_data.BlockSetup("B1", "apple", "full bloom", ct.t10_c, ct.t90_c, 4.0,
                           equipment=[{"kind": "wind_machine"}], upper_inversion_c=inversion)
-        risk = fr.plan_night([b], curves, fr.MinTempForecast(np.array([-3.0]), np.array([-2.0]),
+        risk = fr.plan_night([b], curves, damage.MinTempForecast(np.array([-3.0]), np.array([-2.0]),
                                                              np.array([-1.0])))[0]
         a = samples.frost_assessment(level="serious", level_rank=3)
-        a.plan = fr.protection_steps(risk)
+        a.plan = frost_assessment.protection_steps(risk)
         assert a.plan[0].advised is advised
         group = next(g for g in compose_block(a).sections[1].groups
                      if g.title == words.method_name("wind_machine").capitalize())

@@ -9,7 +9,7 @@ in extension guides) is from memory, unverified.
 
 import pytest
 
-from advisory.risk.frost import required_sprinkler_rate_mm_h
+from advisory.risk.protection.sprinklers import required_sprinkler_rate_mm_h
 
 IN_H = 25.4  # mm/h per in/h
 MPH = 0.44704  # m/s per mph

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from advisory.risk import economics
-from advisory.risk.frost import MinTempForecast
+from advisory.risk.damage import MinTempForecast
 
 
 def test_cost_loss_threshold_on_constructed_cases():

@@ -12,7 +12,9 @@ from advisory.crops import thresholds as th
 from advisory.errors import InputError
 from advisory.fieldcalc import start_air_temp_c
 from advisory.physics import moisture
+from advisory.risk import damage, frost_assessment, frost_data, levels, night_curve
 from advisory.risk import frost as fr
+from advisory.risk.protection import sprinklers, wind_machine
 
 TABLE = th.table()
 
@@ -24,25 +26,25 @@ TABLE = th.table()
 @pytest.mark.parametrize("crop,stage,t10,t90", list(TABLE[["crop", "stage", "t10_c", "t90_c"]].itertuples(
     index=False, name=None)))
 def test_curve_passes_through_t10_and_t90_for_every_row(crop, stage, t10, t90):
-    assert fr.kill_fraction(t10, t10, t90) == pytest.approx(0.10, abs=1e-12)
-    assert fr.kill_fraction(t90, t10, t90) == pytest.approx(0.90, abs=1e-12)
-    assert fr.kill_fraction(0.5 * (t10 + t90), t10, t90) == pytest.approx(0.5)
-    assert fr.temp_for_kill_c(0.1, t10, t90) == pytest.approx(t10)
+    assert damage.kill_fraction(t10, t10, t90) == pytest.approx(0.10, abs=1e-12)
+    assert damage.kill_fraction(t90, t10, t90) == pytest.approx(0.90, abs=1e-12)
+    assert damage.kill_fraction(0.5 * (t10 + t90), t10, t90) == pytest.approx(0.5)
+    assert damage.temp_for_kill_c(0.1, t10, t90) == pytest.approx(t10)
 
 
 def test_curve_is_monotone_and_bounded():
     t = np.linspace(-30, 10, 401)
-    k = fr.kill_fraction(t, -2.2, -3.9)
+    k = damage.kill_fraction(t, -2.2, -3.9)
     assert np.all(np.diff(k) <= 0) and k.min() >= 0 and k.max() <= 1
-    assert fr.kill_fraction(-200.0, -2.2, -3.9) == pytest.approx(1.0)
-    assert fr.kill_fraction(50.0, -2.2, -3.9) == pytest.approx(0.0, abs=1e-12)
+    assert damage.kill_fraction(-200.0, -2.2, -3.9) == pytest.approx(1.0)
+    assert damage.kill_fraction(50.0, -2.2, -3.9) == pytest.approx(0.0, abs=1e-12)
 
 
 def test_curve_vectorises_over_blocks():
     t10 = TABLE["t10_c"].to_numpy()
     t90 = TABLE["t90_c"].to_numpy()
-    np.testing.assert_allclose(fr.kill_fraction(t10, t10, t90), 0.1)
-    np.testing.assert_allclose(fr.kill_fraction(t90, t10, t90), 0.9)
+    np.testing.assert_allclose(damage.kill_fraction(t10, t10, t90), 0.1)
+    np.testing.assert_allclose(damage.kill_fraction(t90, t10, t90), 0.9)
 
 
 # ------------------------------------------------------------------------------------------------
@@ -50,7 +52,7 @@ def test_curve_vectorises_over_blocks():
 # ------------------------------------------------------------------------------------------------
 
 def test_two_piece_normal_honours_quantiles():
-    f = fr.MinTempForecast(p10_c=[-4.0, -1.0], p50_c=[-2.0, -0.5], p90_c=[-1.0, 1.5])
+    f = damage.MinTempForecast(p10_c=[-4.0, -1.0], p50_c=[-2.0, -0.5], p90_c=[-1.0, 1.5])
     np.testing.assert_allclose(f.cdf_at(np.array([-4.0, -1.0])), 0.1, atol=1e-9)
     np.testing.assert_allclose(f.cdf_at(np.array([-2.0, -0.5])), 0.5, atol=1e-9)
     np.testing.assert_allclose(f.cdf_at(np.array([-1.0, 1.5])), 0.9, atol=1e-9)
@@ -59,15 +61,15 @@ def test_two_piece_normal_honours_quantiles():
 
 
 def test_zero_spread_is_a_point_mass():
-    f = fr.MinTempForecast(p10_c=[-2.0], p50_c=[-2.0], p90_c=[-2.0])
+    f = damage.MinTempForecast(p10_c=[-2.0], p50_c=[-2.0], p90_c=[-2.0])
     assert f.cdf_at(np.array([-2.0001]))[0] == 0.0
     assert f.cdf_at(np.array([-2.0]))[0] == 1.0
     np.testing.assert_allclose(f.quantiles([0.01, 0.99]), [[-2.0, -2.0]])
 
 
 def test_callable_cdf_gives_same_answers_as_builtin():
-    base = fr.MinTempForecast(p10_c=[-4.0, -1.0], p50_c=[-2.0, -0.5], p90_c=[-1.0, 1.5])
-    custom = fr.MinTempForecast(base.p10_c, base.p50_c, base.p90_c, cdf=base.cdf_at)
+    base = damage.MinTempForecast(p10_c=[-4.0, -1.0], p50_c=[-2.0, -0.5], p90_c=[-1.0, 1.5])
+    custom = damage.MinTempForecast(base.p10_c, base.p50_c, base.p90_c, cdf=base.cdf_at)
     q = np.array([0.05, 0.3, 0.5, 0.8, 0.97])
     np.testing.assert_allclose(custom.quantiles(q), base.quantiles(q), atol=0.03)
     x = np.array([[-3.0, -2.0], [0.0, 1.0]])
@@ -76,7 +78,7 @@ def test_callable_cdf_gives_same_answers_as_builtin():
 
 def test_bad_quantiles_rejected():
     with pytest.raises(ValueError):
-        fr.MinTempForecast(p10_c=[0.0], p50_c=[-1.0], p90_c=[1.0])
+        damage.MinTempForecast(p10_c=[0.0], p50_c=[-1.0], p90_c=[1.0])
 
 
 # ------------------------------------------------------------------------------------------------
@@ -98,17 +100,17 @@ def night(n_blocks=1, hours=14, t_eve=6.0, t_min=-2.0, min_hour=10, dew=-5.0, wi
     else:
         sr = (T0 + pd.Timedelta(hours=sunrise_hour)).tz_localize(None)
         sunrise = np.array([np.datetime64(sr, "ns")] * n_blocks)
-    return fr.NightCurves(times, air, np.full_like(air, dew), np.full_like(air, wind), sunrise,
+    return frost_data.NightCurves(times, air, np.full_like(air, dew), np.full_like(air, wind), sunrise,
                           polar_day=polar_day)
 
 
 def block(name="B1", crop="apple", stage="full bloom", equipment=(), **kw):
     ct = th.critical_temps(crop, stage)
-    return fr.BlockSetup(name, crop, stage, ct.t10_c, ct.t90_c, kw.pop("area_ha", 4.0), equipment=equipment, **kw)
+    return frost_data.BlockSetup(name, crop, stage, ct.t10_c, ct.t90_c, kw.pop("area_ha", 4.0), equipment=equipment, **kw)
 
 
 def fc(p10, p50, p90):
-    return fr.MinTempForecast(np.atleast_1d(p10), np.atleast_1d(p50), np.atleast_1d(p90))
+    return damage.MinTempForecast(np.atleast_1d(p10), np.atleast_1d(p50), np.atleast_1d(p90))
 
 
 # ------------------------------------------------------------------------------------------------
@@ -119,8 +121,8 @@ def test_sustained_minimum_discounts_a_short_dip():
     times = pd.date_range(T0, periods=5, freq="h")
     spike = np.array([[2.0, 1.0, -3.0, 1.0, 2.0]])  # 1-hour V: colder than -2 for under 30 min
     flat = np.array([[2.0, -3.0, -3.0, -3.0, 2.0]])
-    s_spike = fr.sustained_minimum_c(times, spike)[0]
-    s_flat = fr.sustained_minimum_c(times, flat)[0]
+    s_spike = night_curve.sustained_minimum_c(times, spike)[0]
+    s_flat = night_curve.sustained_minimum_c(times, flat)[0]
     assert s_flat == pytest.approx(-3.0)
     # Linear V between hourly points: the 30-minute window straddling the bottom peaks 1 K above it.
     assert s_spike == pytest.approx(-2.0, abs=1e-9)
@@ -131,10 +133,10 @@ def test_point_forecast_flat_curve_matches_table():
     c = night(t_min=-2.0)
     b = block()
     ct = th.critical_temps("apple", "full bloom")
-    d = fr.damage(c, fc(ct.t10_c, ct.t10_c, ct.t10_c), ct.t10_c, ct.t90_c, duration_shift_c_per_doubling=0.0)
+    d = damage.damage(c, fc(ct.t10_c, ct.t10_c, ct.t10_c), ct.t10_c, ct.t90_c, duration_shift_c_per_doubling=0.0)
     off = d.sustained_offset_c[0]
     # Effective temperature is T10 + offset; kill matches the curve there.
-    assert d.expected_kill[0] == pytest.approx(fr.kill_fraction(ct.t10_c + off, ct.t10_c, ct.t90_c), abs=1e-6)
+    assert d.expected_kill[0] == pytest.approx(damage.kill_fraction(ct.t10_c + off, ct.t10_c, ct.t90_c), abs=1e-6)
     assert b.t10_c == ct.t10_c
 
 
@@ -142,7 +144,7 @@ def test_probabilities_consistent_with_cdf_and_expected_kill():
     c = night(n_blocks=3)
     t10, t90 = -2.2, -3.9
     f = fc([-4.0, -2.5, 1.0], [-2.5, -1.0, 3.0], [-1.0, 0.5, 5.0])
-    d = fr.damage(c, f, t10, t90)
+    d = damage.damage(c, f, t10, t90)
     off = d.sustained_offset_c - d.duration_shift_c
     np.testing.assert_allclose(d.p_kill_10, f.cdf_at(t10 - off))
     np.testing.assert_allclose(d.p_kill_90, f.cdf_at(t90 - off))
@@ -154,12 +156,12 @@ def test_probabilities_consistent_with_cdf_and_expected_kill():
 def test_expected_kill_by_quadrature_matches_monte_carlo():
     c = night()
     f = fc(-4.0, -2.5, -1.5)
-    d = fr.damage(c, f, -2.2, -3.9)
+    d = damage.damage(c, f, -2.2, -3.9)
     rng = np.random.default_rng(1)
     u = rng.random(200_000)
     mins = f.quantiles(u)[0]
     off = d.sustained_offset_c[0] - d.duration_shift_c[0]
-    mc = fr.kill_fraction(mins + off, -2.2, -3.9).mean()
+    mc = damage.kill_fraction(mins + off, -2.2, -3.9).mean()
     assert d.expected_kill[0] == pytest.approx(mc, abs=0.003)
 
 
@@ -171,22 +173,22 @@ def test_longer_cold_spell_means_more_damage():
     sr = np.array([np.datetime64("2024-04-10T12:00", "ns")])
     out = []
     for air in (short, long_):
-        c = fr.NightCurves(times, air, air - 3, np.ones_like(air), sr)
-        out.append(fr.damage(c, fc(-2.5, -2.5, -2.5), -2.2, -3.9))
+        c = frost_data.NightCurves(times, air, air - 3, np.ones_like(air), sr)
+        out.append(damage.damage(c, fc(-2.5, -2.5, -2.5), -2.2, -3.9))
     assert out[1].near_min_hours[0] > out[0].near_min_hours[0]
     assert out[1].duration_shift_c[0] > out[0].duration_shift_c[0]
     assert out[1].expected_kill[0] > out[0].expected_kill[0]
     # Switching the duration adjustment off leaves only the sustained-minimum effect.
-    c = fr.NightCurves(times, long_, long_ - 3, np.ones_like(long_), sr)
-    d0 = fr.damage(c, fc(-2.5, -2.5, -2.5), -2.2, -3.9, duration_shift_c_per_doubling=0.0)
+    c = frost_data.NightCurves(times, long_, long_ - 3, np.ones_like(long_), sr)
+    d0 = damage.damage(c, fc(-2.5, -2.5, -2.5), -2.2, -3.9, duration_shift_c_per_doubling=0.0)
     assert d0.duration_shift_c[0] == 0.0 and d0.expected_kill[0] < out[1].expected_kill[0]
 
 
 def test_duration_shift_is_capped():
     times = pd.date_range(T0, periods=24, freq="h")
     air = np.full((1, 24), -2.5)
-    c = fr.NightCurves(times, air, air - 3, np.ones_like(air), np.array([np.datetime64("NaT", "ns")]))
-    d = fr.damage(c, fc(-2.5, -2.5, -2.5), -2.2, -3.9, duration_shift_c_per_doubling=0.2,
+    c = frost_data.NightCurves(times, air, air - 3, np.ones_like(air), np.array([np.datetime64("NaT", "ns")]))
+    d = damage.damage(c, fc(-2.5, -2.5, -2.5), -2.2, -3.9, duration_shift_c_per_doubling=0.2,
                   duration_max_doublings=3.0)
     assert d.duration_shift_c[0] == pytest.approx(0.6)
 
@@ -194,9 +196,9 @@ def test_duration_shift_is_capped():
 def test_levels_follow_settable_thresholds():
     c = night(n_blocks=1)
     f = fc(-3.0, -2.0, -1.0)
-    d = fr.damage(c, f, -2.2, -3.9)
-    assert fr.LEVELS[d.level_index[0]] in ("marked", "serious")
-    strict = fr.damage(c, f, -2.2, -3.9, level_thresholds={"level_slight_p": 0.9, "level_marked_p": 0.95,
+    d = damage.damage(c, f, -2.2, -3.9)
+    assert levels.LEVELS[d.level_index[0]] in ("marked", "serious")
+    strict = damage.damage(c, f, -2.2, -3.9, level_thresholds={"level_slight_p": 0.9, "level_marked_p": 0.95,
                                                             "level_serious_p": 0.99, "level_serious_kill": 0.99,
                                                             "level_grave_kill": 1.0, "level_grave_p90": 1.0})
     assert strict.level_index[0] == 0
@@ -204,7 +206,7 @@ def test_levels_follow_settable_thresholds():
 
 def test_level_names_are_our_own():
     banned = {"watch", "warning", "advisory", "alert", "statement", "emergency"}
-    assert not any(any(b in name for b in banned) for name in fr.LEVELS)
+    assert not any(any(b in name for b in banned) for name in levels.LEVELS)
 
 
 # ------------------------------------------------------------------------------------------------
@@ -212,16 +214,16 @@ def test_level_names_are_our_own():
 # ------------------------------------------------------------------------------------------------
 
 def test_settings_merge_and_validate():
-    s = fr.FrostSettings.from_mappings({"start_margin_c": 1.5, "heat_season": "x"},
+    s = frost_data.FrostSettings.from_mappings({"start_margin_c": 1.5, "heat_season": "x"},
                                        {"frost": {"start_margin_c": 2.0}, "protect_from_level": "serious"})
     assert s.start_margin_c == 2.0 and s.protect_from_level == "serious" and s.sprinkler_margin_c == 2.0
     with pytest.raises(InputError) as e:
-        fr.FrostSettings.from_mappings({"start_margin_c": "lots"})
+        frost_data.FrostSettings.from_mappings({"start_margin_c": "lots"})
     assert e.value.field == "start_margin_c"
     with pytest.raises(InputError):
-        fr.FrostSettings.from_mappings({"level_slight_p": 0.5, "level_marked_p": 0.2})
+        frost_data.FrostSettings.from_mappings({"level_slight_p": 0.5, "level_marked_p": 0.2})
     with pytest.raises(InputError):
-        fr.FrostSettings.from_mappings({"protect_from_level": "red"})
+        frost_data.FrostSettings.from_mappings({"protect_from_level": "red"})
 
 
 # ------------------------------------------------------------------------------------------------
@@ -268,7 +270,7 @@ def test_sprinkler_water_volume_and_rate_check():
     assert p.water_m3 == pytest.approx(4.0 * 2.5 * 10.0 * p.run_hours)
     assert p.water_l_per_ha == pytest.approx(4.0 * 1e4 * p.run_hours)
     assert p.water_m3_cold >= p.water_m3
-    assert p.required_rate_mm_h == pytest.approx(fr.required_sprinkler_rate_mm_h(-3.0, 1.0))
+    assert p.required_rate_mm_h == pytest.approx(sprinklers.required_sprinkler_rate_mm_h(-3.0, 1.0))
     # Too little water for tonight: not usable, the sheet gets a "none" line and a caution.
     low = [{"kind": "overtree_sprinkler", "rate_mm_h": 1.0}]
     r2 = fr.plan_night([block(equipment=low)], c, fc(-3.0, -2.0, -1.0))[0]
@@ -285,7 +287,7 @@ def test_sprinkler_supply_too_small_is_not_usable():
 
 
 def test_required_rate_table_lookup():
-    r = fr.required_sprinkler_rate_mm_h
+    r = sprinklers.required_sprinkler_rate_mm_h
     # Table row 24 F / class 2-4 mph: 0.16 in/h at the class's upper bound (a node of the table);
     # at 3 mph it lies between the 1 mph (0.10) and 4 mph (0.16) columns.
     assert r((24 - 32) / 1.8, 4 * 0.44704) == pytest.approx(0.16 * 25.4)
@@ -326,7 +328,7 @@ def test_wind_machine_needs_inversion_and_light_wind():
 
 
 def test_inversion_estimate_behaves():
-    e = fr.estimate_inversion_c
+    e = wind_machine.estimate_inversion_c
     assert e(0, 0.5) == pytest.approx(3.0)
     assert e(100, 0.5) == pytest.approx(0.0)
     assert e(0, 4.0) == pytest.approx(0.0)
@@ -417,7 +419,7 @@ def test_vectorised_over_many_blocks_matches_single_runs():
     bl = [block(f"B{i}", stage=stages[i % len(stages)], equipment=[{"kind": "heater"}]) for i in range(n)]
     many = fr.plan_night(bl, c, f)
     for i in (0, 7, 29):
-        ci = fr.NightCurves(c.times_utc, c.air_temp_c[i:i + 1], c.dew_point_c[i:i + 1],
+        ci = frost_data.NightCurves(c.times_utc, c.air_temp_c[i:i + 1], c.dew_point_c[i:i + 1],
                             c.wind_speed_ms[i:i + 1], c.sunrise_utc[i:i + 1])
         one = fr.plan_night([bl[i]], ci, fc(f.p10_c[i], f.p50_c[i], f.p90_c[i]))[0]
         assert one.expected_kill == pytest.approx(many[i].expected_kill)
@@ -427,11 +429,11 @@ def test_vectorised_over_many_blocks_matches_single_runs():
 def test_assessment_bridge_round_trip():
     eq = [{"kind": "overtree_sprinkler", "rate_mm_h": 5.0}, {"kind": "wind_machine"}]
     r = fr.plan_night([block(equipment=eq, cloud_cover_pct=10.0)], night(), fc(-3.0, -2.0, -1.0))[0]
-    fields = fr.assessment_fields(r)
+    fields = frost_assessment.assessment_fields(r)
     a = Assessment(kind="frost", farm="F", farm_tz="UTC", units="metric", block_id=1, block=r.block,
                    station="S", crop=r.crop, variety=None, stage=r.stage, area_ha=4.0,
                    night=datetime(2024, 4, 9).date(), **fields)
-    back = fr.risk_from_assessment(a)
+    back = frost_assessment.risk_from_assessment(a)
     assert back.level == r.level and back.needs_protection == r.needs_protection
     assert back.expected_kill == pytest.approx(r.expected_kill)
     for p, q in zip(r.plans, back.plans, strict=True):
@@ -507,7 +509,7 @@ def test_sprinkler_note_says_how_close_the_system_is_and_where_the_table_comes_f
     eq = [{"kind": "overtree_sprinkler", "rate_mm_h": 3.0}]
     r = fr.plan_night([block(equipment=eq)], c, fc(-7.0, -4.5, -2.0))[0]
     p = _only(r, "overtree_sprinkler")
-    need = fr.required_sprinkler_rate_mm_h(-4.5, 0.9)
+    need = sprinklers.required_sprinkler_rate_mm_h(-4.5, 0.9)
     assert p.required_rate_mm_h == pytest.approx(need)
     note = next(n for n in p.notes if n.startswith("System 3 mm/h, needs"))
     assert f"needs {need:.1f} mm/h: {math.floor(100 * 3.0 / need):.0f} % of the need" in note

@@ -8,21 +8,20 @@ import pytest
 
 from advisory.assessment import Assessment
 from advisory.errors import InputError
-from advisory.risk import cautions
-from advisory.risk import frost as fr
+from advisory.risk import cautions, frost_assessment, frost_data
 from advisory.risk import runsheet as rs
 
 
 def plan(method, start, stop, ready=None, **kw):
     kw.setdefault("start_air_temp_c", -1.2)
-    return fr.MethodPlan(method=method, usable=True, recommended=kw.pop("recommended", True), start_utc=start,
+    return frost_data.MethodPlan(method=method, usable=True, recommended=kw.pop("recommended", True), start_utc=start,
                          ready_by_utc=ready or start, stop_utc=stop,
                          run_hours=(stop - start).total_seconds() / 3600 if start and stop else None,
                          caution_keys=cautions.cautions_for_method(method), **kw)
 
 
 def risk(name, plans, level="serious", needs=True, p50=-2.0):
-    return fr.BlockRisk(
+    return frost_data.BlockRisk(
         block=name, crop="apple", stage="full bloom", t10_c=-2.2, t90_c=-3.9, critical_c=-2.2,
         min_p10_c=p50 - 1.5, min_p50_c=p50, min_p90_c=p50 + 1.0,
         time_of_min_utc=datetime(2024, 4, 10, 12, tzinfo=UTC), sustained_min_offset_c=0.1,
@@ -45,7 +44,7 @@ def example():
                water_l_per_ha=326250.0)
     wm = plan("wind_machine", U(9, 30), U(13, 0), ready=U(7, 0), inversion_c=2.4)
     heat = plan("heater", U(8, 0), U(13, 30), fuel_l=440.0, fuel_l_cold=600.0)
-    none = fr.MethodPlan("none", usable=False, recommended=True, notes=("No protection equipment recorded.",),
+    none = frost_data.MethodPlan("none", usable=False, recommended=True, notes=("No protection equipment recorded.",),
                          caution_keys=cautions.cautions_for_method("none"))
     return [risk("Upper", [wm]), risk("North", [spr]), risk("Creek", [heat]), risk("East", [none], level="grave"),
             risk("Quiet", [plan("heater", None, None, recommended=False)], level="nil", needs=False)]
@@ -139,7 +138,7 @@ def test_sheet_from_stored_assessments_matches():
     risks = example()[:3]
     assessments = []
     for r in risks:
-        f = fr.assessment_fields(r)
+        f = frost_assessment.assessment_fields(r)
         assessments.append(Assessment(kind="frost", farm="Invented Orchard", farm_tz="America/Denver",
                                       units="metric", block_id=1, block=r.block, station="S", crop=r.crop,
                                       variety=None, stage=r.stage, area_ha=4.0, night=date(2024, 4, 9), **f))
@@ -154,7 +153,7 @@ def test_a_temperature_that_rounds_to_zero_reads_0_0_not_minus_0_0():
     p = plan("overtree_sprinkler", datetime(2024, 4, 10, 9, tzinfo=UTC), datetime(2024, 4, 10, 14, tzinfo=UTC),
              start_air_temp_c=-0.04, start_wet_bulb_c=-1.2)
     r = risk("Creek", [p])
-    assert "air about 0.0 °C" in fr.start_rule_text(r, p)
+    assert "air about 0.0 °C" in frost_assessment.start_rule_text(r, p)
     text = rs.render_text(sheet([r]))
     assert "-0.0" not in text and "0.0 °C" in text
 
