@@ -6,9 +6,9 @@ in one transaction (:mod:`.save`; outbox files written ahead by :mod:`.staging`)
 (:mod:`.send`), mark the run (:mod:`.record`).  Each kind of run is a short module naming its
 steps: :mod:`.frost_night` (evening and updates; what makes an update news is in
 :mod:`.frost_update`), :mod:`.morning_check` (then :mod:`.calibration_refit`), :mod:`.heat_day`
-(with :mod:`.heat_check`); :mod:`.planned` is the scheduler's entry.  Runs only read the models
-of :mod:`advisory.forecast` and :mod:`advisory.risk`; reports (:mod:`advisory.reports`) import no
-run module.
+(with :mod:`.heat_check`); :mod:`.planned` is the scheduler's entry.  The models they call
+(:mod:`advisory.forecast`, :mod:`advisory.risk`) never touch the database; reports
+(:mod:`advisory.reports`) only read and import no run module.
 
 All blocks due together go through the models as arrays in one pass.  The
 database work of a batch is one transaction: forecasts, notices and the run
@@ -26,7 +26,7 @@ twice:
   again once it is delivered.
 
 Updates through the night re-forecast from the latest observations; a new
-notice goes out only when the change is material (:func:`material_change`); a
+notice goes out only when the change is material (:func:`.frost_update.material_change`); a
 protection run already under way is carried into the update
 (:mod:`advisory.risk.continuity`).
 
@@ -37,7 +37,7 @@ are written with bulk INSERT statements; the models run on whole arrays, with fa
 apart time zones in separate passes so that no block is padded with another
 continent's night; the notices just stored are delivered from memory, not read
 back; Python's cyclic garbage collector is paused during the batch.  Each run
-reports the wall time of its stages in :attr:`RunResult.timings`;
+reports the wall time of its stages in :attr:`.record.RunResult.timings`;
 ``benchmarks/bench_night.py`` measures a night of 10,000 blocks.  For such
 numbers of blocks a lean outbox (``ADVISORY_OUTBOX_FORMATS``,
 ``ADVISORY_OUTBOX_CHARTS`` in :mod:`advisory.settings`) avoids drawing and
