@@ -122,6 +122,15 @@ def _sign_in(driver, base, user):
     driver.find_element(By.NAME, "username").send_keys(user)
     driver.find_element(By.NAME, "password").send_keys(PASSWORD)
     driver.find_element(By.CSS_SELECTOR, "form button[type=submit]").click()
+    _wait_for(driver, "#overview")
+
+
+def _wait_for(driver, css: str) -> None:
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support import expected_conditions as ec
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    WebDriverWait(driver, 30).until(ec.presence_of_element_located((By.CSS_SELECTOR, css)))
 
 
 def test_agent_changes_a_stage_and_a_grower_cannot_open_another_farm(served, browser):
@@ -161,6 +170,7 @@ def test_agent_changes_a_stage_and_a_grower_cannot_open_another_farm(served, bro
     _shot(browser, "4-block-bad-stage")
 
     browser.find_element(By.CSS_SELECTOR, "form.who button").click()
+    _wait_for(browser, "input[name=password]")  # signed out: the sign-in page
     _sign_in(browser, base, "ines-grower")
     table = browser.find_element(By.ID, "overview").text
     assert "Flat Riesling" in table and "Bench Gala" not in table
