@@ -10,7 +10,6 @@ from alembic import op
 
 import advisory.store.schema
 
-
 revision = '0004'
 down_revision = '0003'
 branch_labels = None
