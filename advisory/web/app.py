@@ -69,8 +69,9 @@ def create_app(db_url: str, *, secret: str | None = None, https_only: bool = Fal
                "csrf": auth.csrf_token(request.session), **ctx}
         return templates.TemplateResponse(request, name, ctx, status_code=status)
 
-    def error_page(request: Request, status: int, title: str, text: str) -> Response:
-        ctx = {"request": request, "viewer": None, "csrf": "", "status": status, "title": title, "text": text}
+    def error_page(request: Request, status: int, title: str, text: str, viewer=None) -> Response:
+        ctx = {"request": request, "viewer": viewer, "csrf": auth.csrf_token(request.session) if viewer else "",
+               "status": status, "title": title, "text": text}
         return templates.TemplateResponse(request, "error.html", ctx, status_code=status)
 
     def page(*, login: bool = True):
@@ -101,10 +102,10 @@ def create_app(db_url: str, *, secret: str | None = None, https_only: bool = Fal
             except queries.NotFound:
                 s.rollback()
                 return error_page(request, 404, "Not found",
-                                  "There is nothing here, or nothing you have access to.")
+                                  "There is nothing here, or nothing you have access to.", v)
             except Forbidden as exc:
                 s.rollback()
-                return error_page(request, 403, "Not allowed", str(exc))
+                return error_page(request, 403, "Not allowed", str(exc), v)
 
     # ------------------------------------------------------------------ sign in and out
 

@@ -139,6 +139,7 @@ def test_block_page_in_the_farms_units(client_for, web_db):
 def test_missing_block_is_a_404_page(client_for):
     r = client_for("agent-all").get("/blocks/99999")
     assert r.status_code == 404 and "Not found" in r.text
+    assert "Sign out" in r.text  # the signed-in user keeps the menu
 
 
 def test_user_text_is_escaped(client_for, web_db):
