@@ -169,6 +169,18 @@ def test_agent_changes_a_stage_and_a_grower_cannot_open_another_farm(served, bro
     assert "stages in order" in browser.find_element(By.ID, "stage-error").text
     _shot(browser, "4-block-bad-stage")
 
+    browser.find_element(By.LINK_TEXT, "QR-BENCH").click()
+    assert "Station QR-BENCH" in browser.find_element(By.TAG_NAME, "h1").text
+    assert browser.find_elements(By.CSS_SELECTOR, "svg.chart") and "Quality flags" in browser.page_source
+    _shot(browser, "7-station")
+    browser.find_element(By.LINK_TEXT, "Skill").click()
+    assert "By station" in browser.page_source and browser.find_elements(By.CSS_SELECTOR, "svg.chart")
+    _shot(browser, "8-skill")
+    browser.find_element(By.LINK_TEXT, "Heat day").click()
+    assert "Heat day" in browser.find_element(By.TAG_NAME, "h1").text
+    assert "Bench Gala" in browser.find_element(By.ID, "overview").text
+    _shot(browser, "9-heat-day")
+
     browser.find_element(By.CSS_SELECTOR, "form.who button").click()
     _wait_for(browser, "input[name=password]")  # signed out: the sign-in page
     _sign_in(browser, base, "ines-grower")
