@@ -66,30 +66,12 @@ from typing import Any
 
 from advisory import assessment as asm
 from advisory.assessment import Assessment
+from advisory.notices import notice_parts as parts
 from advisory.notices import words as w
 from advisory.notices.frost_notice import _frost
 from advisory.notices.heat_notice import _heat
 from advisory.notices.notice_data import BlockNotice, Section, _plain, notice_key
-from advisory.notices.notice_parts import (
-    FOOTER_FROST,
-    FOOTER_HEAT,
-    SMS_NAME_MAX,
-    _caution_list,
-    _clean_names,
-    _data_section,
-    _finite,
-    _Fmt,
-    _fmt,
-    _one_line,
-    _plan_section,
-    _short_name,
-    _sms,
-    _style,
-    _verification_section,
-    bud_temperature_line,
-    changes,
-    sms_caution,
-)
+from advisory.notices.notice_parts import _finite, _Fmt, changes
 
 
 def _status(a: Assessment, f: _Fmt, name: str):
@@ -140,18 +122,18 @@ def _status(a: Assessment, f: _Fmt, name: str):
     if not heat and a.status != asm.STATUS_NO_NIGHT and _finite(a.t10_c):
         lead.append(f"{a.stage.capitalize()} buds are damaged from about {f.t(a.t10_c)} (T10): check "
                     "thermometers in the block tonight.")
-        lead.append(bud_temperature_line(f.units))
+        lead.append(parts.bud_temperature_line(f.units))
     if next_step:
         lead.append(next_step)
-    sms_parts = [(f"{name} - {_short_name(a.block, SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True),
+    sms_parts = [(f"{name} - {parts._short_name(a.block, parts.SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True),
                  (first.split(": ", 1)[-1], True)]
     for k, s in enumerate(running):  # before the rest: a cut text must still say it
         sms_parts.insert(1 + k, (f"Keep {w.method_name(s.method)} on.", True))
     if not heat and a.status != asm.STATUS_NO_NIGHT and _finite(a.t10_c):
         sms_parts.append((f"Buds hurt from {w.temp(a.t10_c, f.units, ascii_only=True)}; check thermometers.",
                           False))
-    sections = ([_plan_section(a, f)] if running else []) + [_data_section(a, f)]
-    ver = _verification_section(a, f)
+    sections = ([parts._plan_section(a, f)] if running else []) + [parts._data_section(a, f)]
+    ver = parts._verification_section(a, f)
     if ver:
         sections.append(ver)
     keys = list(a.cautions or [])
@@ -206,9 +188,9 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
     key = notice_key(a.kind, a.farm, a.block_id, a.night, a.revision)
     if data is None:
         data = _plain(a)
-    a = _clean_names(a)
-    f = _fmt(a.farm_tz, a.units)
-    style = _style(a)
+    a = parts._clean_names(a)
+    f = parts._fmt(a.farm_tz, a.units)
+    style = parts._style(a)
     name = style.name
     if a.status != asm.STATUS_OK:
         core, lead, sms_parts, sections, chart, keys = _status(a, f, name)
@@ -222,7 +204,7 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
         lead.insert(0, warn)
     outlook = (a.details or {}).get("night_outlook") if a.kind != "heat" and a.status == asm.STATUS_OK else None
     if isinstance(outlook, str) and " the forecast low is " in outlook:
-        lead.append(_one_line(outlook))
+        lead.append(parts._one_line(outlook))
     when_txt = f"night of {w.short_day(a.night)}" if a.kind != "heat" else w.short_day(a.night)
     first = "morning note" if a.kind == "heat" else "evening notice"
     prefix = f"[{name}] "
@@ -242,7 +224,7 @@ def compose_block(a: Assessment | dict, previous: Assessment | dict | None = Non
         crop=a.crop, variety=a.variety, stage=a.stage, night=a.night.isoformat(), revision=a.revision,
         is_update=a.is_update, level=a.level, level_rank=int(a.level_rank or 0), level_name=name,
         level_meaning=style.meaning, colour=style.colour, subject=subject, headline=headline, lead=lead,
-        sms=_sms(sms_parts, sms_caution(a.kind)), sections=sections, cautions=_caution_list(keys),
-        footer=FOOTER_HEAT if a.kind == "heat" else FOOTER_FROST, changes=changed, chart=chart,
+        sms=parts._sms(sms_parts, parts.sms_caution(a.kind)), sections=sections, cautions=parts._caution_list(keys),
+        footer=parts.FOOTER_HEAT if a.kind == "heat" else parts.FOOTER_FROST, changes=changed, chart=chart,
         issued_utc=w.iso(a.reference_time_utc), data=data)
     return notice

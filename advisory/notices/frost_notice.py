@@ -5,27 +5,17 @@ from __future__ import annotations
 
 from advisory.assessment import Assessment
 from advisory.crops import thresholds
+from advisory.notices import notice_parts as parts
 from advisory.notices import words as w
 from advisory.notices.notice_data import ChartSpec, Section
-from advisory.notices.notice_parts import (
-    SMS_NAME_MAX,
-    _curve_extreme,
-    _data_section,
-    _finite,
-    _Fmt,
-    _plan_section,
-    _short_name,
-    _steps,
-    _verification_section,
-    bud_temperature_line,
-)
+from advisory.notices.notice_parts import _finite, _Fmt
 from advisory.risk import cautions as caution_texts
 
 
 def _frost(a: Assessment, f: _Fmt, name: str):
     d = a.details or {}
-    t_min = w.parse_time(d.get("time_of_min_utc")) or _curve_extreme(a, lowest=True)[0]
-    advised, none_advised = _steps(a)
+    t_min = w.parse_time(d.get("time_of_min_utc")) or parts._curve_extreme(a, lowest=True)[0]
+    advised, none_advised = parts._steps(a)
     lead: list[str] = []
     if _finite(a.p50_c):
         s = f"Low {f.t(a.p50_c)}" + (f" around {f.clock(t_min)}" if t_min else "")
@@ -91,7 +81,7 @@ def _frost(a: Assessment, f: _Fmt, name: str):
     elif _finite(a.p50_c) and _finite(a.t10_c):
         core += ", critical not reached"
     sms_parts: list[tuple] = [
-        (f"{name} - {_short_name(a.block, SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True)]
+        (f"{name} - {parts._short_name(a.block, parts.SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True)]
     if _finite(a.p50_c):
         low = f"low {w.temp(a.p50_c, f.units, ascii_only=True)}"
         if _finite(a.p10_c) and _finite(a.p90_c):  # shortened to the low alone first when space is short
@@ -133,18 +123,14 @@ def _frost(a: Assessment, f: _Fmt, name: str):
         if _finite(d.get("hours_below_t10_cold")):
             s += f", {w.hours(d['hours_below_t10_cold'])} if colder"
         buds.items.append(s)
-    buds.paragraphs.append(bud_temperature_line(f.units))
+    buds.paragraphs.append(parts.bud_temperature_line(f.units))
     if a.critical_source:
         buds.items.append(f"Critical temperatures: {a.critical_source}")
     other_family = thresholds.cultivar_note(a.crop, a.variety, a.critical_source)
     if other_family:
         buds.paragraphs.append(other_family)
     sections.append(buds)
-    sections.append(_plan_section(a, f))
-    sections.append(_data_section(a, f))
-    ver = _verification_section(a, f)
-    if ver:
-        sections.append(ver)
+    parts._shared_sections(a, f, sections)
 
     chart = ChartSpec("frost", f"{a.block}: night of {w.day(a.night)}")
     if _finite(a.t10_c):
@@ -172,11 +158,9 @@ def _frost(a: Assessment, f: _Fmt, name: str):
         chart.marks.append({"label": f"air at T10 {f.clock(a.critical_time_utc)[:5]}",
                             "time_utc": w.iso(a.critical_time_utc), "role": "critical"})
     if a.sunset_utc:
-        chart.marks.append({"label": f"sunset {f.clock(a.sunset_utc)}", "time_utc": w.iso(a.sunset_utc),
-                            "role": "sunset"})
+        parts._sun_mark(chart, f, "sunset", a.sunset_utc)
     if a.sunrise_utc:
-        chart.marks.append({"label": f"sunrise {f.clock(a.sunrise_utc)}", "time_utc": w.iso(a.sunrise_utc),
-                            "role": "sunrise"})
+        parts._sun_mark(chart, f, "sunrise", a.sunrise_utc)
 
     keys = list(a.cautions or [])
     if not keys and (advised or none_advised):

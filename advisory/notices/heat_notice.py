@@ -4,29 +4,17 @@
 from __future__ import annotations
 
 from advisory.assessment import Assessment
+from advisory.notices import notice_parts as parts
 from advisory.notices import words as w
 from advisory.notices.notice_data import ChartSpec, Section
-from advisory.notices.notice_parts import (
-    HEAT_ALWAYS,
-    SMS_NAME_MAX,
-    _curve_extreme,
-    _data_section,
-    _finite,
-    _Fmt,
-    _hours_window,
-    _plan_section,
-    _short_name,
-    _steps,
-    _time_pair,
-    _verification_section,
-)
+from advisory.notices.notice_parts import _finite, _Fmt, _hours_window, _time_pair
 from advisory.risk import cautions as caution_texts
 
 
 def _heat(a: Assessment, f: _Fmt, name: str):
     d = a.details or {}
     pts = [p for p in a.curve if _finite(p.p50_c)]
-    t_max, v_max = _curve_extreme(a, lowest=False)
+    t_max, v_max = parts._curve_extreme(a, lowest=False)
     t_max = w.parse_time(d.get("max_time_utc")) or t_max
     lead: list[str] = []
     if _finite(a.p50_c):
@@ -102,7 +90,7 @@ def _heat(a: Assessment, f: _Fmt, name: str):
     for g in d.get("guidance") or []:
         crew.items.append(str(g))
 
-    advised, _ = _steps(a)
+    advised, _ = parts._steps(a)
     for s in advised:
         if s.start_utc is not None:
             stop = f", stop about {f.clock(s.stop_utc)}" if s.stop_utc else ""
@@ -133,7 +121,7 @@ def _heat(a: Assessment, f: _Fmt, name: str):
     if hot_start and hot_stop:
         core += f", hottest {f.clock(hot_start)[:5]}-{f.clock(hot_stop)}"
     sms_parts: list[tuple] = [
-        (f"{name} - {_short_name(a.block, SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True)]
+        (f"{name} - {parts._short_name(a.block, parts.SMS_NAME_MAX, '.')} {w.short_day(a.night)}:", True)]
     if _finite(a.p50_c):
         sms_parts.append((f"high {w.temp(a.p50_c, f.units, ascii_only=True)}"
                           + (f" at {f.clock(t_max)}" if t_max else "") + ".", True))
@@ -150,12 +138,7 @@ def _heat(a: Assessment, f: _Fmt, name: str):
         sections.append(crew)
     if hours_sec:
         sections.append(hours_sec)
-    if a.plan:
-        sections.append(_plan_section(a, f))
-    sections.append(_data_section(a, f))
-    ver = _verification_section(a, f)
-    if ver:
-        sections.append(ver)
+    parts._shared_sections(a, f, sections, plan=bool(a.plan))
 
     chart = ChartSpec("heat", f"{a.block}: {w.day(a.night)}")
     if _finite(thr):
@@ -173,15 +156,13 @@ def _heat(a: Assessment, f: _Fmt, name: str):
     for s0, s1 in safer:
         chart.windows.append({"label": "heavy work", "start_utc": w.iso(s0), "stop_utc": w.iso(s1), "role": "work"})
     if a.sunrise_utc:
-        chart.marks.append({"label": f"sunrise {f.clock(a.sunrise_utc)}", "time_utc": w.iso(a.sunrise_utc),
-                            "role": "sunrise"})
+        parts._sun_mark(chart, f, "sunrise", a.sunrise_utc)
     if a.sunset_utc:
-        chart.marks.append({"label": f"sunset {f.clock(a.sunset_utc)}", "time_utc": w.iso(a.sunset_utc),
-                            "role": "sunset"})
+        parts._sun_mark(chart, f, "sunset", a.sunset_utc)
 
     # The heat model's own caution texts when it gives them (they cover illness signs, working in pairs
     # and the workplace heat plan); otherwise ours.
-    keys = list(a.cautions) if a.cautions else list(HEAT_ALWAYS)
+    keys = list(a.cautions) if a.cautions else list(parts.HEAT_ALWAYS)
     for s in advised:
         keys.extend(caution_texts.METHOD_CAUTIONS.get(s.method, ()))
     return core, lead, sms_parts, sections, chart, keys

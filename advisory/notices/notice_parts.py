@@ -15,7 +15,7 @@ from functools import lru_cache
 from advisory import assessment as asm
 from advisory.assessment import Assessment
 from advisory.notices import words as w
-from advisory.notices.notice_data import CautionText, Group, Section
+from advisory.notices.notice_data import CautionText, ChartSpec, Group, Section
 from advisory.risk import cautions as caution_texts
 
 log = logging.getLogger(__name__)
@@ -201,6 +201,11 @@ def _caution_list(keys: list[str]) -> list[CautionText]:
     return out
 
 
+def _sun_mark(chart: ChartSpec, f: _Fmt, role: str, t_utc) -> None:
+    """Mark sunrise or sunset (``role``, also the mark's word) on a notice's chart at its local time."""
+    chart.marks.append({"label": f"{role} {f.clock(t_utc)}", "time_utc": w.iso(t_utc), "role": role})
+
+
 def _time_pair(x):
     """(start, stop) from a dict with start_utc/stop_utc or a 2-sequence."""
     if isinstance(x, dict):
@@ -364,6 +369,17 @@ def _data_section(a: Assessment, f: _Fmt) -> Section:
             parts.append(f"sunrise {f.clock(a.sunrise_utc)}")
         sec.items.append("Sun: " + ", ".join(parts))
     return sec
+
+
+def _shared_sections(a: Assessment, f: _Fmt, sections: list[Section], *, plan: bool = True) -> None:
+    """Append the sections frost and heat notes both end with: the plan (unless ``plan`` is false),
+    the data behind the forecast, and how recent forecasts verified (when there are any)."""
+    if plan:
+        sections.append(_plan_section(a, f))
+    sections.append(_data_section(a, f))
+    ver = _verification_section(a, f)
+    if ver:
+        sections.append(ver)
 
 
 def _model_line(a: Assessment) -> str:
