@@ -349,8 +349,9 @@ def load_night_outlooks(session, station_ids, start_utc, end_utc) -> dict[int, p
     rows = session.execute(
         select(NightOutlook.station_id, NightOutlook.valid_time, NightOutlook.sky_cover_pct,
                NightOutlook.wind_speed_ms, NightOutlook.air_temp_c)
-        .where(NightOutlook.station_id.in_(ids), NightOutlook.valid_time >= pd.Timestamp(start_utc).to_pydatetime(),
-               NightOutlook.valid_time <= pd.Timestamp(end_utc).to_pydatetime())
+        .where(NightOutlook.station_id.in_(ids),
+               NightOutlook.valid_time >= pd.Timestamp(start_utc).floor("us").to_pydatetime(),
+               NightOutlook.valid_time <= pd.Timestamp(end_utc).ceil("us").to_pydatetime())
         .order_by(NightOutlook.station_id, NightOutlook.valid_time)).all()
     if not rows:
         return {}
