@@ -243,26 +243,6 @@ class NightOutlookImport:
         return dataclasses.asdict(self)
 
 
-def _stations_by_name(session, names: set[str]) -> dict:
-    from sqlalchemy import select
-
-    from advisory.store.schema import Station
-
-    every = list(session.scalars(select(Station)))
-    exact = {s.code: s for s in every}
-    loose: dict[str, list] = {}
-    for s in every:
-        for key in {s.code.lower(), (s.name or "").strip().lower()} - {""}:
-            loose.setdefault(key, []).append(s)
-    out = {}
-    for n in names:
-        if n in exact:
-            out[n] = exact[n]
-        elif len(loose.get(n.strip().lower(), [])) == 1:
-            out[n] = loose[n.strip().lower()][0]
-    return out
-
-
 def import_night_outlook(db, path, *, station: str | None = None, now=None) -> NightOutlookImport:
     """Read a night-outlook CSV and upsert its hours into ``night_outlooks``, all or nothing.
 
@@ -282,7 +262,9 @@ def import_night_outlook(db, path, *, station: str | None = None, now=None) -> N
     name = str(path)
     report = NightOutlookImport(file=Path(name).name, rows=len(frame))
     with db.transaction() as session:
-        found = _stations_by_name(session, set(frame["station"]) | ({station} if station else set()))
+        from advisory.ingest.outlook_import import _resolve_stations
+
+        found = _resolve_stations(session, set(frame["station"]) | ({station} if station else set()))
 
         def unknown(st, **where):
             known = ", ".join(session.scalars(select(Station.code).order_by(Station.code))) or "none"
