@@ -21,6 +21,7 @@ from advisory.ingest.night_outlook import load_night_outlooks
 from advisory.ingest.observations import load_observations_many
 from advisory.physics import moisture, sun
 from advisory.risk import damage, frost, frost_assessment, frost_data
+from advisory.runs import stage_check
 from advisory.runs.blocks import _equipment_of, _latest_calibrations, _recent_verification
 from advisory.runs.record import StageTimes, _lap
 from advisory.store.schema import (
@@ -376,6 +377,9 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
         inversion = upper - air
         frost_settings: dict = {}
         gear = _equipment_of(session, [blocks[i] for i in idx])
+        # The stage check: heat since each block's recorded stage date from one read of its readings.
+        checks = stage_check.stage_checks(session, [blocks[i] for i in idx], night, ref_max)
+        check_of = dict(zip(idx.tolist(), checks, strict=True))
         # Blocks whose nights overlap share one time grid; far-apart zones get their own, so the
         # grid of each pass is not padded with the hours of the other side of the world.
         for group in _night_groups(fc, idx):
@@ -394,12 +398,24 @@ def assess_night(session: Session, blocks: list[Block], night: dt.date, *, as_of
                     cloud_cover_pct=None if np.isnan(cloud[i]) else float(cloud[i]),
                     settings=_frost_settings(b, frost_settings)))
             risks = frost.plan_night(setups, curves, forecast)
+            group_checks = [check_of[i] for i in group.tolist()]
+            stage_check.expected_stage_risk(group_checks, [blocks[i].crop for i in group], risks, forecast)
+            eco = stage_check.block_economics(
+                [blocks[i] for i in group], risks, [gear.get(blocks[i].id, []) for i in group],
+                inversion[group], np.array([x.settings.wind_machine_gain_fraction for x in setups]), forecast)
             for k, i in enumerate(group):
                 a = out[i]
                 for key, value in frost_assessment.assessment_fields(risks[k]).items():
                     setattr(a, key, {**(a.details or {}), **value} if key == "details" else value)
                 a.model = str(fc.model[i])
                 a.training_nights = int(fc.training_nights[i])
+                if group_checks[k] is not None:
+                    a.details["stage_check"] = group_checks[k]
+                if eco[k]:
+                    a.details["economics"] = eco[k]
+                crew = (blocks[i].farm.settings or {}).get("crew_size")
+                if crew is not None:
+                    a.details["crew_size"] = int(crew)
         pressure = np.asarray(moisture.pressure_kpa_from_elevation(elev[idx]), float)
         _set_curves(out, fc, states, idx, pressure)
     _lap(timings, "risk/plan")
