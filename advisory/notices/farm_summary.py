@@ -160,6 +160,10 @@ def compose_farm(assessments: list[Assessment], *, revision: int = 0,
     silent = [x.block for x in items if x.status in (asm.STATUS_NO_FORECAST, asm.STATUS_MISSED)]
     if silent:
         lead.append("No forecast for: " + ", ".join(silent) + ".")
+    stale = [(x, c) for x in ok if (c := (x.details or {}).get("stage_check") or {}).get("sentence")]
+    if stale:
+        lead.append("Stage looks stale, check the buds: " + ", ".join(
+            f"{x.block} (recorded {x.stage}, heat since suggests {c['expected_stage']})" for x, c in stale) + ".")
     core = f"{a0.farm}, {when_txt}: {count_txt}"
     subject = f"[{tstyle.name}] " + (f"Update {revision}: " if is_update else "") + core
     subject = subject[:250]

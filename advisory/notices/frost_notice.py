@@ -10,6 +10,7 @@ from advisory.notices import words as w
 from advisory.notices.notice_data import ChartSpec, Section
 from advisory.notices.notice_parts import _finite, _Fmt
 from advisory.risk import cautions as caution_texts
+from advisory.risk import economics
 
 
 def _frost(a: Assessment, f: _Fmt, name: str):
@@ -35,6 +36,8 @@ def _frost(a: Assessment, f: _Fmt, name: str):
                         "the cold end of the range goes below it.")
         else:
             lead.append(f"Critical for {stage} buds ({f.t(a.t10_c)}) not reached.")
+    stage_lines = _stage_check_lines(a, f)
+    lead.extend(stage_lines)
     actions = []
     for s in advised:
         m = w.method_name(s.method)
@@ -68,6 +71,8 @@ def _frost(a: Assessment, f: _Fmt, name: str):
         lead.append("No protection needed on this forecast; check a thermometer late in the night.")
     else:
         lead.append("No protection needed tonight.")
+    eco_lines = _economics_lines(a)
+    lead.extend(eco_lines)
     if _finite(a.expected_kill_pct) and (a.level_rank >= 1 or a.expected_kill_pct >= 0.5):
         s = f"Expected bud loss {w.pct(a.expected_kill_pct / 100.0)}"
         if _finite(a.p_kill_ge_10pct):
@@ -129,8 +134,14 @@ def _frost(a: Assessment, f: _Fmt, name: str):
     other_family = thresholds.cultivar_note(a.crop, a.variety, a.critical_source)
     if other_family:
         buds.paragraphs.append(other_family)
+    buds.paragraphs.extend(stage_lines)
     sections.append(buds)
     parts._shared_sections(a, f, sections)
+    if eco_lines:
+        plan = next((sec for sec in sections if sec.key == "plan"), None)
+        if plan is not None:
+            plan.paragraphs.extend(eco_lines)
+            plan.paragraphs.append(ECONOMICS_NOTE)
 
     chart = ChartSpec("frost", f"{a.block}: night of {w.day(a.night)}")
     if _finite(a.t10_c):
@@ -170,3 +181,40 @@ def _frost(a: Assessment, f: _Fmt, name: str):
     if keys and (advised or none_advised or a.level_rank >= 2):
         keys.extend(caution_texts.ALWAYS)
     return core, lead, sms_parts, sections, chart, keys
+
+
+#: Beside the economics lines in the plan section: what they rest on, and whose decision it is.
+ECONOMICS_NOTE = ("The money figures are estimates from the crop value and costs on file for this block and "
+                  "tonight's forecast range; they support your decision, they do not make it.")
+
+
+def _cap(text: str) -> str:
+    return text[:1].upper() + text[1:]
+
+
+def _stage_check_lines(a: Assessment, f: _Fmt) -> list[str]:
+    """The stage check (when the heat since the recorded stage suggests another stage) and, when it is
+    worse, the risk at the expected stage; the recorded stage still drives the figures above."""
+    c = (a.details or {}).get("stage_check") or {}
+    if not c.get("sentence"):
+        return []
+    out = [_cap(c["sentence"]) + "."]
+    p_exp, t10 = c.get("expected_p_kill_ge_10pct"), c.get("expected_t10_c")
+    if _finite(p_exp) and _finite(t10) and _finite(a.p_kill_ge_10pct) \
+            and w.pct(p_exp) != w.pct(a.p_kill_ge_10pct) and p_exp > a.p_kill_ge_10pct:
+        out.append(f"At {c['expected_stage']} (T10 {f.t(t10)}) the chance of losing 10 % or more would be "
+                   f"{w.pct(p_exp)}, not {w.pct(a.p_kill_ge_10pct)}.")
+    return out
+
+
+def _economics_lines(a: Assessment) -> list[str]:
+    """One line per method with figures (the advised one, or each usable one, best first); none for a
+    block without a crop value and costs."""
+    out = []
+    rows = (a.details or {}).get("economics") or []
+    for e in rows:
+        s = economics.economics_sentence(e.get("loss_without"), e.get("loss_with"), e.get("running_cost"),
+                                         e.get("currency"))
+        if s:
+            out.append(f"{_cap(w.method_name(e.get('method', '')))}: {s}.")
+    return out
