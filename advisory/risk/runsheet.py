@@ -21,13 +21,14 @@ from __future__ import annotations
 
 import csv
 import io
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, date, datetime
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from advisory.errors import InputError
 from advisory.risk import cautions as caut
+from advisory.risk import economics
 from advisory.risk.frost_assessment import risk_from_assessment
 from advisory.risk.frost_data import BlockRisk, MethodPlan
 
@@ -54,6 +55,10 @@ class RunSheetRow:
     ready_by: datetime | None
     start: datetime | None
     stop: datetime | None
+    #: Expected net saving of protecting the block tonight (None: no figures).
+    saving: float | None = None
+    #: Whether the crew is expected to reach the block (False only when the crew is short).
+    reached: bool = True
 
 
 @dataclass(frozen=True)
@@ -89,6 +94,8 @@ class RunSheet:
     unprotected: tuple[BlockRisk, ...]
     quiet: tuple[BlockRisk, ...]
     caution_keys: tuple[str, ...]
+    #: Blocks the crew can start and tend at once, when the crew is short tonight (rows then by saving).
+    crew_size: int | None = None
 
 
 def level_name(level: str, unprotected: bool = False) -> str:
@@ -119,7 +126,8 @@ def _zone(name: str) -> ZoneInfo:
 
 
 def build_run_sheet(farm: str, night: date, timezone: str, risks: Sequence[BlockRisk], *,
-                    generated_utc: datetime | None = None, units: str = "metric") -> RunSheet:
+                    generated_utc: datetime | None = None, units: str = "metric",
+                    crew_size: int | None = None, savings: Mapping[str, float] | None = None) -> RunSheet:
     """Assemble the run sheet from the night's block risks.
 
     Parameters
@@ -137,6 +145,15 @@ def build_run_sheet(farm: str, night: date, timezone: str, risks: Sequence[Block
     generated_utc : datetime, optional
         When the sheet was made (default: now).
     units : {"metric", "imperial"}
+    crew_size : int, optional
+        Blocks the crew can start and tend at once (default: the stored
+        assessments' ``crew_size``).
+    savings : mapping of block name to float, optional
+        Expected net saving of protecting each block (default: the best of
+        the stored assessments' ``economics``).  With a crew size and more
+        blocks to protect than the crew can reach, the rows go by saving
+        (largest first; blocks without figures last) and the blocks beyond the
+        crew's reach are marked; otherwise they go in start order.
 
     Returns
     -------
@@ -151,6 +168,15 @@ def build_run_sheet(farm: str, night: date, timezone: str, risks: Sequence[Block
 
     entries = []
     unprotected, quiet = [], []
+    savings = dict(savings or {})
+    for r in risks:
+        if not isinstance(r, BlockRisk):
+            d = getattr(r, "details", None) or {}
+            best = [e.get("saving") for e in d.get("economics") or [] if e.get("saving") is not None]
+            if best and r.block not in savings:
+                savings[r.block] = max(best)
+            if crew_size is None and d.get("crew_size") is not None:
+                crew_size = int(d["crew_size"])
     risks = [r if isinstance(r, BlockRisk) else risk_from_assessment(r) for r in risks]
     for r in risks:
         if not r.needs_protection:
@@ -164,7 +190,17 @@ def build_run_sheet(farm: str, night: date, timezone: str, risks: Sequence[Block
             key = p.start_utc or p.ready_by_utc
             entries.append((key is None, key or datetime.max.replace(tzinfo=UTC), r.block, p.method, r, p))
     entries.sort(key=lambda e: e[:4])
-    rows = tuple(RunSheetRow(i + 1, r, p, loc(p.ready_by_utc), loc(p.start_utc), loc(p.stop_utc))
+    reach: dict[str, bool] = {}
+    to_protect = list(dict.fromkeys(e[2] for e in entries))
+    short = crew_size is not None and len(to_protect) > crew_size and any(b in savings for b in to_protect)
+    if short:
+        # The crew cannot reach every block at once: the blocks that save the most first.
+        order, _ = economics.visit_order([savings.get(b, float("nan")) for b in to_protect])
+        rank = {to_protect[k]: pos for pos, k in enumerate(order.tolist())}
+        reach = {b: rank[b] < crew_size for b in to_protect}
+        entries.sort(key=lambda e: (rank[e[2]],) + e[:4])
+    rows = tuple(RunSheetRow(i + 1, r, p, loc(p.ready_by_utc), loc(p.start_utc), loc(p.stop_utc),
+                             savings.get(r.block), reach.get(r.block, True))
                  for i, (*_, r, p) in enumerate(entries))
     keys: list[str] = []
     for row in rows:
@@ -176,7 +212,7 @@ def build_run_sheet(farm: str, night: date, timezone: str, risks: Sequence[Block
     order = [c.key for c in caut.ordered(keys)]
     return RunSheet(farm, night, timezone, generated_utc or datetime.now(UTC), units, rows,
                     tuple(sorted(unprotected, key=lambda r: r.block)),
-                    tuple(sorted(quiet, key=lambda r: r.block)), tuple(order))
+                    tuple(sorted(quiet, key=lambda r: r.block)), tuple(order), crew_size if short else None)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -268,6 +304,22 @@ def _run(p: MethodPlan) -> str:
     return "-"
 
 
+def _order_words(sheet: RunSheet) -> str:
+    if sheet.crew_size is None:
+        return "in start order"
+    return (f"largest expected saving first (the crew can tend {sheet.crew_size} "
+            f"block{'s' if sheet.crew_size != 1 else ''} at once)")
+
+
+def _reach(sheet: RunSheet, row: RunSheetRow) -> str:
+    """Whether the crew is expected to reach the block, and why (decision support: the crew decides)."""
+    saving = "no saving figures" if row.saving is None else f"expected saving {row.saving:,.0f}"
+    if row.reached:
+        return f"crew expected to reach it ({saving})"
+    return (f"crew not expected to reach it: the crew of {sheet.crew_size} is at blocks with larger "
+            f"expected savings ({saving})")
+
+
 def _title(sheet: RunSheet) -> str:
     return f"Frost run sheet: {sheet.farm}"
 
@@ -289,12 +341,14 @@ def render_text(sheet: RunSheet) -> str:
     if not sheet.rows and not sheet.unprotected:
         out.append("No block needs protection tonight.")
     if sheet.rows:
-        out.append(f"{len(sheet.rows)} to run, in start order:")
+        out.append(f"{len(sheet.rows)} to run, {_order_words(sheet)}:")
         out.append("")
     for row in sheet.rows:
         r, p = row.risk, row.plan
         out.append(f"{row.order}. {r.block} - {METHOD_NAMES[p.method]}")
         out.append(f"   {r.crop.replace('_', ' ')}, {r.stage}; {level_name(r.level)}")
+        if sheet.crew_size is not None:
+            out.append(f"   {_reach(sheet, row)}")
         out.append(f"   {_when(row)}")
         out.append(f"   {_start_rule(sheet, r, p)}")
         out.append(f"   stop {_stop_rule(sheet, r, p)}")
@@ -351,6 +405,11 @@ def render_markdown(sheet: RunSheet) -> str:
                      _start_rule(sheet, r, p), _supply(sheet, p) or "-", _min_range(sheet, r)]
             out.append("| " + " | ".join(_md_escape(c) for c in cells) + " |")
         out.append("")
+        if sheet.crew_size is not None:
+            out += [f"Order: {_order_words(sheet)}.", ""]
+            out += [f"- **{row.order}. {_md_escape(row.risk.block)}**: {_reach(sheet, row)}"
+                    for row in sheet.rows]
+            out.append("")
         notes = [(row, n) for row in sheet.rows for n in row.plan.notes]
         if notes:
             out += ["## Notes", ""]
