@@ -39,6 +39,8 @@ DEFAULT_OUT = REPO / "demo-output"
 #: Local dates of the demo's spring nights (the readings run from 6 to 13 April).
 SPRING_NIGHTS = [dt.date(2026, 4, 6) + dt.timedelta(days=i) for i in range(7)]
 SEASONS = ("spring", "summer")
+#: Station files from before the spring week (heat for the stage check), where a station has one.
+EARLY = ("march",)
 
 
 @dataclass
@@ -100,6 +102,28 @@ def _night_updates(db, night: dt.date, settings) -> tuple[int, int, list[str]]:
                 if n.content.get("changes"):
                     lines.append("            what changed: " + "; ".join(n.content["changes"]))
     return len(runs), n_sent, lines
+
+
+#: The night whose evening notices the demo quotes for the stage check and the economics.
+STAGE_CHECK_NIGHT = dt.date(2026, 4, 8)
+
+
+def _stage_and_economics_lines(assessments) -> list[str]:
+    """One line for the first block whose stage looks stale, one for the first economics line."""
+    from advisory.risk.economics import economics_sentence
+
+    out = []
+    stale = [(a, c) for a in assessments if (c := (a.details or {}).get("stage_check") or {}).get("sentence")]
+    if stale:
+        a, c = stale[0]
+        out.append(f"      stage check in {a.block}'s notice: {c['sentence']}")
+    for a in assessments:
+        for e in (a.details or {}).get("economics") or []:
+            s = economics_sentence(e["loss_without"], e["loss_with"], e["running_cost"], e["currency"])
+            if s:
+                out.append(f"      economics in {a.block}'s notice ({e['method'].replace('_', ' ')}): {s}")
+                return out
+    return out
 
 
 def _morning_clock(db, night: dt.date) -> dt.datetime:
@@ -181,8 +205,10 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
         inboxes = {st.code: Path(st.inbox) for st in s.scalars(select(Station)) if st.inbox}
     for code, folder in sorted(inboxes.items()):
         folder.mkdir(parents=True, exist_ok=True)
-        for season in SEASONS:
-            shutil.copy(paths.farm_dir / "stations" / f"{code}-{season}.csv", folder)
+        for season in SEASONS + EARLY:
+            src = paths.farm_dir / "stations" / f"{code}-{season}.csv"
+            if src.exists():  # the late-March file is the creek logger's only
+                shutil.copy(src, folder)
     for r in inbox.sweep(db, settle_seconds=0):
         echo(f"  {r.station_code}: {Path(r.file).name} -> {r.status}" + (f" ({r.reason})" if r.reason else ""))
     for code in sorted(inboxes):
@@ -198,6 +224,9 @@ def _run(paths: DemoPaths, echo, *, heat: bool) -> Database:
         echo(f"  night of {night:%a %d %b}: forecast lows °C: {lows}")
         if worst is None or rank > worst[0]:
             worst = (rank, night, res)
+        if night == STAGE_CHECK_NIGHT:
+            for line in _stage_and_economics_lines(res.assessments):
+                echo(line)
         n_runs, n_sent, lines = _night_updates(db, night, settings)
         echo(f"      through the night: {n_runs} hourly updates, {n_sent} update notice(s) sent "
              "(only when the crew's work changes)")

@@ -143,6 +143,27 @@ def write_creek(df: pd.DataFrame, path: Path) -> None:
     return out
 
 
+#: Before the spring week: the creek logger's late-March file, air temperature only (its humidity
+#: and wind sensors were not yet back from their winter check).  The heat in it is what moves a
+#: block's buds past the stage recorded at the end of March.
+MARCH_DAYS = ("2026-03-27", "2026-04-06")  # [first day, day the spring file starts)
+
+
+def write_creek_march(path: Path) -> None:
+    """Hourly creek readings from MARCH_DAYS[0] up to the spring file's first reading: a plain daily
+    cycle (about 2 °C before dawn, 14 °C mid-afternoon), air temperature only."""
+    rng = np.random.default_rng(20260327)
+    t = dt.datetime.combine(dt.date.fromisoformat(MARCH_DAYS[0]), dt.time(0), TZ)
+    end = dt.datetime.combine(dt.date.fromisoformat(MARCH_DAYS[1]), dt.time(0), TZ)
+    rows = []
+    while t < end:
+        temp = 8.0 + 6.0 * np.sin(2 * np.pi * (t.hour - 9) / 24) + rng.normal(0, 0.15)
+        rows.append((t.strftime("%Y-%m-%d %H:%M"), round(temp * 9 / 5 + 32, 1)))
+        t += dt.timedelta(hours=1)
+    pd.DataFrame({"Timestamp": [r[0] for r in rows], "Temp_F": [r[1] for r in rows], "RH_%": "",
+                  "Wind_mph": ""}).to_csv(path, index=False)
+
+
 def main() -> None:
     out_dir = HERE / "stations"
     out_dir.mkdir(exist_ok=True)
@@ -161,6 +182,7 @@ def main() -> None:
                     (creek["time"] < dt.datetime(2026, 4, 12, 17, 0, tzinfo=TZ))
             table.loc[stuck.to_numpy(), "RH_%"] = 63.0
         table.to_csv(out_dir / f"QR-CREEK-{season}.csv", index=False)
+    write_creek_march(out_dir / "QR-CREEK-march.csv")
     print(f"wrote station files to {out_dir}")
 
 
