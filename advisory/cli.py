@@ -21,6 +21,8 @@ from advisory.errors import AdvisoryError, InputError, SchemaVersionError
 #: Topic modules in the order their commands appear in --help.
 TOPICS = ("db", "farm", "blocks", "obs", "outlook", "night", "heat", "verify", "notices", "hindcast",
           "calc", "serve", "users", "web", "demo")
+#: Commands that serve until stopped (their runs retry on their own: :mod:`advisory.schedule`).
+LONG_RUNNING = ("serve", "web", "demo")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -48,7 +50,12 @@ def main(argv: list[str] | None = None) -> int:
     try:
         args.db_explicit = bool(args.db or os.environ.get("ADVISORY_DB"))
         args.db = settings.load(args.db).db_url
-        return int(args.func(args) or 0)
+        if args.command in LONG_RUNNING:
+            return int(args.func(args) or 0)
+        from advisory.store.retry import with_retries
+
+        # an import or a run is one transaction, or safe to repeat: what the server aborted runs again
+        return int(with_retries(lambda: args.func(args), what=f"advisory {args.command}") or 0)
     except (InputError, SchemaVersionError) as exc:
         print(f"advisory: error: {exc}", file=sys.stderr)
         return 2

@@ -237,85 +237,168 @@ def execute_run(db_url: str, kind: str, night_iso: str, block_ids: list[int], ru
         db.dispose()
 
 
-def reconcile(db, scheduler, now: dt.datetime, settings: PlannerSettings) -> dict[str, int]:
-    """Place the runs of the coming hours as jobs; deal with runs missed while stopped.
+class _Worker:
+    """This host's share of the runs: claim the next run due (:mod:`advisory.runs.claims`), run it, repeat.
 
-    Returns counts of what was done.
+    Called from the scheduler's one run thread (at a run's due time, and every few seconds to take
+    over what a dead host left); a run found more than ``grace_min`` late is not run (an evening run:
+    its blocks' recipients are told that it was missed).  ``keys`` limits it to those runs.
     """
-    from advisory.runs import planned, record
+
+    def __init__(self, db, host: str, *, takeover_s: float, grace_min: int | None, now_fn, echo,
+                 keys: Iterable[str] | None = None):
+        import threading
+
+        self.db, self.host, self.takeover_s, self.grace_min = db, host, takeover_s, grace_min
+        self.now_fn, self.echo = now_fn, echo
+        self.keys = list(keys) if keys is not None else None
+        self.stop = threading.Event()
+        self.executed: list[str] = []
+        self.missed: list[str] = []
+
+    def work(self) -> None:
+        from advisory.runs import claims
+
+        while not self.stop.is_set():
+            try:
+                c = claims.claim_next(self.db, self.host, self.now_fn(), takeover_s=self.takeover_s,
+                                      keys=self.keys)
+            except Exception:  # the server away for a moment: the next wake-up tries again
+                log.exception("claiming a run failed")
+                return
+            if c is None:
+                return
+            self._run(c)
+
+    def _run(self, c) -> None:
+        from advisory.runs import claims, planned
+        from advisory.store.retry import with_retries
+
+        now = self.now_fn()
+        try:
+            if self.grace_min is not None and now - c.due_at > dt.timedelta(minutes=self.grace_min):
+                if c.kind == EVENING:
+                    planned.record_missed(self.db, c.night, list(c.block_ids), key=c.key, run_at=c.run_at, now=now)
+                self.missed.append(c.key)
+            else:
+                with_retries(lambda: execute_run(self.db.url, c.kind, c.night.isoformat(), list(c.block_ids),
+                                                 c.run_at.isoformat(), c.key), what=f"run {c.key}")
+                self.executed.append(c.key)
+            with self.db.transaction() as s:  # (done already, unless the run had been finished before)
+                claims.mark_done(s, c.key, self.now_fn())
+        except Exception as exc:
+            log.exception("run %s failed", c.key)
+            state = claims.give_back(self.db, c, self.host, self.now_fn(), f"{type(exc).__name__}: {exc}")
+            self.echo(f"  run {c.key} failed ({'tried again later' if state == claims.PENDING else 'given up'}): "
+                      f"{exc}")
+
+    def heartbeat(self, every_s: float, stop) -> None:
+        """Refresh this host's claims every ``every_s`` seconds until ``stop`` is set (a thread's body)."""
+        from advisory.runs import claims
+
+        while not stop.wait(every_s):
+            try:
+                claims.beat(self.db, self.host, self.now_fn())
+            except Exception:
+                log.exception("heartbeat failed")
+
+
+def reconcile(db, scheduler, now: dt.datetime, settings: PlannerSettings, wake=None) -> dict[str, int]:
+    """Offer the runs of the coming hours to the hosts and wake this host at each one's time.
+
+    Every host plans the same runs; :func:`advisory.runs.claims.offer` keeps one row per run key
+    whoever offers it first.  Runs missed while no host served (beyond the grace time) are offered
+    too: the host that claims one tells the recipients of a missed evening run.  ``wake`` is the
+    job each wake-up runs (this host's :meth:`_Worker.work`).  Returns counts of what was done.
+    """
+    from advisory.runs import claims, record
 
     clocks = load_block_clocks(db)
     lookback = dt.timedelta(hours=18)
     runs = plan(clocks, now - lookback, now + dt.timedelta(hours=settings.horizon_h), settings)
     done = record.finished_run_keys(db, [r.key for r in runs])
-    missed, due, future = split_due([r for r in runs if r.key not in done], now, settings.grace_min)
-    counts = {"placed": 0, "due": 0, "missed": 0}
-    for r in missed:
-        if r.kind == EVENING:
-            planned.record_missed(db, r.night, list(r.block_ids), key=r.key, run_at=r.run_at, now=now)
-            counts["missed"] += 1
-    for r in due + future:
-        job_id = r.key
-        if scheduler.get_job(job_id) is not None:
-            continue
-        scheduler.add_job(execute_run, "date", run_date=max(r.run_at, now), id=job_id,
-                          args=[db.url, r.kind, r.night.isoformat(), list(r.block_ids), r.run_at.isoformat(),
-                                r.key],
-                          misfire_grace_time=settings.grace_min * 60, coalesce=True,
-                          replace_existing=False, jobstore="runs")
-        counts["due" if r in due else "placed"] += 1
+    todo = [r for r in runs if r.key not in done]
+    claims.offer(db, todo)
+    missed, due, future = split_due(todo, now, settings.grace_min)
+    counts = {"placed": len(future), "due": len(due), "missed": sum(r.kind == EVENING for r in missed)}
+    if wake is not None:
+        times = sorted({max(r.run_at, now) for r in missed + due + future})
+        for at in times:
+            job_id = f"wake:{at:%Y%m%dT%H%M%SZ}"
+            if scheduler.get_job(job_id) is None:
+                scheduler.add_job(wake, "date", run_date=at, id=job_id, misfire_grace_time=None, coalesce=True,
+                                  replace_existing=True)
     return counts
 
 
 def retry_deliveries(db, now: dt.datetime, echo=print):
-    """One pass of the delivery queue (:func:`advisory.notices.deliver.retry_failed`), in one transaction."""
+    """One pass of the delivery queue (:func:`advisory.notices.deliver.retry_failed`), in one transaction
+    (one host at a time)."""
     from advisory import settings as settings_mod
     from advisory.notices import deliver
+    from advisory.runs import claims
 
     with db.transaction() as s:
+        claims.lock(s, claims.DELIVERY_LOCK)
         report = deliver.retry_failed(s, settings_mod.load(db.url), now=now)
     if report.retried or report.expired:
         echo(f"{now:%Y-%m-%d %H:%M:%S}Z {report.text()}")
     return report
 
 
+def _takeover_every(takeover_s: float) -> tuple[float, float]:
+    """(heartbeat interval, interval of the look for runs to take over) [s] for a takeover time."""
+    return max(0.2, takeover_s / 4), max(0.5, min(30.0, takeover_s / 2))
+
+
 def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None = None,
-          stop_after_s: float | None = None, clock=None, echo=print, retry_every_s: float = 60.0) -> None:
+          stop_after_s: float | None = None, clock=None, echo=print, retry_every_s: float = 60.0,
+          takeover_s: float | None = None) -> None:
     """The long-running scheduler; stops cleanly on SIGTERM or SIGINT.
 
-    Besides the runs, it works the queue of failed deliveries every ``retry_every_s`` seconds
-    (:func:`retry_deliveries`).
+    Any number of hosts may serve one database (PostgreSQL): each run is claimed by one of them
+    (:mod:`advisory.runs.claims`), and a host that stops refreshing its claims for ``takeover_s``
+    seconds has its runs taken over.  The job store is this process's memory; it only wakes the
+    local loop, the runs themselves are kept in the database.  Besides the runs, it works the queue
+    of failed deliveries every ``retry_every_s`` seconds (:func:`retry_deliveries`).
 
     Parameters
     ----------
     db : advisory.store.db.Database
     planner_every_min : int
-        How often the planner looks ahead and places jobs.
+        How often the planner looks ahead and offers the runs.
     stop_after_s : float, optional
         Stop by itself after this many seconds (tests, demos).
     clock : callable, optional
         Returns the current aware datetime (tests).
+    takeover_s : float, optional
+        A claim not refreshed for this long is taken over (default
+        :data:`advisory.runs.claims.TAKEOVER_S`).
     """
     import threading
 
     from apscheduler.executors.pool import ThreadPoolExecutor
     from apscheduler.jobstores.memory import MemoryJobStore
-    from apscheduler.jobstores.sqlalchemy import SQLAlchemyJobStore
     from apscheduler.schedulers.background import BackgroundScheduler
+
+    from advisory.runs import claims
 
     s = settings or PlannerSettings()
     now_fn = clock or (lambda: dt.datetime.now(dt.UTC))
+    takeover_s = claims.TAKEOVER_S if takeover_s is None else takeover_s
+    beat_s, look_s = _takeover_every(takeover_s)
     stop = threading.Event()
-    # Runs execute one at a time (a later run reads what the earlier one stored); the planner has its own thread.
+    worker = _Worker(db, claims.host_name(), takeover_s=takeover_s, grace_min=s.grace_min, now_fn=now_fn, echo=echo)
+    # Runs execute one at a time on a host (a later run reads what the earlier one stored); the planner
+    # has its own thread.
     scheduler = BackgroundScheduler(
-        jobstores={"runs": SQLAlchemyJobStore(engine=db.engine, tablename="apscheduler_jobs"),
-                   "default": MemoryJobStore()},
+        jobstores={"default": MemoryJobStore()},
         executors={"default": ThreadPoolExecutor(1), "planner": ThreadPoolExecutor(1)},
         job_defaults={"max_instances": 1}, timezone=dt.UTC)
 
     def planner_tick():
         try:
-            counts = reconcile(db, scheduler, now_fn(), s)
+            counts = reconcile(db, scheduler, now_fn(), s, wake=worker.work)
             echo(f"{now_fn():%Y-%m-%d %H:%M:%S}Z planner: {counts['placed']} placed, {counts['due']} due now, "
                  f"{counts['missed']} missed beyond grace")
         except Exception:  # keep serving; the next tick tries again
@@ -326,28 +409,38 @@ def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None =
     def _stop(signum, _frame):
         echo(f"received signal {signum}: stopping after the running job")
         stop.set()
+        worker.stop.set()
 
     if threading.current_thread() is threading.main_thread():
         for sig in previous:
             signal.signal(sig, _stop)
+
     def retry_tick():
         try:
             retry_deliveries(db, now_fn(), echo)
         except Exception:  # keep serving; the next tick tries again
             log.exception("delivery retry failed")
 
+    beats = threading.Thread(target=worker.heartbeat, args=(beat_s, stop), name="heartbeat", daemon=True)
+    beats.start()
     scheduler.start()
     scheduler.add_job(planner_tick, "interval", minutes=planner_every_min, id="planner",
-                      next_run_time=dt.datetime.now(dt.UTC), jobstore="default", executor="planner")
+                      next_run_time=dt.datetime.now(dt.UTC), executor="planner")
+    # the runs' thread: what other hosts left (a dead host's claims), between the planned wake-ups
+    scheduler.add_job(worker.work, "interval", seconds=look_s, id="claims", coalesce=True,
+                      next_run_time=dt.datetime.now(dt.UTC) + dt.timedelta(seconds=look_s))
     # in the runs' own thread: a retry never overlaps a run (a run's notices are delivered by the run)
     scheduler.add_job(retry_tick, "interval", seconds=retry_every_s, id="retry",
-                      next_run_time=dt.datetime.now(dt.UTC) + dt.timedelta(seconds=min(retry_every_s, 5)),
-                      jobstore="default", executor="default")
-    echo(f"serving {db.url.split('///')[-1]}: planner every {planner_every_min} min; Ctrl-C to stop")
+                      next_run_time=dt.datetime.now(dt.UTC) + dt.timedelta(seconds=min(retry_every_s, 5)))
+    echo(f"serving {db.url.split('///')[-1]} as {worker.host}: planner every {planner_every_min} min; "
+         "Ctrl-C to stop")
     try:
         stop.wait(timeout=stop_after_s)
     finally:
+        worker.stop.set()
         scheduler.shutdown(wait=True)
+        stop.set()
+        beats.join(timeout=5)
         if threading.current_thread() is threading.main_thread():
             for sig, handler in previous.items():
                 signal.signal(sig, handler)
@@ -355,86 +448,96 @@ def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None =
 
 
 def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: PlannerSettings | None = None,
-             echo=print) -> int:
-    """Run one night's planned runs through the real scheduler on a compressed clock.
+             echo=print, takeover_s: float | None = None) -> int:
+    """Run one night's planned runs on a compressed clock, shared with the other hosts rehearsing it.
 
-    Every run of the night (evening, hourly updates, morning verification) is
-    placed as a job in the database job store at ``seconds_per_hour`` real
-    seconds per hour of the night, counted from the first run; each job uses its
-    planned time as its logical clock.  For demonstrations and tests: a person
-    sees a whole night within a minute.
+    Every run of the night (evening, hourly updates, morning verification) is offered to the hosts
+    (:mod:`advisory.runs.claims`) at ``seconds_per_hour`` real seconds per hour of the night, counted
+    from the first run, by the first host to offer them; each run uses its planned time as its
+    logical clock.  Any number of processes may rehearse the same night on one database: each run is
+    claimed by one of them, and a process that dies has its claims taken over after ``takeover_s``
+    seconds.  For demonstrations and tests: a person sees a whole night within a minute.  Returns
+    when every run of the night is done (or given up), or on SIGTERM / SIGINT after the running run.
 
-    Returns the number of runs executed.
+    Returns the number of the night's runs done (by this process or another).
     """
     import threading
 
-    from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_EXECUTED
     from apscheduler.executors.pool import ThreadPoolExecutor
-    from apscheduler.jobstores.sqlalchemy import SQLAlchemyJobStore
+    from apscheduler.jobstores.memory import MemoryJobStore
     from apscheduler.schedulers.background import BackgroundScheduler
+
+    from advisory.runs import claims
 
     s = settings or PlannerSettings(kinds=(EVENING, UPDATE, MORNING))
     runs = night_runs(load_block_clocks(db), night, s)
     if not runs:
         echo(f"night {night}: nothing to run")
         return 0
+    takeover_s = claims.TAKEOVER_S if takeover_s is None else takeover_s
+    beat_s, look_s = _takeover_every(takeover_s)
     first = runs[0].run_at
     wall0 = dt.datetime.now(dt.UTC) + dt.timedelta(seconds=1)
-    done = threading.Event()
-    executed = []
-    remaining = {r.key for r in runs}
 
-    scheduler = BackgroundScheduler(jobstores={"default": SQLAlchemyJobStore(engine=db.engine)},
+    def wall(r: PlannedRun) -> dt.datetime:
+        return wall0 + dt.timedelta(seconds=(r.run_at - first).total_seconds() / 3600 * seconds_per_hour)
+
+    keys = [r.key for r in runs]
+    claims.offer(db, runs, due_at=wall)
+    due = claims.due_times(db, keys)  # another host's clock, if it offered them first
+    worker = _Worker(db, claims.host_name(), takeover_s=takeover_s, grace_min=None,
+                     now_fn=lambda: dt.datetime.now(dt.UTC), echo=echo, keys=keys)
+    scheduler = BackgroundScheduler(jobstores={"default": MemoryJobStore()},
                                     executors={"default": ThreadPoolExecutor(1)},
-                                    job_defaults={"max_instances": 1, "misfire_grace_time": 3600},
+                                    job_defaults={"max_instances": 1, "misfire_grace_time": None, "coalesce": True},
                                     timezone=dt.UTC)
-
-    def listener(event):
-        remaining.discard(event.job_id)
-        executed.append(event.job_id)
-        if event.exception is not None:
-            echo(f"  run {event.job_id} failed: {event.exception}")
-        if not remaining:
-            done.set()
-
-    scheduler.add_listener(listener, EVENT_JOB_EXECUTED | EVENT_JOB_ERROR)
     stopped: list[int] = []
     previous = {sig: signal.getsignal(sig) for sig in (signal.SIGTERM, signal.SIGINT)}
 
     def _stop(signum, _frame):
-        # the running job finishes (stored and delivered); the runs not started are dropped
+        # the running run finishes (stored and delivered); the runs not started are left to the others
         echo(f"received signal {signum}: stopping after the running run")
         stopped.append(signum)
-        done.set()
+        worker.stop.set()
 
     main_thread = threading.current_thread() is threading.main_thread()
     if main_thread:
         for sig in previous:
             signal.signal(sig, _stop)
-    scheduler.start(paused=True)
+    now = dt.datetime.now(dt.UTC)
+    for at in sorted({max(due[r.key], now) for r in runs}):
+        scheduler.add_job(worker.work, "date", run_date=at, id=f"wake:{at:%Y%m%dT%H%M%S.%fZ}")
     for r in runs:
-        wall = wall0 + dt.timedelta(seconds=(r.run_at - first).total_seconds() / 3600 * seconds_per_hour)
-        scheduler.add_job(execute_run, "date", run_date=wall, id=r.key, replace_existing=True,
-                          args=[db.url, r.kind, r.night.isoformat(), list(r.block_ids), r.run_at.isoformat(),
-                                r.key])
         echo(f"  placed {r.kind:<8} {r.run_at:%H:%M}Z for {len(r.block_ids)} block(s) "
-             f"-> in {(wall - wall0).total_seconds() + 1:.0f} s")
-    scheduler.resume()
-    total = (runs[-1].run_at - first).total_seconds() / 3600 * seconds_per_hour + 60
+             f"-> in {max(0.0, (due[r.key] - now).total_seconds()):.0f} s")
+    scheduler.add_job(worker.work, "interval", seconds=look_s, id="claims", next_run_time=now)
+    beat_stop = threading.Event()
+    beats = threading.Thread(target=worker.heartbeat, args=(beat_s, beat_stop), name="heartbeat", daemon=True)
+    beats.start()
+    scheduler.start()
+    deadline = max(due.values()) + dt.timedelta(seconds=60 + 3 * takeover_s)
+    finished = (claims.DONE, claims.FAILED)
+    done_n = 0
     try:
-        done.wait(timeout=total)
-        if stopped:
-            for job in scheduler.get_jobs():
-                with _quiet():
-                    job.remove()
+        while not stopped:
+            st = claims.states(db, keys)
+            done_n = sum(st.get(k) == claims.DONE for k in keys)
+            if all(st.get(k) in finished for k in keys) or dt.datetime.now(dt.UTC) > deadline:
+                break
+            worker.stop.wait(0.25)
+        worker.stop.set()
         scheduler.shutdown(wait=True)
     finally:
+        beat_stop.set()
+        beats.join(timeout=5)
         if main_thread:
             for sig, handler in previous.items():
                 signal.signal(sig, handler)
-    echo(f"night {night}: {len(executed)} of {len(runs)} runs executed"
+    st = claims.states(db, keys)
+    done_n = sum(st.get(k) == claims.DONE for k in keys)
+    echo(f"night {night}: {done_n} of {len(runs)} runs executed ({len(worker.executed)} here)"
          + (" (stopped by a signal; run the rehearsal again for the rest)" if stopped else ""))
-    return len(executed)
+    return done_n
 
 
 class _quiet:

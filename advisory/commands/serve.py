@@ -26,6 +26,9 @@ def register(sub) -> None:
     p.add_argument("--stop-after", type=float, metavar="SECONDS", help="stop by itself after this long")
     p.add_argument("--retry-every", type=float, default=60.0, metavar="SECONDS",
                    help="how often failed deliveries are retried (default 60 s; each waits its own pause)")
+    p.add_argument("--takeover-after", type=float, default=None, metavar="SECONDS",
+                   help="a run claimed by a host that has not shown a sign of life for this long is taken over "
+                        "by another host serving the same database (default 120 s)")
     add_date_limits(p, "rehearsal night")
     p.set_defaults(func=run)
 
@@ -34,6 +37,8 @@ def run(args) -> int:
     logging.basicConfig(level=logging.WARNING, format="%(asctime)s %(name)s %(levelname)s %(message)s")
     db = Database(args.db)
     settings = schedule.PlannerSettings(update_interval_min=args.update_every_min, grace_min=args.grace_min)
+    if args.takeover_after is not None and args.takeover_after <= 0:
+        raise InputError("must be positive", field="--takeover-after")
     if args.rehearse:
         try:
             night = dt.date.fromisoformat(args.rehearse)
@@ -43,10 +48,11 @@ def run(args) -> int:
             raise InputError("must be positive", field="--seconds-per-hour")
         check_date_window(db, night, None, args, field="--rehearse", what="night")
         settings.kinds = (schedule.EVENING, schedule.UPDATE, schedule.MORNING)
-        schedule.rehearse(db, night, seconds_per_hour=args.seconds_per_hour, settings=settings)
+        schedule.rehearse(db, night, seconds_per_hour=args.seconds_per_hour, settings=settings,
+                          takeover_s=args.takeover_after)
         return 0
     if args.retry_every <= 0:
         raise InputError("must be positive", field="--retry-every")
     schedule.serve(db, planner_every_min=args.planner_every_min, settings=settings, stop_after_s=args.stop_after,
-                   retry_every_s=args.retry_every)
+                   retry_every_s=args.retry_every, takeover_s=args.takeover_after)
     return 0

@@ -15,6 +15,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from advisory import assessment as asm
+from advisory.runs import claims
 from advisory.store.schema import (
     RunRecord,
 )
@@ -78,6 +79,8 @@ def _mark_run(session_or_db, key: str | None, status: str, now: dt.datetime, det
                 row.finished_at = now
             if detail:
                 row.detail = {**(row.detail or {}), **detail}
+        if status == "finished":  # the run's claim among the hosts is done with it (same transaction)
+            claims.mark_done(s, key, now)
 
     if isinstance(session_or_db, Session):
         _do(session_or_db)

@@ -11,6 +11,7 @@ from collections.abc import Collection, Mapping, Sequence
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from advisory.runs import claims
 from advisory.runs.blocks import _chunked
 from advisory.runs.save import StoredNotice
 from advisory.store.schema import (
@@ -79,6 +80,7 @@ def _deliver(db, to_send: list[tuple[Notice | StoredNotice, list]], settings, *,
         kw["published"] = published
     counts: dict[str, int] = defaultdict(int)
     with db.transaction() as session:
+        claims.lock(session, claims.DELIVERY_LOCK)  # hosts deliver one at a time (nothing sent twice)
         batch = _attached(session, to_send)
         wanted = set(deliver_mod.CHANNELS)
         parts = _outbox_plan(batch, settings, wanted)

@@ -438,6 +438,34 @@ class RunRecord(Base):
     detail: Mapped[dict[str, Any]] = mapped_column(default=dict)
 
 
+class RunClaim(Base):
+    """A planned run offered to every host serving the database; one host claims it at a time.
+
+    ``key`` is the run's key (:attr:`advisory.schedule.PlannedRun.key`, the same on every host).
+    ``state``: ``pending`` (offered), ``running`` (claimed by ``host``, kept alive by its
+    ``heartbeat_at``), ``done`` (marked in the transaction that marks the run finished), ``failed``
+    (gave up after a bounded number of attempts).  ``due_at`` is the wall time to start it (the
+    planned time, or its place on a rehearsal's compressed clock); ``run_at`` the run's logical clock.
+    """
+
+    __tablename__ = "run_claims"
+    __table_args__ = (UniqueConstraint("key"), Index("ix_run_claims_state_due", "state", "due_at"))
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    key: Mapped[str] = mapped_column(String(300))
+    kind: Mapped[str] = mapped_column(String(20))
+    night: Mapped[dt.date] = mapped_column(Date)
+    run_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    due_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    block_ids: Mapped[list[int]] = mapped_column(JSON, default=list)
+    state: Mapped[str] = mapped_column(String(12), default="pending")
+    host: Mapped[str | None] = mapped_column(String(200), nullable=True)
+    heartbeat_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime, nullable=True)
+    attempts: Mapped[int] = mapped_column(Integer, default=0)
+    finished_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime, nullable=True)
+    error: Mapped[str | None] = mapped_column(Text, nullable=True)
+
+
 class WebUser(Base):
     """A person who signs in to the web console: an agent (given farms, or all) or a grower (one farm)."""
 
