@@ -17,10 +17,13 @@ keys, so that planning the same run twice, restarting mid-run or rerunning a
 night never sends a notice twice.
 
 :func:`serve` runs the planner every few minutes inside an APScheduler 3.x
-scheduler whose run jobs live in the project's database (SQLAlchemy job
-store), so that a restart finds them again.  A run found more than the grace
-time late is not run; for an evening run the block's recipients get a notice
-that it was missed instead.
+scheduler.  The runs it plans are offered to every host serving the database as
+rows of ``run_claims`` (:mod:`advisory.runs.claims`): each is claimed and run by
+one host, and taken over by another when its host stops refreshing its heartbeat.
+The scheduler's job store is this process's memory: it only wakes the local loop
+at each run's time (APScheduler's SQLAlchemy job store is not safe across hosts).
+A run found more than the grace time late is not run; for an evening run the
+block's recipients get a notice that it was missed instead.
 """
 
 from __future__ import annotations
@@ -427,7 +430,7 @@ def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None =
     scheduler.add_job(planner_tick, "interval", minutes=planner_every_min, id="planner",
                       next_run_time=dt.datetime.now(dt.UTC), executor="planner")
     # the runs' thread: what other hosts left (a dead host's claims), between the planned wake-ups
-    scheduler.add_job(worker.work, "interval", seconds=look_s, id="claims", coalesce=True,
+    scheduler.add_job(worker.work, "interval", seconds=look_s, id="claims", coalesce=True, max_instances=3,
                       next_run_time=dt.datetime.now(dt.UTC) + dt.timedelta(seconds=look_s))
     # in the runs' own thread: a retry never overlaps a run (a run's notices are delivered by the run)
     scheduler.add_job(retry_tick, "interval", seconds=retry_every_s, id="retry",
@@ -510,7 +513,7 @@ def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: Pla
     for r in runs:
         echo(f"  placed {r.kind:<8} {r.run_at:%H:%M}Z for {len(r.block_ids)} block(s) "
              f"-> in {max(0.0, (due[r.key] - now).total_seconds()):.0f} s")
-    scheduler.add_job(worker.work, "interval", seconds=look_s, id="claims", next_run_time=now)
+    scheduler.add_job(worker.work, "interval", seconds=look_s, id="claims", next_run_time=now, max_instances=3)
     beat_stop = threading.Event()
     beats = threading.Thread(target=worker.heartbeat, args=(beat_s, beat_stop), name="heartbeat", daemon=True)
     beats.start()

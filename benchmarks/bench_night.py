@@ -1,6 +1,6 @@
 """Benchmark: one evening run for 10,000 blocks on 200 stations, and the planner.
 
-Builds, in a temporary SQLite database, an invented (seeded) set-up: a few farms
+Builds, in a temporary SQLite database (or with ``--db-url`` a new database on a PostgreSQL server), an invented (seeded) set-up: a few farms
 in several time zones (one in the southern hemisphere), ``--stations`` stations
 with a day and a half of 15-minute readings each ending a few hours after
 sunset (a clear, calm, dry evening: a radiation-frost night, so that many
@@ -56,7 +56,9 @@ Usage::
 
     .venv/bin/python benchmarks/bench_night.py [--blocks 10000] [--stations 200] [--seed 11]
         [--outbox settings|lean|json|full] [--history-nights 0] [--runs evening,rerun,update,planner]
-        [--keep DIR] [--profile FILE.prof] [--tree-memory]
+        [--keep DIR] [--profile FILE.prof] [--tree-memory] [--db-url URL|test]
+
+On PostgreSQL: ``bash .ci/pg-cluster run .venv/bin/python benchmarks/bench_night.py --db-url test``.
 """
 
 from __future__ import annotations
@@ -467,6 +469,9 @@ def main() -> None:
     ap.add_argument("--tree-memory", action="store_true",
                     help="also sample the memory of the run and its forked copies together (slows the run)")
     ap.add_argument("--profile", help="write a cProfile of the evening run to this file")
+    ap.add_argument("--db-url", metavar="URL",
+                    help="build in a new database on this PostgreSQL server (the URL of any database there; "
+                         "'test' for $ADVISORY_TEST_DB), dropped afterwards; default a temporary SQLite file")
     ap.add_argument("--child", help=argparse.SUPPRESS)
     ap.add_argument("--db", help=argparse.SUPPRESS)
     ap.add_argument("--outbox-dir", help=argparse.SUPPRESS)
@@ -481,6 +486,12 @@ def main() -> None:
         p.unlink(missing_ok=True)
     shutil.rmtree(work / "outbox", ignore_errors=True)
     url = f"sqlite:///{db_path}"
+    server = None
+    if args.db_url:
+        server = args.db_url if args.db_url != "test" else os.environ.get("ADVISORY_TEST_DB")
+        if not server:
+            raise SystemExit("--db-url test: ADVISORY_TEST_DB is not set (bash .ci/pg-cluster run ...)")
+        url = _server_database(server, f"bench_night_{os.getpid()}", create=True)
     try:
         t0 = time.perf_counter()
         info = build(url, args.blocks, args.stations, args.seed, args.history_nights)
@@ -508,8 +519,29 @@ def main() -> None:
             verdict.append(f"planner <= 5 s: {'met' if pl['plan_s'] <= 5.0 else 'NOT met'}")
         print("targets: " + "; ".join(verdict))
     finally:
+        if server is not None and not args.keep:
+            _server_database(server, f"bench_night_{os.getpid()}", create=False)
         if not args.keep:
             shutil.rmtree(work, ignore_errors=True)
+
+
+def _server_database(server_url: str, name: str, *, create: bool) -> str:
+    """Create (or drop) the database ``name`` on the server of ``server_url``; its URL."""
+    from sqlalchemy import create_engine, text
+    from sqlalchemy.engine import make_url
+
+    u = make_url(server_url)
+    if u.drivername == "postgresql":
+        u = u.set(drivername="postgresql+psycopg")
+    admin = create_engine(u.set(database="postgres"), isolation_level="AUTOCOMMIT")
+    try:
+        with admin.connect() as c:
+            c.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
+            if create:
+                c.execute(text(f'CREATE DATABASE "{name}"'))
+    finally:
+        admin.dispose()
+    return u.set(database=name).render_as_string(hide_password=False)
 
 
 if __name__ == "__main__":
