@@ -274,12 +274,13 @@ class _Worker:
             self._run(c)
 
     def _run(self, c) -> None:
-        from advisory.runs import claims, planned
+        from advisory.runs import claims, planned, record
         from advisory.store.retry import with_retries
 
         now = self.now_fn()
         try:
-            if self.grace_min is not None and now - c.due_at > dt.timedelta(minutes=self.grace_min):
+            late = self.grace_min is not None and now - c.due_at > dt.timedelta(minutes=self.grace_min)
+            if late and record.run_status(self.db, c.key) not in ("stored", "finished"):  # (stored: deliver)
                 if c.kind == EVENING:
                     planned.record_missed(self.db, c.night, list(c.block_ids), key=c.key, run_at=c.run_at, now=now)
                 self.missed.append(c.key)

@@ -89,6 +89,12 @@ def _mark_run(session_or_db, key: str | None, status: str, now: dt.datetime, det
             _do(s)
 
 
+def run_status(db, key: str) -> str | None:
+    """The recorded status of run ``key`` ("running", "stored", "finished"), None if it never started."""
+    with db.transaction() as s:
+        return s.scalar(select(RunRecord.status).where(RunRecord.key == key))
+
+
 def finished_run_keys(db, keys: Sequence[str]) -> set[str]:
     if not keys:
         return set()
