@@ -79,8 +79,9 @@ def offer(db, runs: Iterable, *, due_at=None) -> int:
         lock(s, PLANNER_LOCK)  # one host offers at a time (the same rows in the same order: no waits in a circle)
         for k in range(0, len(rows), 500):
             part = rows[k:k + 500]
-            res = s.execute(_insert(s).values(part).on_conflict_do_nothing(index_elements=["key"]))
-            new += max(res.rowcount or 0, 0)
+            res = s.execute(_insert(s).values(part).on_conflict_do_nothing(index_elements=["key"])
+                            .returning(RunClaim.id))
+            new += len(res.all())
     return new
 
 
