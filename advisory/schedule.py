@@ -442,13 +442,24 @@ def serve(db, *, planner_every_min: int = 10, settings: PlannerSettings | None =
         stop.wait(timeout=stop_after_s)
     finally:
         worker.stop.set()
-        scheduler.shutdown(wait=True)
+        _shut_down(scheduler)
         stop.set()
         beats.join(timeout=5)
         if threading.current_thread() is threading.main_thread():
             for sig, handler in previous.items():
                 signal.signal(sig, handler)
         echo("scheduler stopped")
+
+
+def _shut_down(scheduler) -> None:
+    """Stop a running scheduler: its jobs first, under the scheduler's own lock, then the scheduler.
+
+    APScheduler 3 marks itself stopped before it takes its lock, so a wake-up being processed at that
+    moment finds its finished job gone and dies with a JobLookupError in its thread; removing the jobs
+    first (which waits for that pass) leaves nothing for it to trip on.
+    """
+    scheduler.remove_all_jobs()
+    scheduler.shutdown(wait=True)
 
 
 def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: PlannerSettings | None = None,
@@ -530,7 +541,7 @@ def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: Pla
                 break
             worker.stop.wait(0.25)
         worker.stop.set()
-        scheduler.shutdown(wait=True)
+        _shut_down(scheduler)
     finally:
         beat_stop.set()
         beats.join(timeout=5)
