@@ -41,7 +41,7 @@ from pathlib import Path
 import pandas as pd
 
 from advisory.errors import InputError
-from advisory.ingest.outlook import _norm, _number, _sniff_delimiter, read_text
+from advisory.ingest.outlook import _norm, _number, _sniff_delimiter, read_text, split_csv
 
 __all__ = ["NIGHT_OUTLOOK_COLUMNS", "is_night_outlook_header", "parse_night_outlook_csv", "read_night_outlook_csv",
            "read_text", "localize_time", "NightOutlookImport", "import_night_outlook", "load_night_outlooks"]
@@ -128,13 +128,7 @@ def parse_night_outlook_csv(text: str, *, name: str = "<night outlook>", station
         unreadable number or time, a value out of range, a row with neither sky
         nor wind, a station and hour given twice.
     """
-    rows = [(i + 1, ln) for i, ln in enumerate(text.splitlines())]
-    content = [(n, ln) for n, ln in rows if ln.strip() and not ln.lstrip().startswith("#")]
-    if not content:
-        raise InputError("the file is empty", file=name)
-    delimiter = _sniff_delimiter(text)
-    header_line, header_text = content[0]
-    headers = next(csv.reader([header_text], delimiter=delimiter))
+    content, delimiter, header_line, headers = split_csv(text, name)
     cols = _columns(headers, name, header_line)
     if "station" not in cols and not station:
         raise InputError("no 'station' column; add one or name the station for the whole file",

@@ -37,7 +37,7 @@ import pandas as pd
 
 from advisory.errors import InputError
 
-__all__ = ["OUTLOOK_COLUMNS", "parse_outlook_csv", "read_outlook_csv", "read_text"]
+__all__ = ["OUTLOOK_COLUMNS", "parse_outlook_csv", "read_outlook_csv", "read_text", "split_csv"]
 
 #: Columns of the returned frame, in order.
 OUTLOOK_COLUMNS = ("station", "date", "high_c", "low_c", "min_rel_humidity_pct", "line")
@@ -116,6 +116,21 @@ def _sniff_delimiter(sample: str) -> str:
     return best if counts[best] else ","
 
 
+def split_csv(text: str, name: str):
+    """The content lines of an outlook CSV (blank and ``#`` lines skipped), its delimiter and its header.
+
+    Returns ``(content, delimiter, header_line, headers)``: ``content`` is a list of ``(line number, text)``
+    with the header first; raises :class:`InputError` for an empty file.
+    """
+    rows = [(i + 1, ln) for i, ln in enumerate(text.splitlines())]
+    content = [(n, ln) for n, ln in rows if ln.strip() and not ln.lstrip().startswith("#")]
+    if not content:
+        raise InputError("the file is empty", file=name)
+    delimiter = _sniff_delimiter(text)
+    header_line, header_text = content[0]
+    return content, delimiter, header_line, next(csv.reader([header_text], delimiter=delimiter))
+
+
 def parse_outlook_csv(text: str, *, name: str = "<outlook>", station: str | None = None) -> pd.DataFrame:
     """Parse outlook CSV text.
 
@@ -144,13 +159,7 @@ def parse_outlook_csv(text: str, *, name: str = "<outlook>", station: str | None
         Empty file, missing columns, an unreadable number or date, a value out
         of range, a low above the high, a duplicate station and date.
     """
-    rows = [(i + 1, ln) for i, ln in enumerate(text.splitlines())]
-    content = [(n, ln) for n, ln in rows if ln.strip() and not ln.lstrip().startswith("#")]
-    if not content:
-        raise InputError("the file is empty", file=name)
-    delimiter = _sniff_delimiter(text)
-    header_line, header_text = content[0]
-    headers = next(csv.reader([header_text], delimiter=delimiter))
+    content, delimiter, header_line, headers = split_csv(text, name)
     try:
         cols = _resolve_columns(headers, name)
     except InputError as exc:
