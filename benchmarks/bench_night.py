@@ -30,7 +30,7 @@ own), it measures:
   notices only where the change is material);
 * ``planner``: :func:`advisory.schedule.plan` for all blocks over one day.
 
-Targets (issue 6, item 8): evening run at most 10 s and at most 1 GiB peak on
+Targets: evening run at most 10 s and at most 1 GiB peak on
 this machine; planner at most 5 s.
 
 The outbox is written as the settings say (``ADVISORY_OUTBOX_FORMATS`` and

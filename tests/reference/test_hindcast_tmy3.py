@@ -2,7 +2,7 @@
 
 Data: ``pvlib/data/723170TYA.CSV`` (36.1° N, 79.95° W, 273 m; hour-ending local standard
 time, UTC-5; months spliced from different years), converted by ``tests/helpers/tmy3.py``
-to the canonical CSV.  Targets are the issue's, set against an Allen-type least-squares
+to the canonical CSV.  Targets are set against an Allen-type least-squares
 baseline measured on the same file with the same rolling origin.
 
 A second real file shipped with pvlib, ``703165TY.csv`` (a maritime subarctic site at
@@ -31,19 +31,19 @@ def summary(tmp_path_factory):
 
 
 def test_nights_counted(summary):
-    # issue: 323 nights after the first 30 (the baseline's count with the same windows)
+    # 323 nights after the first 30 (the baseline's count with the same windows)
     assert summary["calibrated"]["nights"] == 323
     assert summary["physical"]["nights"] == 30
     assert summary["frost"]["warning_probability"] == WARNING_PROBABILITY == 0.1
 
 
 def test_calibrated_mae(summary):
-    # issue target: MAE <= 1.75 °C over all calibrated nights (baseline 1.80)
+    # target: MAE <= 1.75 °C over all calibrated nights (baseline 1.80)
     assert summary["calibrated"]["mae_c"] <= 1.75
 
 
 def test_radiative_evenings(summary):
-    # issue target: MAE <= 1.35 °C on radiative evenings (baseline 1.47) ...
+    # target: MAE <= 1.35 °C on radiative evenings (baseline 1.47) ...
     rad = summary["calibrated"]["radiative"]
     assert rad["nights"] > 100
     assert rad["mae_c"] <= 1.35
@@ -54,14 +54,14 @@ def test_radiative_evenings(summary):
 
 def test_frost_probability(summary):
     f = summary["frost"]
-    # issue targets: Brier <= 0.032 (baseline 0.036); hit rate >= 0.95 with FAR <= 0.38 (baseline 0.45)
+    # target: Brier <= 0.032 (baseline 0.036); hit rate >= 0.95 with FAR <= 0.38 (baseline 0.45)
     assert f["brier"] <= 0.032
     assert f["hit_rate"] >= 0.95
     assert f["false_alarm_ratio"] <= 0.38
 
 
 def test_physical_model_nights(summary):
-    # issue target: MAE <= 2.5 °C on the nights before 30 nights of history
+    # target: MAE <= 2.5 °C on the nights before 30 nights of history
     assert summary["physical"]["mae_c"] <= 2.5
 
 
@@ -80,7 +80,7 @@ def test_reliability_table(summary):
 
 
 def _allen_baseline(rows: pd.DataFrame):
-    """Allen-type least squares on evening T, Td, wind, cloud, refit each night (issue's baseline)."""
+    """Allen-type least squares on evening T, Td, wind, cloud, refit each night (the yardstick baseline)."""
     x = np.column_stack([np.ones(len(rows)), rows["air_temp_c"], rows["dew_point_c"],
                          rows["wind_speed_ms"].fillna(0.0), rows["cloud_cover_pct"].fillna(0.0)])
     y = rows["observed_min_c"].to_numpy()
