@@ -78,7 +78,7 @@ def stage_checks(session: Session, blocks: Sequence[Block], night: dt.date, end_
     start = pd.Timestamp(int(min(since_rec.min(), since_bio.min())), tz="UTC")
     sids = np.array([blocks[i].station_id for i in rows], np.int64)
     obs = load_observations_many(session, sorted(set(sids.tolist())), start.to_pydatetime(),
-                                 pd.Timestamp(end_utc).to_pydatetime(), columns=["air_temp_c"])
+                                 pd.Timestamp(end_utc).ceil("us").to_pydatetime(), columns=["air_temp_c"])
     crops = [blocks[i].crop for i in rows]
     heat = [phenology.crop_heat(c) for c in crops]
     base = np.array([h.base_c for h in heat])
