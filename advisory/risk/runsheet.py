@@ -317,7 +317,8 @@ def _reach(sheet: RunSheet, row: RunSheetRow) -> str:
     if row.reached:
         return f"crew expected to reach it ({saving})"
     return (f"crew not expected to reach it: the crew of {sheet.crew_size} is at blocks with larger "
-            f"expected savings ({saving})")
+            f"expected savings ({saving}); call in more hands, or start it before the crew is tied up, "
+            "if that can be done safely")
 
 
 def _title(sheet: RunSheet) -> str:
