@@ -62,14 +62,7 @@ def do_list(args) -> int:
         return _list_undelivered(db, args, night)
     with db.transaction() as s:
         blk = aliased(Block)
-        q = (select(Notice, Farm.name, blk.name).join(Farm, Notice.farm_id == Farm.id)
-             .outerjoin(blk, Notice.block_id == blk.id))
-        if args.farm:
-            q = q.where(Farm.name == args.farm)
-        if night:
-            q = q.where(Notice.night == night)
-        if args.block:
-            q = q.where(blk.name == args.block)
+        q = _selected(select(Notice, Farm.name, blk.name), blk, args, night)
         q = q.order_by(Notice.night.desc(), Farm.name, blk.name, Notice.revision).limit(max(1, args.limit))
         rows = s.execute(q).all()
         ids = [n.id for n, _, _ in rows]
@@ -95,19 +88,24 @@ def do_list(args) -> int:
     return 0
 
 
+def _selected(q, blk, args, night):
+    """``q`` over notices joined to their farm and (aliased) block, narrowed by --farm, --night and --block."""
+    q = q.join(Farm, Notice.farm_id == Farm.id).outerjoin(blk, Notice.block_id == blk.id)
+    if args.farm:
+        q = q.where(Farm.name == args.farm)
+    if night:
+        q = q.where(Notice.night == night)
+    if args.block:
+        q = q.where(blk.name == args.block)
+    return q
+
+
 def _list_undelivered(db, args, night) -> int:
     with db.transaction() as s:
         ids = None
         if args.farm or night or args.block:
             blk = aliased(Block)
-            q = select(Notice.id).join(Farm, Notice.farm_id == Farm.id).outerjoin(blk, Notice.block_id == blk.id)
-            if args.farm:
-                q = q.where(Farm.name == args.farm)
-            if night:
-                q = q.where(Notice.night == night)
-            if args.block:
-                q = q.where(blk.name == args.block)
-            ids = list(s.scalars(q))
+            ids = list(s.scalars(_selected(select(Notice.id), blk, args, night)))
         items = deliver.undelivered(s, ids)
         fallback = {}
         if items:

@@ -630,12 +630,6 @@ def smtp_send(settings, msg: EmailMessage, address: str, *, smtp_factory=smtplib
 
 def _send_webhook(r: _Rendered, settings, recipient: Recipient, url: str, *, urlopen, clock,
                   timeout_s: float, delivery_id: str) -> str:
-    if not url.lower().startswith(("http://", "https://")):
-        raise PermanentError(f"webhook address must start with http:// or https://: {url!r}")
-    secret = settings.webhook_secret
-    if not secret:
-        raise PermanentError("no webhook secret set (ADVISORY_WEBHOOK_SECRET or [webhook] secret in the "
-                             "settings file); refusing to send an unsigned notice")
     return post_signed(settings, url, r.get("json").encode("utf-8"), r.n.key, delivery_id, urlopen=urlopen,
                        clock=clock, timeout_s=timeout_s)
 
