@@ -20,6 +20,7 @@ import pandas as pd
 
 from advisory.crops import chill, phenology
 from advisory.ingest.observations import load_observations_many
+from advisory.physics.sun import local_midnight_utc
 from advisory.store import queries
 from advisory.store.schema import Block
 
@@ -56,10 +57,6 @@ class StageRow:
         return asdict(self)
 
 
-def _local_midnight_utc(day: dt.date, zone: str) -> pd.Timestamp:
-    return pd.Timestamp(dt.datetime.combine(day, dt.time(0), zoneinfo.ZoneInfo(zone))).tz_convert("UTC")
-
-
 def _range(crop: str, est: phenology.StageEstimate, i: int) -> str | None:
     lo, hi = phenology.stage_name(crop, int(est.early_idx[i])), phenology.stage_name(crop, int(est.late_idx[i]))
     if lo is None or hi is None:
@@ -84,8 +81,8 @@ def stage_rows(session, blocks: list[Block], today: dt.date | None = None) -> li
             biofix = phenology.biofix_date(day, b.latitude, (fs.get("biofix") or {}).get(b.crop), b.crop)
             cstart = chill.chill_start_date(day, b.latitude, fs.get("chill_start"))
             rows.append((b, day, biofix, cstart, zone))
-        start = min(_local_midnight_utc(min(r[2], r[3], min(r[0].stage_date, r[1])), r[4]) for r in rows)
-        end = max(_local_midnight_utc(r[1] + dt.timedelta(days=1), r[4]) for r in rows)
+        start = min(local_midnight_utc(min(r[2], r[3], min(r[0].stage_date, r[1])), r[4]) for r in rows)
+        end = max(local_midnight_utc(r[1] + dt.timedelta(days=1), r[4]) for r in rows)
         plans.append((sid, rows, start, end))
     frames = {}
     for sid, _rows, start, end in plans:
@@ -100,9 +97,9 @@ def stage_rows(session, blocks: list[Block], today: dt.date | None = None) -> li
         heat = [phenology.crop_heat(c) for c in crops]
         base = np.array([h.base_c if h else np.nan for h in heat])
         upper = np.array([h.upper_c if h else np.inf for h in heat])
-        ends = np.array([_local_midnight_utc(r[1] + dt.timedelta(days=1), r[4]).to_datetime64() for r in rows])
-        bio = np.array([_local_midnight_utc(r[2], r[4]).to_datetime64() for r in rows])
-        rec = np.array([_local_midnight_utc(r[0].stage_date, r[4]).to_datetime64() for r in rows])
+        ends = np.array([local_midnight_utc(r[1] + dt.timedelta(days=1), r[4]).to_datetime64() for r in rows])
+        bio = np.array([local_midnight_utc(r[2], r[4]).to_datetime64() for r in rows])
+        rec = np.array([local_midnight_utc(r[0].stage_date, r[4]).to_datetime64() for r in rows])
         grid = np.broadcast_to(temp, (n, len(temp)))
         g_bio, h_bio, f_bio = phenology.degree_days_from_readings(times, grid, np.nan_to_num(base), upper,
                                                                   since_utc=bio, until_utc=ends)
@@ -113,9 +110,9 @@ def stage_rows(session, blocks: list[Block], today: dt.date | None = None) -> li
                                                    np.where(np.isfinite(base), g_rec, np.nan))
         rec_idx = phenology.stage_index(crops, [r[0].stage for r in rows])
         # Chill: hourly means on one grid for the station, each block from its chill start.
-        cs = min(_local_midnight_utc(r[3], r[4]) for r in rows)
+        cs = min(local_midnight_utc(r[3], r[4]) for r in rows)
         hours, hourly = chill.hourly_grid(times, temp, cs, max(pd.Timestamp(e).tz_localize("UTC") for e in ends))
-        hmask = np.array([(hours >= _local_midnight_utc(r[3], r[4]))
+        hmask = np.array([(hours >= local_midnight_utc(r[3], r[4]))
                           & (hours < pd.Timestamp(ends[i]).tz_localize("UTC")) for i, r in enumerate(rows)])
         block_hourly = np.where(hmask, np.broadcast_to(hourly, hmask.shape), np.nan)
         utah, _low = chill.utah_chill_units(block_hourly)
@@ -146,7 +143,7 @@ def stage_rows(session, blocks: list[Block], today: dt.date | None = None) -> li
                 utah_cu=round(float(utah[i]), 1) if chill_hours[i] else None,
                 chill_portions=round(float(portions[i]), 1) if chill_hours[i] else None,
                 chill_hours_h=float(chill_hours[i]),
-                chill_lower_bound=(not len(first_h)) or first_h[0] > _local_midnight_utc(cstart, zone)
+                chill_lower_bound=(not len(first_h)) or first_h[0] > local_midnight_utc(cstart, zone)
                 + pd.Timedelta(hours=1),
                 chill_need_cu=f"{req.utah_cu_low:.0f}-{req.utah_cu_high:.0f}" if req else None,
                 chill_need_portions=f"{req.portions_low:.0f}-{req.portions_high:.0f}" if req else None,

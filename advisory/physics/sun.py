@@ -419,3 +419,23 @@ def night_of(when, tz: str) -> dt.date:
     local = ts.tz_convert(ZoneInfo(tz))
     d = local.date()
     return d if local.hour >= 12 else d - dt.timedelta(days=1)
+
+
+def local_midnight_utc(day: dt.date, tz: str) -> pd.Timestamp:
+    """The UTC instant of the start of a local calendar day.
+
+    Where a clock change skips or repeats midnight, the wall time is read as
+    :mod:`zoneinfo` reads it (``fold=0``), so no local day lacks a start.
+
+    Parameters
+    ----------
+    day : datetime.date
+    tz : str
+        IANA zone.
+
+    Returns
+    -------
+    pandas.Timestamp
+        Aware, in UTC.
+    """
+    return pd.Timestamp(dt.datetime.combine(day, dt.time(0), ZoneInfo(tz))).tz_convert("UTC")

@@ -14,9 +14,10 @@ from sqlalchemy.orm import Session, selectinload
 
 from advisory import assessment as asm
 from advisory.ingest.observations import load_observations_many
+from advisory.physics.sun import local_midnight_utc
 from advisory.risk import heat as risk_heat
 from advisory.runs.blocks import _chunked
-from advisory.runs.heat_refit import _f, _local_midnight_utc, _ts
+from advisory.runs.heat_refit import _f, _ts
 from advisory.runs.record import RunResult, _mark_run, _start_run
 from advisory.store.schema import Forecast, Verification
 
@@ -79,8 +80,8 @@ def daylight_window(payload: dict) -> tuple[pd.Timestamp, pd.Timestamp]:
     day = dt.date.fromisoformat(str(payload["night"]))
     tz = payload.get("farm_tz") or "UTC"
     rise, down = _ts(payload.get("sunrise_utc")), _ts(payload.get("sunset_utc"))
-    start = rise if rise is not None else _local_midnight_utc(day, tz)
-    end = down if down is not None else _local_midnight_utc(day + dt.timedelta(days=1), tz)
+    start = rise if rise is not None else local_midnight_utc(day, tz)
+    end = down if down is not None else local_midnight_utc(day + dt.timedelta(days=1), tz)
     return start, end
 
 

@@ -77,10 +77,6 @@ def _f(x) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def _local_midnight_utc(day: dt.date, tz: str) -> pd.Timestamp:
-    return pd.Timestamp(day).tz_localize(tz).tz_convert("UTC")
-
-
 def sun_by_date(latitude, longitude, tz, dates) -> pd.DataFrame:
     """Sunrise, solar noon and sunset of local calendar days (vectorised).
 
@@ -167,7 +163,7 @@ def fit_station_day_models(frame: pd.DataFrame, latitude: float, longitude: floa
         the defaults) and ``day_shape_days`` (days with a morning reading).
         None when fewer than 20 days allow a fit.
     """
-    end = _local_midnight_utc(day, tz)
+    end = sun.local_midnight_utc(day, tz)
     start = end - pd.Timedelta(days=history_days)
     hist = frame[(frame.index >= start) & (frame.index < end)] if len(frame) else frame
     if "air_temp_c" in hist:
@@ -214,8 +210,8 @@ def _fit_diurnal(hist: pd.DataFrame, sun_table: pd.DataFrame, tz: str) -> dict |
     tmin = daily["min"].where(ok).to_numpy(float)
     tmax = daily["max"].where(ok).to_numpy(float)
     nxt = np.r_[tmin[1:], np.nan]
-    mid = daytime.to_hours(pd.DatetimeIndex([_local_midnight_utc(d, tz) for d in dates]))
-    mid_next = daytime.to_hours(pd.DatetimeIndex([_local_midnight_utc(d + dt.timedelta(days=1), tz)
+    mid = daytime.to_hours(pd.DatetimeIndex([sun.local_midnight_utc(d, tz) for d in dates]))
+    mid_next = daytime.to_hours(pd.DatetimeIndex([sun.local_midnight_utc(d + dt.timedelta(days=1), tz)
                                                   for d in dates]))
     times = mid[:, None] + np.arange(25.0)[None, :]
     inside = times < mid_next[:, None]

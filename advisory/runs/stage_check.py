@@ -17,7 +17,6 @@ with a crop value and costs (nothing for a block without them: never a guess).
 from __future__ import annotations
 
 import datetime as dt
-import zoneinfo
 from collections.abc import Sequence
 
 import numpy as np
@@ -27,14 +26,14 @@ from sqlalchemy.orm import Session
 from advisory.crops import phenology, thresholds
 from advisory.errors import InputError
 from advisory.ingest.observations import load_observations_many
+from advisory.physics.sun import local_midnight_utc
 from advisory.risk import damage, economics
 from advisory.risk.frost_data import BlockRisk
 from advisory.store.schema import Block
 
 
 def _local_midnight_ns(day: dt.date, zone: str) -> int:
-    t = dt.datetime.combine(day, dt.time(0), zoneinfo.ZoneInfo(zone))
-    return pd.Timestamp(t).tz_convert("UTC").as_unit("ns").value
+    return local_midnight_utc(day, zone).as_unit("ns").value
 
 
 def stage_checks(session: Session, blocks: Sequence[Block], night: dt.date, end_utc: pd.Timestamp

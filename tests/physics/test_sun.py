@@ -155,3 +155,14 @@ def test_night_must_be_a_date():
     with pytest.raises(ValueError):
         sun.sun_times(36.1, -79.95, dt.datetime(2024, 4, 1, 12, tzinfo=dt.UTC), NY)
     assert np.isfinite(sun.sun_times(36.1, -79.95, "2024-04-01", NY).night_length_h)
+
+
+def test_local_midnight_utc_also_where_a_clock_change_skips_midnight():
+    import datetime as _dt
+
+    from advisory.physics.sun import local_midnight_utc
+
+    assert str(local_midnight_utc(_dt.date(2026, 4, 8), "America/Los_Angeles")) == "2026-04-08 07:00:00+00:00"
+    # Cuba springs forward at midnight (IANA tz database, America/Havana): the day still has a start
+    start = local_midnight_utc(_dt.date(2026, 3, 8), "America/Havana")
+    assert start.tz_convert("America/Havana").date() == _dt.date(2026, 3, 8)
