@@ -121,8 +121,24 @@ def _sign_in(driver, base, user):
     driver.get(base + "/login")
     driver.find_element(By.NAME, "username").send_keys(user)
     driver.find_element(By.NAME, "password").send_keys(PASSWORD)
-    driver.find_element(By.CSS_SELECTOR, "form button[type=submit]").click()
+    _follow(driver, driver.find_element(By.CSS_SELECTOR, "form button[type=submit]"))
     _wait_for(driver, "#overview")
+
+
+def _follow(driver, element) -> None:
+    """Click a link or a submit button and wait until the next page has replaced this one.
+
+    A click returns as soon as the browser has the event; reading the page at once can read the old
+    page (seen on a loaded CI machine), so wait for the old document to go stale and the new to load.
+    """
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support import expected_conditions as ec
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    old = driver.find_element(By.TAG_NAME, "html")
+    element.click()
+    WebDriverWait(driver, 30).until(ec.staleness_of(old))
+    WebDriverWait(driver, 30).until(lambda d: d.execute_script("return document.readyState") == "complete")
 
 
 def _wait_for(driver, css: str) -> None:
@@ -144,7 +160,7 @@ def test_agent_changes_a_stage_and_a_grower_cannot_open_another_farm(served, bro
     assert "Decision support only" in browser.page_source
     _shot(browser, "1-tonight-agent")
 
-    browser.find_element(By.LINK_TEXT, "Bench Gala").click()
+    _follow(browser, browser.find_element(By.LINK_TEXT, "Bench Gala"))
     assert "Bench Gala" in browser.find_element(By.TAG_NAME, "h1").text
     assert browser.find_elements(By.CSS_SELECTOR, "svg.chart")
     assert "T10 -2.2 °C, T90 -3.9 °C" in browser.find_element(By.ID, "critical").text
@@ -155,7 +171,7 @@ def test_agent_changes_a_stage_and_a_grower_cannot_open_another_farm(served, bro
     stage.send_keys("tight cluster")
     day = browser.find_element(By.NAME, "stage_date")
     browser.execute_script("arguments[0].value = '2026-04-09'", day)
-    browser.find_element(By.CSS_SELECTOR, "#stage-form button[type=submit]").click()
+    _follow(browser, browser.find_element(By.CSS_SELECTOR, "#stage-form button[type=submit]"))
     assert "Stage saved." in browser.page_source
     assert browser.find_element(By.ID, "current-stage").text == "tight cluster"
     assert "T10 -2.8 °C, T90 -6.1 °C" in browser.find_element(By.ID, "critical").text
@@ -165,23 +181,23 @@ def test_agent_changes_a_stage_and_a_grower_cannot_open_another_farm(served, bro
     stage = browser.find_element(By.NAME, "stage")
     stage.clear()
     stage.send_keys("purple haze")
-    browser.find_element(By.CSS_SELECTOR, "#stage-form button[type=submit]").click()
+    _follow(browser, browser.find_element(By.CSS_SELECTOR, "#stage-form button[type=submit]"))
     assert "stages in order" in browser.find_element(By.ID, "stage-error").text
     _shot(browser, "4-block-bad-stage")
 
-    browser.find_element(By.LINK_TEXT, "QR-BENCH").click()
+    _follow(browser, browser.find_element(By.LINK_TEXT, "QR-BENCH"))
     assert "Station QR-BENCH" in browser.find_element(By.TAG_NAME, "h1").text
     assert browser.find_elements(By.CSS_SELECTOR, "svg.chart") and "Quality flags" in browser.page_source
     _shot(browser, "7-station")
-    browser.find_element(By.LINK_TEXT, "Skill").click()
+    _follow(browser, browser.find_element(By.LINK_TEXT, "Skill"))
     assert "By station" in browser.page_source and browser.find_elements(By.CSS_SELECTOR, "svg.chart")
     _shot(browser, "8-skill")
-    browser.find_element(By.LINK_TEXT, "Heat day").click()
+    _follow(browser, browser.find_element(By.LINK_TEXT, "Heat day"))
     assert "Heat day" in browser.find_element(By.TAG_NAME, "h1").text
     assert "Bench Gala" in browser.find_element(By.ID, "overview").text
     _shot(browser, "9-heat-day")
 
-    browser.find_element(By.CSS_SELECTOR, "form.who button").click()
+    _follow(browser, browser.find_element(By.CSS_SELECTOR, "form.who button"))
     _wait_for(browser, "input[name=password]")  # signed out: the sign-in page
     _sign_in(browser, base, "ines-grower")
     table = browser.find_element(By.ID, "overview").text
