@@ -99,3 +99,26 @@ def test_list(farm_db, demo_farm, capsys):
     assert len(rows) == 12 and rows[0]["station"] == "QR-BENCH" and rows[0]["day"] == "2026-07-14"
     assert _run(farm_db, "list", "--station", "NOPE") == 2
     assert _run(farm_db, "list", "--since", "yesterday") == 2
+
+
+def test_list_shows_night_outlooks_by_night(farm_db, demo_farm, tmp_path, capsys):
+    night = tmp_path / "night.csv"
+    rows = ["station,time,sky_cover_pct,wind_speed_ms,air_temp_c"]
+    rows += [f"QR-BENCH,2026-04-08T{h:02d}:00,{90 if h < 24 else 10},2.0,6" for h in range(20, 24)]
+    rows += [f"QR-BENCH,2026-04-09T{h:02d}:00,10,0.5,{-1 + h * 0.1:.1f}" for h in range(0, 7)]
+    night.write_text("\n".join(rows) + "\n")
+    assert _run(farm_db, "import", str(night)) == 0
+    capsys.readouterr()
+    assert _run(farm_db, "list") == 0  # only a night outlook stored: its table, by night
+    out = capsys.readouterr().out.splitlines()
+    assert len(out) == 2 and out[1].split()[:5] == ["QR-BENCH", "2026-04-08", "11", "20:00", "06:00"]
+    assert out[1].split()[5:8] == ["10-90", "0.5-2.0", "-1.0"]
+    outlook_import.import_outlook(farm_db, demo_farm / "outlook-summer.csv")
+    assert _run(farm_db, "list") == 0  # both kinds: two tables
+    text = capsys.readouterr().out
+    assert "high °C" in text and "sky %" in text
+    assert _run(farm_db, "list", "--kind", "night", "--json") == 0
+    (row,) = json.loads(capsys.readouterr().out)
+    assert row["kind"] == "night" and row["hours"] == 11 and row["low_c"] == -1.0
+    assert _run(farm_db, "list", "--kind", "night", "--since", "2026-04-09") == 0
+    assert "no night outlook stored" in capsys.readouterr().out

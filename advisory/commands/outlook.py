@@ -11,7 +11,8 @@ from advisory.store.db import Database
 
 
 def register(sub) -> None:
-    p = sub.add_parser("outlook", help="day outlooks: forecast highs and lows per station and date")
+    p = sub.add_parser("outlook", help="outlooks: a day's forecast high and low, or a night's hourly sky, wind and "
+                                        "temperature, per station")
     osub = p.add_subparsers(dest="outlook_command", metavar="ACTION")
     osub.required = True
     imp = osub.add_parser(
@@ -27,7 +28,9 @@ def register(sub) -> None:
                           "auto (default): night when the header has a 'time' column")
     imp.add_argument("--json", action="store_true", help="print the summary as JSON")
     imp.set_defaults(func=do_import)
-    ls = osub.add_parser("list", help="stored outlooks")
+    ls = osub.add_parser("list", help="stored outlooks: day outlooks by day, night outlooks by night")
+    ls.add_argument("--kind", choices=("all", "day", "night"), default="all",
+                    help="which outlooks to list (default: both kinds, each in its own table)")
     ls.add_argument("--station", metavar="CODE", help="only this station")
     ls.add_argument("--since", metavar="D", help="from this local date (YYYY-MM-DD)")
     ls.add_argument("--json", action="store_true")
@@ -56,6 +59,21 @@ def do_list(args) -> int:
             since = dt.date.fromisoformat(args.since)
         except ValueError:
             raise InputError(f"'{args.since}' is not a date like 2026-07-15", field="--since") from None
-    rows = outlook_import.list_outlooks(Database(args.db), station=args.station, since=since)
-    print(json.dumps(rows, indent=2) if args.json else outlook_import.format_outlooks(rows))
+    db = Database(args.db)
+    days = (outlook_import.list_outlooks(db, station=args.station, since=since)
+            if args.kind in ("all", "day") else [])
+    nights = (night_outlook.list_night_outlooks(db, station=args.station, since=since)
+              if args.kind in ("all", "night") else [])
+    if args.json:
+        print(json.dumps([{"kind": "day", **r} for r in days] + [{"kind": "night", **r} for r in nights],
+                         indent=2))
+        return 0
+    if args.kind == "day" or (args.kind == "all" and days and not nights):
+        print(outlook_import.format_outlooks(days))
+    elif args.kind == "night" or (args.kind == "all" and nights and not days):
+        print(night_outlook.format_night_outlooks(nights))
+    elif days and nights:
+        print(outlook_import.format_outlooks(days) + "\n\n" + night_outlook.format_night_outlooks(nights))
+    else:
+        print("no outlook stored (use `advisory outlook import FILE`)")
     return 0

@@ -44,7 +44,8 @@ from advisory.errors import InputError
 from advisory.ingest.outlook import _norm, _number, _sniff_delimiter, read_text, split_csv
 
 __all__ = ["NIGHT_OUTLOOK_COLUMNS", "is_night_outlook_header", "parse_night_outlook_csv", "read_night_outlook_csv",
-           "read_text", "localize_time", "NightOutlookImport", "import_night_outlook", "load_night_outlooks"]
+           "read_text", "localize_time", "NightOutlookImport", "import_night_outlook", "load_night_outlooks", "list_night_outlooks",
+           "format_night_outlooks"]
 
 #: Columns of the returned frame, in order.
 NIGHT_OUTLOOK_COLUMNS = ("station", "time", "sky_cover_pct", "wind_speed_ms", "air_temp_c", "line")
@@ -336,3 +337,69 @@ def load_night_outlooks(session, station_ids, start_utc, end_utc) -> dict[int, p
     for c in ("sky_cover_pct", "wind_speed_ms", "air_temp_c"):
         frame[c] = frame[c].astype(float)
     return {int(sid): g.drop(columns="station_id").set_index("time") for sid, g in frame.groupby("station_id")}
+
+
+def list_night_outlooks(db, *, station: str | None = None, since=None) -> list[dict]:
+    """Stored night outlooks, one row per station and night (the local date of its evening: an hour
+    before local noon belongs to the night that began the day before), by station and night.
+
+    Each row: station, night, hours, first and last local time, sky cover and wind (lowest and
+    highest), the lowest forecast temperature, and when the latest of its hours was imported.
+    ``since`` (a date) keeps the nights from that evening on.  An unknown station raises
+    :class:`advisory.errors.InputError` naming ``--station``.
+    """
+    from sqlalchemy import select
+
+    from advisory.ingest.outlook_import import _resolve_stations
+    from advisory.store.schema import NightOutlook, Station
+
+    with db.transaction() as session:
+        q = select(NightOutlook, Station.code, Station.timezone).join(Station, Station.id == NightOutlook.station_id)
+        if station is not None:
+            found = _resolve_stations(session, {station})
+            if station not in found:
+                known = ", ".join(session.scalars(select(Station.code).order_by(Station.code))) or "none"
+                raise InputError(f"no station '{station}' (stations: {known})", field="--station")
+            q = q.where(NightOutlook.station_id == found[station].id)
+        groups: dict[tuple[str, str], list] = {}
+        for o, code, tz in session.execute(q.order_by(Station.code, NightOutlook.valid_time)).all():
+            local = pd.Timestamp(o.valid_time).tz_convert(tz)
+            night = (local - pd.Timedelta(hours=12)).date()
+            if since is not None and night < since:
+                continue
+            groups.setdefault((code, night.isoformat()), []).append((local, o))
+    out = []
+    for (code, night), hours in groups.items():
+        sky, wind, temp = (_span([getattr(o, attr) for _, o in hours])
+                           for attr in ("sky_cover_pct", "wind_speed_ms", "air_temp_c"))
+        out.append({"station": code, "night": night, "hours": len(hours),
+                    "first_local": hours[0][0].isoformat(), "last_local": hours[-1][0].isoformat(),
+                    "sky_cover_min_pct": sky[0], "sky_cover_max_pct": sky[1],
+                    "wind_min_ms": wind[0], "wind_max_ms": wind[1], "low_c": temp[0],
+                    "imported_at": max(o.imported_at for _, o in hours).isoformat(timespec="seconds")})
+    return out
+
+
+def _span(values) -> tuple[float | None, float | None]:
+    vals = [v for v in values if v is not None]
+    return (min(vals), max(vals)) if vals else (None, None)
+
+
+def format_night_outlooks(rows: list[dict]) -> str:
+    """The rows of :func:`list_night_outlooks` as a table (local clock times, ranges as low-high)."""
+    if not rows:
+        return "no night outlook stored (use `advisory outlook import FILE`)"
+
+    def rng(lo, hi, fmt):
+        if lo is None:
+            return "-"
+        return format(lo, fmt) if abs(hi - lo) < 1e-9 else f"{format(lo, fmt)}-{format(hi, fmt)}"
+
+    lines = [f"{'station':<16} {'night':<10} {'hours':>5} {'from':>5} {'to':>5} {'sky %':>7} {'wind m/s':>9} "
+             f"{'low °C':>7}  imported"]
+    for r in rows:
+        low = "-" if r["low_c"] is None else f"{r['low_c']:.1f}"
+        lines.append(f"{r['station']:<16} {r['night']:<10} {r['hours']:>5} {r['first_local'][11:16]:>5} "
+                     f"{r['last_local'][11:16]:>5} {rng(r['sky_cover_min_pct'], r['sky_cover_max_pct'], '.0f'):>7} "
+                     f"{rng(r['wind_min_ms'], r['wind_max_ms'], '.1f'):>9} {low:>7}  {r['imported_at']}")
+    return "\n".join(lines)
