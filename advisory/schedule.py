@@ -336,15 +336,15 @@ def reconcile(db, scheduler, now: dt.datetime, settings: PlannerSettings, wake=N
 
 
 def retry_deliveries(db, now: dt.datetime, echo=print):
-    """One pass of the delivery queue (:func:`advisory.notices.deliver.retry_failed`), in one transaction
+    """One pass of the delivery queue (:func:`advisory.notices.retry_queue.retry_failed`), in one transaction
     (one host at a time)."""
     from advisory import settings as settings_mod
-    from advisory.notices import deliver
+    from advisory.notices import retry_queue
     from advisory.runs import claims
 
     with db.transaction() as s:
         claims.lock(s, claims.DELIVERY_LOCK)
-        report = deliver.retry_failed(s, settings_mod.load(db.url), now=now)
+        report = retry_queue.retry_failed(s, settings_mod.load(db.url), now=now)
     if report.retried or report.expired:
         echo(f"{now:%Y-%m-%d %H:%M:%S}Z {report.text()}")
     return report

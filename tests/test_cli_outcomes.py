@@ -9,7 +9,7 @@ import pytest
 from sqlalchemy import func, select
 
 from advisory import cli
-from advisory.notices import deliver
+from advisory.notices import retry_queue
 from advisory.notices.receiver import SmtpReceiver
 from advisory.store.schema import Delivery, Forecast, Notice
 
@@ -32,7 +32,7 @@ def test_undelivered_night_exits_3_and_a_rerun_retries(spring_db, quiet_channels
     assert any("by webhook" in ln and "ADVISORY_WEBHOOK_SECRET" in ln for ln in lines)
     assert "notices list --undelivered" in err
     # a mail server now answers: running the night again retries what failed (still within its deadline)
-    monkeypatch.setattr(deliver, "deadline_utc", lambda *a, **k: dt.datetime.now(dt.UTC) + dt.timedelta(days=1))
+    monkeypatch.setattr(retry_queue, "deadline_utc", lambda *a, **k: dt.datetime.now(dt.UTC) + dt.timedelta(days=1))
     with SmtpReceiver() as mail:
         monkeypatch.setenv("ADVISORY_SMTP_HOST", mail.host)
         monkeypatch.setenv("ADVISORY_SMTP_PORT", str(mail.port))

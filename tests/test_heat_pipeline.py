@@ -38,9 +38,9 @@ def _clock(day: dt.date, hour: int = 9) -> dt.datetime:
 @pytest.fixture
 def no_charts(monkeypatch):
     """Skip drawing PNG charts (slow); one test below draws a real one."""
-    from advisory.notices import deliver
+    from advisory.notices import channels
 
-    monkeypatch.setattr(deliver, "_chart_for", lambda n: None)
+    monkeypatch.setattr(channels, "_chart_for", lambda n: None)
 
 
 @pytest.fixture

@@ -30,9 +30,9 @@ def _clock(day: dt.date, hour: int = 9) -> dt.datetime:
 
 @pytest.fixture
 def no_charts(monkeypatch):
-    from advisory.notices import deliver
+    from advisory.notices import channels
 
-    monkeypatch.setattr(deliver, "_chart_for", lambda n: None)
+    monkeypatch.setattr(channels, "_chart_for", lambda n: None)
 
 
 @pytest.fixture

@@ -247,7 +247,7 @@ def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo
     import os
     import time
 
-    from advisory.notices import deliver
+    from advisory.notices import outbox_files
 
     url, serial_db = _second_spring_db(fresh_db_url("serial"), demo_farm)
     one = dataclasses.replace(settings_mod.load(url), workers=1, outbox=tmp_path / "outbox-one")
@@ -260,13 +260,13 @@ def test_outbox_files_written_ahead_are_the_ones_delivery_writes(spring_db, demo
     stale, fresh = night_dir / ".x.json.0badc0ffee00.staged", night_dir / ".y.json.0ddba11fee00.staged"
     for p in (stale, fresh):
         p.write_text("{}")
-    os.utime(stale, (time.time() - 2 * deliver.STALE_STAGED_S,) * 2)
+    os.utime(stale, (time.time() - 2 * outbox_files.STALE_STAGED_S,) * 2)
     monkeypatch.setattr(sizes, "STAGE_OUTBOX_FROM", 2)  # the demo farm has six blocks
     monkeypatch.setattr(sizes, "PARALLEL_FROM_BLOCKS", 2)  # and its workers hand their files over
     if writer_fails:
         def broken(*args, **kw):
             raise OSError("disk full")
-        monkeypatch.setattr(deliver, "stage_outbox", broken)
+        monkeypatch.setattr(outbox_files, "stage_outbox", broken)
     caplog.set_level("WARNING", logger="advisory.runs.staging")
     res = frost_night.run_night(spring_db, NIGHT, now=NOW, settings=two, sleep=lambda s: None)
     assert ("outbox files written ahead" in res.timings) is not writer_fails

@@ -59,7 +59,7 @@ def settle_deliveries(db, day: dt.date, kind: str, farm: str | None, names: list
     from sqlalchemy import or_, select
 
     from advisory import settings as settings_mod
-    from advisory.notices import deliver
+    from advisory.notices import retry_queue
     from advisory.store.schema import Block, Farm, Notice
 
     out = out or sys.stderr
@@ -73,11 +73,11 @@ def settle_deliveries(db, day: dt.date, kind: str, farm: str | None, names: list
         elif farm:
             q = q.where(Notice.farm_id.in_(select(Farm.id).where(Farm.name == farm)))
         notice_ids = list(s.scalars(q))
-        report = deliver.retry_failed(s, cfg, notice_ids=notice_ids, attempted_before=started)
+        report = retry_queue.retry_failed(s, cfg, notice_ids=notice_ids, attempted_before=started)
     if report.retried or report.expired:
         print(report.text().splitlines()[0], file=out)
     with db.transaction() as s:
-        left = deliver.undelivered(s, notice_ids)
+        left = retry_queue.undelivered(s, notice_ids)
     for it in left:
         print(it.line(), file=out)
     if left:

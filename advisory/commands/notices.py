@@ -9,7 +9,7 @@ from sqlalchemy.orm import aliased
 
 from advisory import settings as settings_mod
 from advisory.errors import InputError, NotFoundError
-from advisory.notices import deliver
+from advisory.notices import deliver, retry_queue
 from advisory.notices.render import FORMATS, as_notice, render
 from advisory.store.db import Database
 from advisory.store.schema import Block, Delivery, Farm, Notice, Recipient
@@ -106,18 +106,18 @@ def _list_undelivered(db, args, night) -> int:
         if args.farm or night or args.block:
             blk = aliased(Block)
             ids = list(s.scalars(_selected(select(Notice.id), blk, args, night)))
-        items = deliver.undelivered(s, ids)
+        items = retry_queue.undelivered(s, ids)
         fallback = {}
         if items:
             for d in s.scalars(select(Delivery).where(Delivery.notice_id.in_({it.notice_id for it in items}),
-                                                      Delivery.channel.like(f"{deliver.FALLBACK}%"))):
-                fallback.setdefault(d.notice_id, []).append(f"{d.channel[len(deliver.FALLBACK):]} {d.status}")
+                                                      Delivery.channel.like(f"{retry_queue.FALLBACK}%"))):
+                fallback.setdefault(d.notice_id, []).append(f"{d.channel[len(retry_queue.FALLBACK):]} {d.status}")
     if not items:
         print("every notice reached each of its recipients on at least one channel")
         return 0
     shown = items[:max(1, args.limit)]
     for it in shown:
-        state = "given up" if it.status == deliver.EXPIRED else "retrying"
+        state = "given up" if it.status == retry_queue.EXPIRED else "retrying"
         note = f"; undelivered note: {', '.join(fallback[it.notice_id])}" if it.notice_id in fallback else ""
         print(f"{it.notice_id:>6}  {state:<8}  {it.line()}{note}")
     if len(items) > len(shown):
@@ -130,12 +130,12 @@ def do_retry(args) -> int:
     db = Database(args.db)
     with db.transaction() as s:
         kw = {"attempted_before": dt.datetime.now(dt.UTC)} if args.now else {}
-        report = deliver.retry_failed(s, cfg, **kw)
+        report = retry_queue.retry_failed(s, cfg, **kw)
     print(report.text())
     with db.transaction() as s:
-        left = deliver.undelivered(s)
+        left = retry_queue.undelivered(s)
     for it in left:
-        if it.status != deliver.EXPIRED:
+        if it.status != retry_queue.EXPIRED:
             print(f"  {it.line()}")
     return UNDELIVERED_EXIT if left else 0
 

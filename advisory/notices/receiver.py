@@ -2,7 +2,7 @@
 
 For the demo and for anyone wiring another system to advisory: it listens on a
 local address, verifies every POST with
-:func:`advisory.notices.deliver.verify_signature` and keeps what it received.
+:func:`advisory.notices.signing.verify_signature` and keeps what it received.
 Not a production server.
 """
 
@@ -13,7 +13,7 @@ import threading
 from dataclasses import dataclass, field
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
-from advisory.notices.deliver import SIGNATURE_HEADER, TIMESTAMP_HEADER, verify_signature
+from advisory.notices.signing import SIGNATURE_HEADER, TIMESTAMP_HEADER, verify_signature
 
 
 @dataclass

@@ -30,9 +30,9 @@ def _outbox_plan(batch: list[tuple[Notice, list]], settings, wanted: set[str]) -
     the HTML that shows it) when the setting asks for one: "always", "never", "email" (the notice goes
     out by e-mail in this run) or "auto" (by e-mail, or at "stand by" or worse).
     """
-    from advisory.notices import deliver as deliver_mod
+    from advisory.notices import outbox_files
 
-    full = tuple(deliver_mod.OUTBOX_FORMATS)
+    full = tuple(outbox_files.OUTBOX_FORMATS)
     formats = tuple(getattr(settings, "outbox_formats", None) or full)
     charts = getattr(settings, "outbox_charts", None) or "auto"
     if formats == full and charts == "auto":

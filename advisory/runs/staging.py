@@ -35,7 +35,7 @@ class _Staging:
     the JSON through shared memory; by each worker, through an inbox of its own) and then
     the farm summaries, and writes them while the run goes on: the block notices' JSON and
     short text, and every file of the farm summaries (rendered there), all under hidden
-    names (:func:`advisory.notices.deliver.staged_path`).  After the commit it moves them to
+    names (:func:`advisory.notices.outbox_files.staged_path`).  After the commit it moves them to
     their own names (:meth:`publish`) and copies the run's SQLite log into the database
     file (:meth:`checkpoint`); the delivery records what is in place and writes whatever is
     missing.  The other formats of a block notice take templates (and a chart, which
@@ -52,7 +52,7 @@ class _Staging:
         import secrets
 
         from advisory import forking
-        from advisory.notices import deliver as deliver_mod
+        from advisory.notices import outbox_files
 
         self.outbox, self.formats, self.token = str(settings.outbox), formats, secrets.token_hex(6)
         #: Outbox folders given files (for :meth:`discard`).
@@ -69,8 +69,8 @@ class _Staging:
         self._arena = forking.Arena(blocks * _ARENA_PER_BLOCK)
         arena = self._arena
         self._spooler = forking.Spooler(
-            lambda files: deliver_mod.stage_outbox(files, swept, written, arena),
-            {"publish": lambda token: deliver_mod.publish_staged(written, token), "checkpoint": db_mod.checkpoint},
+            lambda files: outbox_files.stage_outbox(files, swept, written, arena),
+            {"publish": lambda token: outbox_files.publish_staged(written, token), "checkpoint": db_mod.checkpoint},
             feeders=feeders)
         #: Worker inboxes not settled yet (see :meth:`settle`).
         self._feeders = set(range(1, feeders + 1))
@@ -84,13 +84,13 @@ class _Staging:
         """In worker process ``k`` (1, 2, ...): hand its own block notices to the writer through the
         worker's own inbox, as :meth:`hand_over` does for the run's process; whether all went (if not,
         the run's process hands them over)."""
-        from advisory.notices import deliver as deliver_mod
+        from advisory.notices import outbox_files
 
         if not self.formats or k not in self._feeders:
             return False
         feeder = self._spooler.feeder(k)
         try:
-            self._send_blocks(feeder, [deliver_mod.stage_item(key, n, self._json(parts)) for key, n, parts in blocks])
+            self._send_blocks(feeder, [outbox_files.stage_item(key, n, self._json(parts)) for key, n, parts in blocks])
             feeder.done()
         except (OSError, ValueError) as exc:  # the writer is gone: the run's process finds out too
             log.warning("a worker could not hand its outbox files to the writer (%s)", exc)
@@ -104,10 +104,10 @@ class _Staging:
     def _send_blocks(self, inbox, items: list) -> None:
         """Have the writer write ``items`` (stage items), a few hundred at a time, through ``inbox``
         (the spooler, or a worker's feeder)."""
-        from advisory.notices import deliver as deliver_mod
+        from advisory.notices import outbox_files
 
         for j in range(0, len(items), _STAGE_CHUNK):
-            inbox.call(deliver_mod.staged_block_files, self.outbox, items[j:j + _STAGE_CHUNK], self.formats,
+            inbox.call(outbox_files.staged_block_files, self.outbox, items[j:j + _STAGE_CHUNK], self.formats,
                        self.token)
 
     def settle(self, fed: Collection[int]) -> None:
@@ -124,8 +124,7 @@ class _Staging:
         :func:`advisory.notices.notice_data.json_file`); ``summaries`` each farm summary's key and the
         summary; ``fed`` the keys of notices worker processes handed over themselves
         (:meth:`write_share`), which are left out, as are those handed over before."""
-        from advisory.notices import deliver as deliver_mod
-        from advisory.notices import words
+        from advisory.notices import outbox_files, words
 
         self._handed |= set(fed)
         nights = {n.night for _, n, _ in blocks} | {n.night for _, n in summaries}
@@ -138,10 +137,10 @@ class _Staging:
                     continue
                 handed.add(key)
                 data = self._json(parts)
-                items.append(deliver_mod.stage_item(key, n, put(data) or data))
+                items.append(outbox_files.stage_item(key, n, put(data) or data))
             self._send_blocks(self._spooler, items)
         if summaries:  # rendered there
-            self._spooler.call(deliver_mod.staged_summary_files, self.outbox, list(summaries), self.token)
+            self._spooler.call(outbox_files.staged_summary_files, self.outbox, list(summaries), self.token)
 
     def wait(self) -> str | None:
         """Wait for the writer; the token of its files, or None when it failed (the delivery then
@@ -196,7 +195,7 @@ class _Staging:
     def discard(self) -> None:
         """Let the writer end (after its checkpoint), put the connection's checkpoints back, and
         remove whatever the delivery did not use (nothing, when every notice was delivered)."""
-        from advisory.notices import deliver as deliver_mod
+        from advisory.notices import outbox_files
 
         if self._checkpointing:
             self._checkpointing = False
@@ -211,16 +210,16 @@ class _Staging:
         self._spooler.close()
         self._arena.close()
         for folder in self.folders:
-            deliver_mod.discard_staged(folder, self.token)
+            outbox_files.discard_staged(folder, self.token)
 
 
 def _start_staging(n_blocks: int, settings) -> _Staging | None:
     """A :class:`_Staging` for a run of ``n_blocks`` blocks, when it is large enough and may fork."""
     from advisory import forking
-    from advisory.notices import deliver as deliver_mod
+    from advisory.notices import outbox_files
 
     if n_blocks < sizes.STAGE_OUTBOX_FROM or not forking.can_fork():
         return None
-    formats = deliver_mod.stageable(tuple(getattr(settings, "outbox_formats", None) or deliver_mod.OUTBOX_FORMATS))
+    formats = outbox_files.stageable(tuple(getattr(settings, "outbox_formats", None) or outbox_files.OUTBOX_FORMATS))
     workers = int(getattr(settings, "workers", 1) or 1)
     return _Staging(settings, formats, n_blocks, feeders=max(0, workers - 1))

@@ -13,16 +13,11 @@ import pytest
 from sqlalchemy import func, select
 
 from advisory.errors import InputError
-from advisory.notices import deliver
-from advisory.notices.deliver import (
-    RetryPolicy,
-    build_email,
-    deliver_notice,
-    delivery_summary,
-    outbox_base,
-    sign,
-    verify_signature,
-)
+from advisory.notices import channels
+from advisory.notices.channels import build_email
+from advisory.notices.deliver import RetryPolicy, deliver_notice, delivery_summary
+from advisory.notices.outbox_files import outbox_base
+from advisory.notices.signing import sign, verify_signature
 from advisory.store.schema import Delivery, Recipient
 from tests.notices import samples
 from tests.notices.conftest import PASSWORD, SECRET, store_notice, with_smtp
@@ -103,7 +98,7 @@ def test_outbox_and_text_messages(farm_db, settings):
         by = {(d.channel, d.recipient_id): d for d in made}
         outbox = by[("outbox", None)]
         assert outbox.status == "sent" and outbox.attempt == 1
-        base = outbox_base(settings.outbox, deliver._Rendered(row).n)
+        base = outbox_base(settings.outbox, channels._Rendered(row).n)
         for ext in ("txt", "md", "html", "json", "png"):
             assert base.with_name(f"{base.name}.{ext}").exists(), ext
         html = base.with_name(base.name + ".html").read_text()
@@ -260,7 +255,7 @@ def test_smtp_password_never_logged_or_stored(farm_db, settings, caplog):
 def test_email_structure(farm_db, settings):
     with farm_db.transaction() as s:
         row, block = store_notice(s)
-        r = deliver._Rendered(row)
+        r = channels._Rendered(row)
         odalys = next(x for x in block.recipients if x.name == "Odalys Brenneman")
         msg = build_email(r, with_smtp(settings, 25), odalys, "odalys@quillback.example")
     parsed = email.message_from_bytes(msg.as_bytes(), policy=email.policy.default)
@@ -281,7 +276,7 @@ def test_names_cannot_inject_mail_headers(farm_db, settings):
     with farm_db.transaction() as s:
         row, block = store_notice(s, samples.frost_assessment(block="Evil\r\nBcc: victim@example.com",
                                                               farm="Quillback Ridge Orchards"))
-        msg = build_email(deliver._Rendered(row), with_smtp(settings, 25), block.recipients[0],
+        msg = build_email(channels._Rendered(row), with_smtp(settings, 25), block.recipients[0],
                           "odalys@quillback.example")
     parsed = email.message_from_bytes(msg.as_bytes(), policy=email.policy.default)
     assert parsed["Bcc"] is None

@@ -17,9 +17,9 @@ NOW = dt.datetime(2026, 4, 9, 5, 0, tzinfo=dt.UTC)
 
 @pytest.fixture
 def no_charts(monkeypatch):
-    from advisory.notices import deliver
+    from advisory.notices import channels
 
-    monkeypatch.setattr(deliver, "_chart_for", lambda n: None)
+    monkeypatch.setattr(channels, "_chart_for", lambda n: None)
 
 
 def _messages(outbox):

@@ -10,9 +10,10 @@ import pytest
 from sqlalchemy import select
 
 from advisory import cli
-from advisory.notices import deliver
-from advisory.notices.deliver import RetryPolicy, deliver_notice, retry_failed, undelivered
+from advisory.notices import retry_queue
+from advisory.notices.deliver import RetryPolicy, deliver_notice
 from advisory.notices.receiver import SmtpReceiver, WebhookReceiver
+from advisory.notices.retry_queue import retry_failed, undelivered
 from advisory.store.schema import Delivery, Recipient
 from tests.notices.conftest import SECRET, free_port, store_notice, with_smtp
 
@@ -26,7 +27,7 @@ def _now() -> dt.datetime:
 @pytest.fixture
 def open_deadline(monkeypatch):
     """Every notice still worth delivering for a day (the samples' nights are long past)."""
-    monkeypatch.setattr(deliver, "deadline_utc", lambda *a, **k: _now() + dt.timedelta(days=1))
+    monkeypatch.setattr(retry_queue, "deadline_utc", lambda *a, **k: _now() + dt.timedelta(days=1))
 
 
 def _point_wren_at(s, url: str) -> Recipient:
@@ -86,7 +87,7 @@ def test_past_the_deadline_the_agent_is_told(farm_db_url, farm_db, settings, mon
         deliver_notice(s, row, list(block.recipients), settings, channels=["email", "webhook"], retry=ONE,
                        timeout_s=5)
         nid, key = row.id, row.key
-    monkeypatch.setattr(deliver, "deadline_utc", lambda *a, **k: _now() - dt.timedelta(minutes=1))
+    monkeypatch.setattr(retry_queue, "deadline_utc", lambda *a, **k: _now() - dt.timedelta(minutes=1))
     with WebhookReceiver(SECRET, port=port) as hook, farm_db.transaction() as s:
         report = retry_failed(s, settings, now=_now(), timeout_s=5)
     assert report.retried == []                                        # too late: not sent any more
@@ -102,7 +103,7 @@ def test_past_the_deadline_the_agent_is_told(farm_db_url, farm_db, settings, mon
     with farm_db.transaction() as s:                                   # given up once, told once
         again = retry_failed(s, settings, now=_now(), timeout_s=5)
         assert again.retried == [] and again.expired == [] and again.fallback == []
-        assert {it.status for it in undelivered(s, [nid])} == {deliver.EXPIRED}
+        assert {it.status for it in undelivered(s, [nid])} == {retry_queue.EXPIRED}
     assert cli.main(["--db", farm_db_url, "notices", "list", "--undelivered"]) == 0
     out = capsys.readouterr().out
     assert out.count("given up") == 3 and "undelivered note: email failed, webhook sent" in out
@@ -115,17 +116,17 @@ def test_fallback_recipients_from_the_farm_file(farm_db, settings):
         farm = s.scalar(select(Farm))
         farm.settings = {**farm.settings, "fallback_recipients": ["Tobiah Marchetti"]}
         s.flush()
-        assert [r.name for r in deliver.fallback_recipients(s, farm.id)] == ["Tobiah Marchetti"]
+        assert [r.name for r in retry_queue.fallback_recipients(s, farm.id)] == ["Tobiah Marchetti"]
         farm.settings = {k: v for k, v in farm.settings.items() if k != "fallback_recipients"}
         s.flush()
-        assert [r.name for r in deliver.fallback_recipients(s, farm.id)] == ["Wren Okonkwo-Hale"]
+        assert [r.name for r in retry_queue.fallback_recipients(s, farm.id)] == ["Wren Okonkwo-Hale"]
 
 
 def test_deadlines_per_kind():
     night = dt.date(2026, 4, 8)
-    frost = deliver.deadline_utc("frost", night, "America/Los_Angeles", [(46.42, -120.31)])
+    frost = retry_queue.deadline_utc("frost", night, "America/Los_Angeles", [(46.42, -120.31)])
     assert dt.datetime(2026, 4, 9, 13, 0, tzinfo=dt.UTC) < frost < dt.datetime(2026, 4, 9, 13, 40, tzinfo=dt.UTC)
-    heat = deliver.deadline_utc("heat", dt.date(2026, 7, 16), "America/Los_Angeles", [(46.42, -120.31)])
+    heat = retry_queue.deadline_utc("heat", dt.date(2026, 7, 16), "America/Los_Angeles", [(46.42, -120.31)])
     assert heat == dt.datetime(2026, 7, 17, 7, 0, tzinfo=dt.UTC)                 # local midnight (PDT)
 
 

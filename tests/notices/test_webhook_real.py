@@ -10,7 +10,8 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 import pytest
 from sqlalchemy import select
 
-from advisory.notices.deliver import SIGNATURE_HEADER, TIMESTAMP_HEADER, deliver_notice, verify_signature
+from advisory.notices.deliver import deliver_notice
+from advisory.notices.signing import SIGNATURE_HEADER, TIMESTAMP_HEADER, verify_signature
 from advisory.store.schema import Recipient
 from tests.notices.conftest import SECRET, store_notice
 
