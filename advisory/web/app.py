@@ -44,7 +44,7 @@ def _env() -> jinja2.Environment:
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(HERE / "templates"), autoescape=True,
                              undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
     env.globals.update(level=display.level, method=display.method, temp=display.temp, local=display.local,
-                       num=display.num, unit=display.unit, CAUTION=CAUTION)
+                       num=display.num, unit=display.unit, figures=display.figures, CAUTION=CAUTION)
     return env
 
 

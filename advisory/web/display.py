@@ -7,7 +7,7 @@ import datetime as dt
 import math
 from zoneinfo import ZoneInfo
 
-from advisory.notices.words import METHOD_NAMES, level_style
+from advisory.notices.words import METHOD_NAMES, level_style, quantity, quantity_label
 
 NO_FORECAST = "No forecast"
 
@@ -24,6 +24,17 @@ def level(kind: str, key: str | None, status: str | None):
 
 def method(key: str) -> str:
     return METHOD_NAMES.get(key, key.replace("_", " "))
+
+
+#: Plan quantities that carry a flag or a time for the program, not a figure for a reader.
+_INTERNAL_QUANTITIES = frozenset({"ready_by_unix_s", "stop_open_flag"})
+
+
+def figures(quantities: dict | None, units: str = "metric") -> list[str]:
+    """A plan step's quantities as the notices word them ("system rate 3.8 mm/h", "fuel 1,200 L"),
+    in the farm's units; internal flags are left out."""
+    return [f"{quantity_label(k)} {quantity(k, v, units)}" for k, v in (quantities or {}).items()
+            if k not in _INTERNAL_QUANTITIES]
 
 
 def temp(value: float | None, units: str = "metric", digits: int = 1) -> str:
