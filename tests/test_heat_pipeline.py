@@ -493,7 +493,13 @@ def test_curve_daylight_hours_are_finite_and_levels_match_risk_model(summer_db):
         assert a.level_rank == max(risk_heat.LEVELS.index(crop), risk_heat.LEVELS.index(crew))
         temps = np.array([p.p50_c for p in a.curve])
         assert np.isfinite(temps).all()
-        assert a.details["sunburn"]["hours"] == a.details["hours_above_c"]["hot"]
+        sb = a.details["sunburn"]
+        # the hours the notice gives are its window's length (each hourly value stands for the hour it
+        # starts; the window ends at sunset at the latest), never more than the risk model counted
+        assert sb["hours"] <= a.details["hours_above_c"]["hot"] + 1e-9
+        if sb["start_utc"] is not None:
+            assert sb["hours"] == pytest.approx((sb["stop_utc"] - sb["start_utc"]).total_seconds() / 3600.0)
+            assert sb["stop_utc"] <= a.sunset_utc
 
 
 # --------------------------------------------------------------------------- the curve through the morning reading

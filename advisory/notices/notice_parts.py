@@ -7,6 +7,7 @@ the level words of a notice and what changed since the last one.
 from __future__ import annotations
 
 import dataclasses
+import datetime as dt
 import logging
 import math
 import re
@@ -217,14 +218,18 @@ def _time_pair(x):
 
 
 def _hours_window(points, cond):
-    """First..last time (UTC) of the hours where ``cond(point)`` holds, and how many hours."""
+    """Start and end (UTC) of the hours where ``cond(point)`` holds, and how many hours.
+
+    Each point stands for the hour it starts (as in the crew windows), so the end is the end of the
+    last such hour.
+    """
     hit = [p for p in points if cond(p)]
     if not hit:
         return None, None, 0.0
     step_h = 1.0
     if len(points) > 1:
         step_h = max((points[1].time_utc - points[0].time_utc).total_seconds() / 3600.0, 1e-6)
-    return hit[0].time_utc, hit[-1].time_utc, len(hit) * step_h
+    return hit[0].time_utc, hit[-1].time_utc + dt.timedelta(hours=step_h), len(hit) * step_h
 
 
 # --------------------------------------------------------------------------------------------------

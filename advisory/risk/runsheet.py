@@ -360,7 +360,7 @@ def render_text(sheet: RunSheet) -> str:
             out.append(f"   - {note}")
         titles = [caut.get(k).title for k in p.caution_keys if k not in caut.ALWAYS]
         if titles:
-            out.append("   ! " + "; ".join(titles))
+            out.append("   ! " + ". ".join(titles) + ".")
         out.append("")
     if sheet.unprotected:
         out.append("AT RISK, NO USABLE PROTECTION:")

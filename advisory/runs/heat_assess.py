@@ -431,7 +431,8 @@ def _assess_group(blocks, out, idx, tz, day, table, tx10, tx50, tx90, tn, td, tp
                                   wbgt_c=float(crew.wbgt_c[k, j]))
                    for j in range(h) if np.isfinite(t50[k, j])]
         hit = np.flatnonzero(sb_mask[k])
-        sb_hours = float(crop.hours_above_c[k, 0])
+        sb_start, sb_stop, sb_hours = _sunburn_window(times_py, hit, float(crop.hours_above_c[k, 0]),
+                                                      _py(ss[k]) if not polar[k] else None)
         anchor = (pd.Timestamp(anchor_t[i] * 3600.0, unit="s", tz="UTC").round("s").tz_convert(tz)
                   if np.isfinite(anchor_t[i]) and np.isfinite(anchor_c[i]) else None)
         curve_model = _curve_model_text(
@@ -449,8 +450,7 @@ def _assess_group(blocks, out, idx, tz, day, table, tx10, tx50, tx90, tn, td, tp
             "crop_level": risk_heat.LEVELS[int(crop.level[k])],
             "crew_level": risk_heat.LEVELS[int(crew.day_level[k])],
             "sunburn": {"threshold_c": float(thr[k, 0]), "hours": sb_hours,
-                        "start_utc": times_py[hit[0]] if len(hit) else None,
-                        "stop_utc": times_py[hit[-1]] if len(hit) else None,
+                        "start_utc": sb_start, "stop_utc": sb_stop,
                         "note": (what[:1].upper() + what[1:] + "." if what else "")
                         + f" Thresholds: {crop.source[k]}."},
             "hours_above_c": {risk_heat.LEVELS[j + 1]: float(crop.hours_above_c[k, j]) for j in range(3)},
@@ -469,6 +469,25 @@ def _assess_group(blocks, out, idx, tz, day, table, tx10, tx50, tx90, tn, td, tp
         cool = cooling[k]
         if cool is not None:
             a.plan = [_cooling_step(crop, k, cool, b, hgh.estimated, units)]
+
+
+def _sunburn_window(times_py, hit, hours_counted: float, sunset_utc):
+    """(start, stop, hours) of the fruit's sunburn risk from the hours whose air is at or above the threshold.
+
+    Each hourly value stands for the hour it starts, as in the crew windows, so the window runs to the
+    end of the last such hour, and not past sunset (sunburn needs sun).  The hours are the window's
+    length when those hours run together, else the hours counted.
+    """
+    if not len(hit):
+        return None, None, hours_counted
+    start = times_py[hit[0]]
+    j = int(hit[-1])
+    stop = times_py[j + 1] if j + 1 < len(times_py) else times_py[j] + dt.timedelta(hours=1)
+    if sunset_utc is not None and start < sunset_utc < stop:
+        stop = sunset_utc
+    if len(hit) == j - int(hit[0]) + 1:
+        hours_counted = (stop - start).total_seconds() / 3600.0
+    return start, stop, hours_counted
 
 
 def _crew_windows(times_py, rest_row, crew, k, daylight) -> list[dict]:
