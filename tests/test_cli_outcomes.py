@@ -59,10 +59,28 @@ def test_far_dates_are_refused_and_nothing_is_written(spring_db, quiet_channels,
     before = _counts(spring_db)
     assert cli.main(["--db", spring_db.url, "night", "run", "--date", day]) == 2
     err = capsys.readouterr().err
-    assert "--allow-past" in err or "--allow-future" in err
+    assert "--allow-past" in err or "--allow-future" in err or "outside the years this tool runs" in err
     assert cli.main(["--db", spring_db.url, "heat", "run", "--date", day]) == 2
     assert _counts(spring_db) == before
     assert not quiet_channels.exists()                              # no outbox file either
+
+
+@pytest.mark.parametrize(("day", "flag"), [("9999-12-31", "--allow-future"), ("1899-12-31", "--allow-past")])
+def test_dates_outside_the_years_are_refused_even_when_allowed(spring_db, quiet_channels, capsys, day, flag):
+    # 9999-12-31 with --allow-future once wrote notices, tried their delivery, then stopped on an
+    # overflow of the notice's deadline (an internal error)
+    before = _counts(spring_db)
+    for kind in ("night", "heat"):
+        assert cli.main(["--db", spring_db.url, kind, "run", "--date", day, flag]) == 2
+        assert "outside the years this tool runs (1900 to 2199)" in capsys.readouterr().err
+    assert cli.main(["--db", spring_db.url, "serve", "--rehearse", day, flag]) == 2
+    for argv in (["blocks", "stages", "--date", day], ["blocks", "list", "--date", day],
+                 ["night", "verify", "--date", day], ["heat", "verify", "--date", day],
+                 ["blocks", "set-stage", "Bench Gala", "full bloom", "--date", day]):
+        assert cli.main(["--db", spring_db.url, *argv]) == 2, argv  # once an internal error (overflow)
+        assert "outside the years this tool runs" in capsys.readouterr().err
+    assert _counts(spring_db) == before
+    assert not quiet_channels.exists()
 
 
 def test_dates_near_today_need_no_option(spring_db, quiet_channels):

@@ -7,7 +7,6 @@ import json
 
 from advisory import stages as stages_report
 from advisory.crops import thresholds
-from advisory.errors import InputError
 from advisory.ingest.farm_file import record_stage
 from advisory.store import queries
 from advisory.store.db import Database
@@ -62,12 +61,9 @@ def block_dict(b: Block, detail: bool = False) -> dict:
 
 
 def _day(text: str | None) -> dt.date | None:
-    if not text:
-        return None
-    try:
-        return dt.date.fromisoformat(text)
-    except ValueError:
-        raise InputError(f"'{text}' is not a date like 2026-04-02", field="--date") from None
+    from advisory.commands.night import _date
+
+    return _date(text) if text else None
 
 
 def do_list(args) -> int:
@@ -168,10 +164,7 @@ def do_show(args) -> int:
 
 
 def do_set_stage(args) -> int:
-    try:
-        day = dt.date.fromisoformat(args.date) if args.date else dt.date.today()
-    except ValueError:
-        raise InputError(f"'{args.date}' is not a date like 2026-04-02", field="--date") from None
+    day = _day(args.date) or dt.date.today()
     db = Database(args.db)
     with db.transaction() as s:
         block = queries.find_block(s, args.name, args.farm)

@@ -15,6 +15,9 @@ from advisory.store.db import Database
 #: A night or heat day further than this from today (the farm's local date) needs --allow-past or
 #: --allow-future [days].
 DATE_WINDOW_DAYS = 3
+#: Years a night or day may fall in even with --allow-past or --allow-future: the sun, the clock
+#: rules and the deadlines of a notice are computed for these, and no station has readings beyond.
+DATE_YEARS = (1900, 2199)
 #: Exit status of a run that finished with notices that reached a recipient on no channel.
 UNDELIVERED_EXIT = 3
 
@@ -23,9 +26,13 @@ def _date(text: str | None, field: str = "--date") -> dt.date | None:
     if text is None:
         return None
     try:
-        return dt.date.fromisoformat(text)
+        day = dt.date.fromisoformat(text)
     except ValueError:
         raise InputError(f"'{text}' is not a date like 2026-04-08", field=field) from None
+    if not DATE_YEARS[0] <= day.year <= DATE_YEARS[1]:
+        raise InputError(f"{day} is outside the years this tool runs ({DATE_YEARS[0]} to {DATE_YEARS[1]})",
+                         field=field)
+    return day
 
 
 def add_date_limits(p, what: str = "night") -> None:
@@ -41,6 +48,10 @@ def check_date_window(db, day: dt.date | None, farm: str | None, args, *, field:
     """Refuse a night or day far from today in the farm's zone unless asked for (nothing is written)."""
     if day is None:
         return
+    if not DATE_YEARS[0] <= day.year <= DATE_YEARS[1]:
+        raise InputError(f"{what} {day} is outside the years this tool runs ({DATE_YEARS[0]} to {DATE_YEARS[1]}), "
+                         "even with --allow-past or --allow-future",
+                         field=field)
     today = today or dt.datetime.now(ZoneInfo(reports.farm_zone(db, farm))).date()
     off = (day - today).days
     if off < -DATE_WINDOW_DAYS and not getattr(args, "allow_past", False):
