@@ -255,8 +255,9 @@ def smtp_send(settings, msg: EmailMessage, address: str, *, smtp_factory=smtplib
         smtp.ehlo()
         if mode == "starttls":
             if hasattr(smtp, "has_extn") and not smtp.has_extn("starttls"):
-                raise PermanentError(f"SMTP server {cfg.host}:{cfg.port} does not offer STARTTLS; for a plain "
-                                     f"local relay set ADVISORY_SMTP_TLS=none, or set {_TLS_HINT}")
+                raise PermanentError(f"SMTP server {cfg.host}:{cfg.port} does not offer STARTTLS: for a plain "
+                                     "local relay set ADVISORY_SMTP_TLS=none (or [smtp] tls = \"none\"), for "
+                                     "a server on port 465 ADVISORY_SMTP_TLS=implicit")
             try:
                 smtp.starttls(context=context)
             except ssl.SSLCertVerificationError as exc:
