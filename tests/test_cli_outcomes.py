@@ -186,3 +186,58 @@ def test_stage_from_an_earlier_season_is_warned_in_the_night_run(spring_db, quie
             select(Notice, Block.name).join(Block, Notice.block_id == Block.id))}
     assert leads["Creek Bing"][0].startswith("Check the stage:") and "2025-04-01" in leads["Creek Bing"][0]
     assert not any(line.startswith("Check the stage") for line in leads["Bench Gala"])
+
+
+@pytest.mark.sqlite_only(reason="a SQLite file on read-only media")
+def test_a_database_on_a_read_only_file_system_can_be_read(db_url, quiet_channels, capsys, demo_farm,
+                                                            monkeypatch):
+    # A database in write-ahead-log mode copied onto read-only media (a mounted backup, a read-only
+    # share) could not be opened even to read: SQLite cannot make the log's shared-memory file there.
+    import os
+    import shutil
+    from pathlib import Path
+
+    assert cli.main(["--db", db_url, "farm", "import", str(demo_farm / "farm.toml")]) == 0
+    path = Path(db_url.split("sqlite:///", 1)[1])
+    media = path.parent / "media"
+    media.mkdir()
+    copy = media / path.name
+    con = sqlite3.connect(path)
+    con.execute("PRAGMA wal_autocheckpoint=0")
+    con.execute("UPDATE blocks SET variety = 'Gala (copied)' WHERE name = 'Bench Gala'")
+    con.commit()                                                     # a change held in the log only
+    shutil.copy(path, copy)
+    shutil.copy(path.with_name(path.name + "-wal"), media / (path.name + "-wal"))
+    con.close()
+    assert copy.read_bytes()[18] == 2                                  # the header says: WAL mode
+    real = os.statvfs
+
+    class ReadOnly:
+        def __init__(self, st):
+            self._st = st
+            self.f_flag = st.f_flag | os.ST_RDONLY
+
+    monkeypatch.setattr(os, "statvfs", lambda p: ReadOnly(real(p)) if Path(p) == media else real(p))
+    os.chmod(copy, 0o444)
+    os.chmod(media, 0o555)
+    try:
+        capsys.readouterr()
+        # the log holds a change that reading the file alone would miss: refused, not read stale
+        assert cli.main(["--db", f"sqlite:///{copy}", "blocks", "list"]) == 2
+        assert "write-ahead log" in capsys.readouterr().err
+        os.chmod(media, 0o755)
+        os.chmod(copy, 0o644)
+        merged = sqlite3.connect(copy)
+        merged.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+        merged.close()
+        os.chmod(copy, 0o444)
+        os.chmod(media, 0o555)
+        assert cli.main(["--db", f"sqlite:///{copy}", "blocks", "list"]) == 0
+        assert "Gala (copied)" in capsys.readouterr().out
+        assert not (media / (path.name + "-shm")).exists()            # nothing made beside it
+        assert cli.main(["--db", f"sqlite:///{copy}", "blocks", "set-stage", "Bench Gala", "full bloom",
+                         "--date", "2026-04-09"]) == 2
+        assert "is read-only" in capsys.readouterr().err
+    finally:
+        os.chmod(media, 0o755)
+        os.chmod(copy, 0o644)

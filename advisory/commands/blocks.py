@@ -82,9 +82,11 @@ def do_list(args) -> int:
         print("no blocks (import a farm file with `advisory farm import FARM.toml`)")
         return 0
     header = ("farm", "block", "crop", "stage", "since", "T10 °C", "T90 °C", "protection", "station")
-    table = [(r["farm"], r["name"], r["crop"] + (f" ({r['variety']})" if r["variety"] else ""), r["stage"],
-              r["stage_date"], f"{r['t10_c']:.1f}", f"{r['t90_c']:.1f}",
-              ", ".join(p["kind"].replace("_", " ") for p in r["protection"]) or "none", r["station"])
+    from advisory.notices.words import crop_name, method_name
+
+    table = [(r["farm"], r["name"], crop_name(r["crop"]) + (f" ({r['variety']})" if r["variety"] else ""),
+              r["stage"], r["stage_date"], f"{r['t10_c']:.1f}", f"{r['t90_c']:.1f}",
+              ", ".join(method_name(p["kind"]) for p in r["protection"]) or "none", r["station"])
              for r in rows]
     widths = [max(len(str(x)) for x in col) for col in zip(header, *table, strict=False)]
     for line in (header, *table):

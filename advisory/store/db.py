@@ -68,6 +68,33 @@ def checkpoint(path: str) -> int:
         con.close()
 
 
+def _read_only_media(u):
+    """A SQLite file on a read-only file system opened as immutable, read-only (SQLite's URI options
+    ``mode=ro&immutable=1``): its write-ahead log's shared-memory file cannot be made there, so a plain
+    open fails even to read, and no one can change the file meanwhile.  Writing then fails as on any
+    read-only database, with the clear message of :mod:`advisory.cli`.  Other URLs are returned as
+    they are."""
+    import os
+    import urllib.parse
+
+    name = u.database
+    if not name or name == ":memory:" or name.startswith("file:"):
+        return u
+    path = Path(name).expanduser()
+    try:
+        if not path.is_file() or not os.statvfs(path.parent).f_flag & os.ST_RDONLY:
+            return u
+    except OSError:
+        return u
+    wal = path.with_name(path.name + "-wal")
+    if wal.exists() and wal.stat().st_size > 0:  # immutable reading would not see what the log holds
+        raise InputError(f"the database {path} is on a read-only file system and its write-ahead log "
+                         f"{wal.name} holds changes not yet in the file: copy both files to a writable "
+                         "folder and point --db there", field="--db")
+    uri = "file:" + urllib.parse.quote(str(path.resolve())) + "?mode=ro&immutable=1"
+    return u.set(database=uri, query={**u.query, "uri": "true"})
+
+
 class MissingDatabaseError(SchemaVersionError):
     """A SQLite database file that does not exist where a command reads it (exit 2, like a stale schema:
     the fix is ``advisory db upgrade`` or the right ``--db``)."""
@@ -96,6 +123,7 @@ def make_engine(url: str, *, create: bool = False) -> Engine:
     if u.get_backend_name() == "sqlite":
         if create and u.database and u.database != ":memory:":
             Path(u.database).expanduser().parent.mkdir(parents=True, exist_ok=True)
+        u = _read_only_media(u)
         engine = create_engine(u, connect_args={"timeout": 30}, json_serializer=jsoncodec.dumps,
                                json_deserializer=jsoncodec.loads)
         event.listen(engine, "connect", _sqlite_pragmas)
