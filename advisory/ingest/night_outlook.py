@@ -350,17 +350,13 @@ def list_night_outlooks(db, *, station: str | None = None, since=None) -> list[d
     """
     from sqlalchemy import select
 
-    from advisory.ingest.outlook_import import _resolve_stations
+    from advisory.ingest.outlook_import import station_option
     from advisory.store.schema import NightOutlook, Station
 
     with db.transaction() as session:
         q = select(NightOutlook, Station.code, Station.timezone).join(Station, Station.id == NightOutlook.station_id)
         if station is not None:
-            found = _resolve_stations(session, {station})
-            if station not in found:
-                known = ", ".join(session.scalars(select(Station.code).order_by(Station.code))) or "none"
-                raise InputError(f"no station '{station}' (stations: {known})", field="--station")
-            q = q.where(NightOutlook.station_id == found[station].id)
+            q = q.where(NightOutlook.station_id == station_option(session, station).id)
         groups: dict[tuple[str, str], list] = {}
         for o, code, tz in session.execute(q.order_by(Station.code, NightOutlook.valid_time)).all():
             local = pd.Timestamp(o.valid_time).tz_convert(tz)

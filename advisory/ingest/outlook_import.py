@@ -136,16 +136,22 @@ def _same(a, b) -> bool:
     return abs(float(a) - float(b)) < 1e-9
 
 
+def station_option(session, code: str) -> Station:
+    """The station a ``--station`` option names (by the rule of :func:`_resolve_stations`); an unknown
+    one raises :class:`InputError` listing the stations there are."""
+    found = _resolve_stations(session, {code})
+    if code not in found:
+        known = ", ".join(session.scalars(select(Station.code).order_by(Station.code))) or "none"
+        raise InputError(f"no station '{code}' (stations: {known})", field="--station")
+    return found[code]
+
+
 def list_outlooks(db, *, station: str | None = None, since: dt.date | None = None) -> list[dict]:
     """Stored outlook rows (station code, day, high, low, minimum humidity, imported), by station and day."""
     with db.transaction() as session:
         q = select(Outlook, Station.code).join(Station, Station.id == Outlook.station_id)
         if station is not None:
-            found = _resolve_stations(session, {station})
-            if station not in found:
-                known = ", ".join(session.scalars(select(Station.code).order_by(Station.code))) or "none"
-                raise InputError(f"no station '{station}' (stations: {known})", field="--station")
-            q = q.where(Outlook.station_id == found[station].id)
+            q = q.where(Outlook.station_id == station_option(session, station).id)
         if since is not None:
             q = q.where(Outlook.day >= since)
         rows = session.execute(q.order_by(Station.code, Outlook.day)).all()
