@@ -553,11 +553,3 @@ def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: Pla
     echo(f"night {night}: {done_n} of {len(runs)} runs executed ({len(worker.executed)} here)"
          + (" (stopped by a signal; run the rehearsal again for the rest)" if stopped else ""))
     return done_n
-
-
-class _quiet:
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        return True

@@ -38,6 +38,7 @@ retrying will not fix raises :class:`PermanentError`; one that may pass raises a
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import json
@@ -63,7 +64,6 @@ from advisory.notices.outbox_files import (
     _folder,
     _publish,
     _summary_parts,
-    _suppress,
     _write,
     outbox_base,
 )
@@ -288,7 +288,7 @@ def smtp_send(settings, msg: EmailMessage, address: str, *, smtp_factory=smtplib
         try:
             smtp.quit()
         except Exception:
-            with _suppress():
+            with contextlib.suppress(Exception):
                 smtp.close()
     return address
 
