@@ -49,6 +49,17 @@ def test_stale_stage_is_flagged_with_the_risk_at_the_expected_stage(night):
     assert "Stage recorded" not in _text(night["Bench Gala"])
 
 
+def test_the_text_message_of_a_stale_block_says_so_within_one_message(night):
+    from advisory.notices import notice_parts
+    from advisory.notices.words import gsm_safe
+
+    n = compose.compose_block(night["Lower Bartlett"])
+    assert "Stage now full white?" in n.sms and "..." not in n.sms  # the short form, never cut
+    assert len(n.sms) <= notice_parts.SMS_MAX and gsm_safe(n.sms) == n.sms
+    assert n.sms.endswith(notice_parts.sms_caution("frost"))
+    assert "Stage may be" not in compose.compose_block(night["Bench Gala"]).sms
+
+
 def test_farm_summary_names_the_stale_block(night):
     s = farm_summary.compose_farm(list(night.values()))
     line = next(x for x in s.lead if x.startswith("Stage looks stale"))

@@ -101,6 +101,10 @@ def _frost(a: Assessment, f: _Fmt, name: str):
             sms_parts.append((f"{w.method_name(s.method).capitalize()}{on}{f.clock(s.start_utc)[:5]}{stop}.", True))
     if none_advised:
         sms_parts.append(("Check buds; call adviser tonight.", True))
+    check = (a.details or {}).get("stage_check") or {}
+    if check.get("sentence") and check.get("expected_stage"):  # the figures may rest on a stale stage
+        sms_parts.append((f"Stage may be {check['expected_stage']}; check buds.", 2,
+                          f"Stage now {check['expected_stage']}?", 2))
     if a.critical_time_utc:  # when the air reaches T10, kept before the range when space is short
         sms_parts.append((f"Critical at {f.clock(a.critical_time_utc)[:5]}.", 2))
 

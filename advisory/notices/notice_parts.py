@@ -150,9 +150,12 @@ def _sms(parts: list[tuple], caution: str = SMS_CAUTION_FROST) -> str:
     optional parts are dropped, lowest ``keep`` first (the later one of equal
     ones), until the message fits; then the text before the caution is cut.
     A part given as (text, keep, short) is shortened to ``short`` (which then
-    stays) instead of dropped.  The caution is never cut.
+    stays) instead of dropped; as (text, keep, short, short_keep), the short
+    form may itself be dropped later, by ``short_keep``.  The caution is never
+    cut.
     """
-    shorts = {i: w.gsm_safe(p[2]) for i, p in enumerate(parts) if len(p) > 2 and p[0]}
+    shorts = {i: (w.gsm_safe(p[2]), p[3] if len(p) > 3 else True) for i, p in enumerate(parts)
+              if len(p) > 2 and p[0]}
     parts = [(w.gsm_safe(p[0]), p[1], i) for i, p in enumerate(parts) if p[0]]
     tail = w.gsm_safe(caution)
     room = SMS_MAX - len(tail) - 1
@@ -166,7 +169,8 @@ def _sms(parts: list[tuple], caution: str = SMS_CAUTION_FROST) -> str:
         i = -min(opt)[1]
         orig = parts[i][2]
         if orig in shorts:
-            parts[i] = (shorts[orig], True, orig)
+            short, short_keep = shorts.pop(orig)
+            parts[i] = (short, short_keep, orig)
         else:
             parts.pop(i)
 
