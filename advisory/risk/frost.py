@@ -406,7 +406,7 @@ def _recommend(plans: list[MethodPlan], needs: bool, min_p50_c: float, crit_c: f
         chosen = ["undertree_sprinkler"]
     if not chosen:
         # Nothing usable: say so on the sheet with a "none" line, keep the per-method reasons.
-        reasons = "; ".join(f"{_METHOD_LABELS.get(p.method, p.method)}: {p.notes[-1] if p.notes else 'not usable'}"
+        reasons = "; ".join(f"{_METHOD_LABELS.get(p.method, p.method)}: {_lower_first(p.notes[-1]) if p.notes else 'not usable'}"
                             for p in plans)
         none = MethodPlan("none", usable=False, recommended=True,
                           notes=("No usable protection tonight. " + reasons,),
@@ -423,3 +423,10 @@ _METHOD_LABELS = {"wind_machine": "Wind machines", "overtree_sprinkler": "Over-t
 def _replace(p: MethodPlan, **kw) -> MethodPlan:
     from dataclasses import replace
     return replace(p, **kw)
+
+
+def _lower_first(sentence: str) -> str:
+    """A sentence continued after a colon: its first letter in lower case, unless the first word is a
+    symbol or an abbreviation ("T10", "RH")."""
+    head = sentence.split(" ", 1)[0]
+    return sentence[:1].lower() + sentence[1:] if head[:1].isupper() and head[1:].islower() else sentence

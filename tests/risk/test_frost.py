@@ -514,3 +514,11 @@ def test_sprinkler_note_says_how_close_the_system_is_and_where_the_table_comes_f
     note = next(n for n in p.notes if n.startswith("System 3 mm/h, needs"))
     assert f"needs {need:.1f} mm/h: {math.floor(100 * 3.0 / need):.0f} % of the need" in note
     assert "built for citrus" in note
+
+
+def test_reasons_after_a_colon_continue_the_sentence():
+    from advisory.risk.frost import _lower_first
+
+    assert _lower_first("Inversion unknown (no upper sensor)") == "inversion unknown (no upper sensor)"
+    assert _lower_first("T10 not reached") == "T10 not reached"  # a symbol keeps its case
+    assert _lower_first("RH sensor stuck") == "RH sensor stuck"
