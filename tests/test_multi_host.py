@@ -14,11 +14,12 @@ import time
 from pathlib import Path
 
 import pytest
-from sqlalchemy import func, select, text
+from sqlalchemy import func, select
 
 from advisory import schedule
 from advisory.store.db import Database
-from advisory.store.schema import Delivery, Forecast, Notice, RunClaim, RunRecord, Verification
+from advisory.store.schema import Forecast, Notice, RunClaim, RunRecord, Verification
+from tests.helpers.deliveries import delivered_twice, without_outbox_file
 
 NIGHT = dt.date(2026, 4, 8)
 FARMS, BLOCKS_PER_FARM = 3, 100
@@ -135,12 +136,8 @@ def test_three_hosts_share_a_night_and_take_over_from_a_killed_one(db, tmp_path,
         ).group_by(Notice.block_id)).all()
         revisions = s.execute(select(Forecast.block_id, Forecast.revision, func.count()).where(
             Forecast.night == NIGHT).group_by(Forecast.block_id, Forecast.revision)).all()
-        dup = s.execute(text(
-            "SELECT notice_id, recipient_id, channel, COUNT(*) FROM deliveries WHERE status IN ('sent','queued') "
-            "GROUP BY notice_id, recipient_id, channel HAVING COUNT(*) > 1")).all()
-        undelivered = s.scalar(select(func.count()).select_from(Notice).where(
-            Notice.id.not_in(select(Delivery.notice_id).where(Delivery.channel == "outbox",
-                                                                Delivery.status == "sent"))))
+        dup = delivered_twice(s)
+        undelivered = without_outbox_file(s)
         verified = s.execute(select(Verification.forecast_id, func.count()).group_by(Verification.forecast_id)).all()
         unfinished = s.scalar(select(func.count()).select_from(RunRecord).where(RunRecord.status != "finished"))
     assert len(claims) == len(runs) and all(st == "done" for _k, st, _a in claims), (claims, out)

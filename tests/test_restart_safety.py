@@ -13,7 +13,8 @@ import time
 from sqlalchemy import func, select, text
 
 from advisory import schedule
-from advisory.store.schema import Delivery, Forecast, Notice
+from advisory.store.schema import Forecast, Notice
+from tests.helpers.deliveries import delivered_twice, without_outbox_file
 
 NIGHT = dt.date(2026, 4, 8)
 
@@ -24,12 +25,8 @@ def _invariants(db):
             Forecast.night == NIGHT, Forecast.revision == 0).group_by(Forecast.block_id)).all()
         notices = s.scalar(select(func.count()).select_from(Notice))
         # no notice delivered twice to the same recipient on the same channel
-        dup = s.execute(text(
-            "SELECT notice_id, recipient_id, channel, COUNT(*) FROM deliveries WHERE status IN ('sent','queued') "
-            "GROUP BY notice_id, recipient_id, channel HAVING COUNT(*) > 1")).all()
-        undelivered = s.scalar(select(func.count()).select_from(Notice).where(
-            Notice.id.not_in(select(Delivery.notice_id).where(Delivery.channel == "outbox",
-                                                                Delivery.status == "sent"))))
+        dup = delivered_twice(s)
+        undelivered = without_outbox_file(s)
         if s.get_bind().dialect.name == "sqlite":
             fk = s.execute(text("PRAGMA foreign_key_check")).all()
             integrity = s.execute(text("PRAGMA integrity_check")).scalar()
