@@ -532,11 +532,9 @@ def rehearse(db, night: dt.date, *, seconds_per_hour: float = 4.0, settings: Pla
     scheduler.start()
     deadline = max(due.values()) + dt.timedelta(seconds=60 + 3 * takeover_s)
     finished = (claims.DONE, claims.FAILED)
-    done_n = 0
     try:
         while not stopped:
             st = claims.states(db, keys)
-            done_n = sum(st.get(k) == claims.DONE for k in keys)
             if all(st.get(k) in finished for k in keys) or dt.datetime.now(dt.UTC) > deadline:
                 break
             worker.stop.wait(0.25)

@@ -95,6 +95,7 @@ def test_run_sheet_by_saving_when_the_crew_is_short(night):
     assert "largest expected saving first (the crew can tend 2 blocks at once)" in text
     assert "crew not expected to reach it: the crew of 2 is at blocks with larger expected savings" in text
     assert "crew not expected" in runsheet.render_markdown(sheet)
+    assert sheet.currency == "USD" and f"(expected saving {sheet.rows[0].saving:,.0f} USD)" in text
     # without economics values or crew size: today's start order, nothing marked
     bare = [dataclasses.replace(a, details={k: v for k, v in a.details.items()
                                             if k not in ("economics", "crew_size")}) for a in ok]

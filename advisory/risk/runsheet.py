@@ -96,6 +96,8 @@ class RunSheet:
     caution_keys: tuple[str, ...]
     #: Blocks the crew can start and tend at once, when the crew is short tonight (rows then by saving).
     crew_size: int | None = None
+    #: The farm's currency of the savings (from the stored economics), None when not known.
+    currency: str | None = None
 
 
 def level_name(level: str, unprotected: bool = False) -> str:
@@ -169,9 +171,12 @@ def build_run_sheet(farm: str, night: date, timezone: str, risks: Sequence[Block
     entries = []
     unprotected, quiet = [], []
     savings = dict(savings or {})
+    currency = None
     for r in risks:
         if not isinstance(r, BlockRisk):
             d = getattr(r, "details", None) or {}
+            currency = currency or next((e.get("currency") for e in d.get("economics") or [] if e.get("currency")),
+                                        None)
             best = [e.get("saving") for e in d.get("economics") or [] if e.get("saving") is not None]
             if best and r.block not in savings:
                 savings[r.block] = max(best)
@@ -212,7 +217,7 @@ def build_run_sheet(farm: str, night: date, timezone: str, risks: Sequence[Block
     order = [c.key for c in caut.ordered(keys)]
     return RunSheet(farm, night, timezone, generated_utc or datetime.now(UTC), units, rows,
                     tuple(sorted(unprotected, key=lambda r: r.block)),
-                    tuple(sorted(quiet, key=lambda r: r.block)), tuple(order), crew_size if short else None)
+                    tuple(sorted(quiet, key=lambda r: r.block)), tuple(order), crew_size if short else None, currency)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -313,7 +318,8 @@ def _order_words(sheet: RunSheet) -> str:
 
 def _reach(sheet: RunSheet, row: RunSheetRow) -> str:
     """Whether the crew is expected to reach the block, and why (decision support: the crew decides)."""
-    saving = "no saving figures" if row.saving is None else f"expected saving {row.saving:,.0f}"
+    money = f" {sheet.currency}" if sheet.currency else ""
+    saving = "no saving figures" if row.saving is None else f"expected saving {row.saving:,.0f}{money}"
     if row.reached:
         return f"crew expected to reach it ({saving})"
     return (f"crew not expected to reach it: the crew of {sheet.crew_size} is at blocks with larger "
